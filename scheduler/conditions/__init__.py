@@ -1,0 +1,1 @@
+"""Weather/forecast samples: ingest, interpolation onto the night's grid, change detection."""

@@ -1,0 +1,1 @@
+"""What observers read: tables, exports, charts, explanations."""

@@ -1,0 +1,1 @@
+"""The re-planning service (APScheduler)."""

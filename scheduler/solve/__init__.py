@@ -1,0 +1,1 @@
+"""Night plan optimisation: CP-SAT model, greedy dispatch baseline, independent plan checker."""
