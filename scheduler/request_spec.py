@@ -305,3 +305,23 @@ def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
         period_epoch=epoch, period_days=period_days, phase_min=phase_min, phase_max=phase_max,
         priority=priority, too=_bool(raw, "too"),
     )
+
+
+def never_observable_reason(spec: RequestSpec, config: ObservatoryConfig) -> str | None:
+    """Why a target can never be observed from the site within its limits (geometry only), or None.
+
+    The highest altitude a fixed ICRS target reaches is at transit: 90 - |latitude - dec|.
+    """
+    from .sky.airmass import kasten_young_1989
+
+    lat = config.site.latitude_deg
+    best_alt = 90.0 - abs(lat - spec.dec_deg)
+    tel = config.telescope
+    if best_alt < tel.min_altitude_deg:
+        return (f"it culminates at altitude {best_alt:.1f} deg, below the telescope's limit "
+                f"of {tel.min_altitude_deg:g} deg (site latitude {lat:g})")
+    if spec.max_airmass is not None:
+        best_x = float(kasten_young_1989(min(best_alt, tel.max_altitude_deg)))
+        if best_x > spec.max_airmass:
+            return f"its best airmass is {best_x:.2f}, above its max_airmass {spec.max_airmass:g}"
+    return None

@@ -1,0 +1,1 @@
+"""Storage: SQLAlchemy models, engine/session set-up, migrations and the queue operations."""

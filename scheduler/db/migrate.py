@@ -1,0 +1,50 @@
+"""Schema upgrades with Alembic (the scripts live in the project's migrations/ folder)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from alembic import command
+from alembic.config import Config
+from alembic.runtime.migration import MigrationContext
+from alembic.script import ScriptDirectory
+
+from .session import Database
+
+MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
+
+
+def alembic_config(db: Database) -> Config:
+    if not (MIGRATIONS_DIR / "env.py").is_file():
+        raise RuntimeError(
+            f"migration scripts not found at {MIGRATIONS_DIR}; install nightplan from its source "
+            "folder with `pip install -e .`"
+        )
+    cfg = Config()
+    cfg.set_main_option("script_location", str(MIGRATIONS_DIR))
+    cfg.set_main_option("sqlalchemy.url", db.url.replace("%", "%%"))
+    return cfg
+
+
+def _with_connection(db: Database, fn) -> None:
+    cfg = alembic_config(db)
+    with db.engine.begin() as conn:
+        cfg.attributes["connection"] = conn
+        fn(cfg)
+
+
+def upgrade(db: Database, revision: str = "head") -> None:
+    _with_connection(db, lambda cfg: command.upgrade(cfg, revision))
+
+
+def downgrade(db: Database, revision: str) -> None:
+    _with_connection(db, lambda cfg: command.downgrade(cfg, revision))
+
+
+def current_revision(db: Database) -> str | None:
+    with db.engine.connect() as conn:
+        return MigrationContext.configure(conn).get_current_revision()
+
+
+def head_revision(db: Database) -> str | None:
+    return ScriptDirectory.from_config(alembic_config(db)).get_current_head()

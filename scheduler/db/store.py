@@ -1,0 +1,227 @@
+"""Queue operations on the database: programs, requests, conditions reports, outcomes.
+
+Every function takes an open Session and leaves commit/rollback to the caller, so a CLI
+command or a service job is exactly one transaction (all or nothing).
+"""
+
+from __future__ import annotations
+
+import re
+from datetime import datetime
+from typing import Any, Iterable
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from ..errors import InputError, NotFoundError
+from ..request_spec import ACTIVE_STATUSES, RequestSpec, iso
+from .models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
+
+PROGRAM_CODE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
+
+# request columns copied 1:1 between RequestSpec and the Request row
+_SPEC_FIELDS = (
+    "target", "ra_deg", "dec_deg", "band", "instrument", "exposure_s", "repeats", "min_spacing_s",
+    "resolution_arcsec", "max_seeing_arcsec", "max_pwv_mm", "max_airmass", "min_moon_sep_deg",
+    "max_moon_illum", "min_sky_mag", "max_cloud_mag", "not_before", "not_after", "period_epoch",
+    "period_days", "phase_min", "phase_max", "priority", "too", "status", "completed_repeats",
+    "partial_exposure_s",
+)
+
+
+# --------------------------------------------------------------------------- programs
+
+def add_program(s: Session, code: str, pi: str, hours: float = 0.0, weight: float = 1.0) -> Program:
+    if not PROGRAM_CODE.match(code or ""):
+        raise InputError("code", f"{code!r}: 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit")
+    pi = (pi or "").strip()
+    if not pi or len(pi) > 200 or any(ord(c) < 32 for c in pi):
+        raise InputError("pi", "must be 1 to 200 printable characters")
+    if not (0 <= hours <= 10000):
+        raise InputError("hours", f"{hours} is out of range; allowed 0 to 10000")
+    if not (0 < weight <= 100):
+        raise InputError("weight", f"{weight} is out of range; allowed greater than 0 and at most 100")
+    if s.scalar(select(Program).where(Program.code == code)) is not None:
+        raise InputError("code", f"program {code!r} already exists")
+    prog = Program(code=code, pi=pi, hours_allocated=hours, weight=weight)
+    s.add(prog)
+    s.flush()
+    return prog
+
+
+def program_dict(p: Program, used_hours: float | None = None) -> dict[str, Any]:
+    d = {"code": p.code, "pi": p.pi, "hours": p.hours_allocated, "weight": p.weight, "created_at": iso(p.created_at)}
+    if used_hours is not None:
+        d["hours_done"] = round(used_hours, 3)
+    return d
+
+
+def list_programs(s: Session) -> list[Program]:
+    return list(s.scalars(select(Program).order_by(Program.code)))
+
+
+def program_codes(s: Session) -> set[str]:
+    return set(s.scalars(select(Program.code)))
+
+
+def program_weights(s: Session) -> dict[str, float]:
+    return {p.code: p.weight for p in list_programs(s)}
+
+
+# --------------------------------------------------------------------------- requests
+
+def add_requests(s: Session, specs: Iterable[RequestSpec]) -> list[int]:
+    """Insert validated requests; the caller's transaction makes a batch all or nothing."""
+    programs = {p.code: p for p in list_programs(s)}
+    rows = []
+    for spec in specs:
+        prog = programs.get(spec.program)
+        if prog is None:
+            raise InputError("program", f"unknown program {spec.program!r}")
+        row = Request(program_id=prog.id, **{f: getattr(spec, f) for f in _SPEC_FIELDS})
+        row.status = "queued"
+        s.add(row)
+        rows.append(row)
+    s.flush()
+    return [r.id for r in rows]
+
+
+def to_spec(row: Request) -> RequestSpec:
+    return RequestSpec(program=row.program.code, id=row.id, **{f: getattr(row, f) for f in _SPEC_FIELDS})
+
+
+def request_dict(row: Request) -> dict[str, Any]:
+    """The JSON contract of `request list/show --json`: import column names for the limits."""
+    return {
+        "id": row.id,
+        "program": row.program.code,
+        "target": row.target,
+        "ra_deg": row.ra_deg,
+        "dec_deg": row.dec_deg,
+        "band": row.band,
+        "instrument": row.instrument,
+        "exposure_s": row.exposure_s,
+        "status": row.status,
+        "resolution_arcsec": row.resolution_arcsec,
+        "max_seeing_arcsec": row.max_seeing_arcsec,
+        "max_pwv_mm": row.max_pwv_mm,
+        "max_airmass": row.max_airmass,
+        "min_moon_sep_deg": row.min_moon_sep_deg,
+        "max_cloud_mag": row.max_cloud_mag,
+        "not_before": iso(row.not_before),
+        "not_after": iso(row.not_after),
+        "priority": row.priority,
+        "repeats": row.repeats,
+        "min_spacing_s": row.min_spacing_s,
+        "max_moon_illum": row.max_moon_illum,
+        "min_sky_mag": row.min_sky_mag,
+        "period_epoch": iso(row.period_epoch),
+        "period_days": row.period_days,
+        "phase_min": row.phase_min,
+        "phase_max": row.phase_max,
+        "too": row.too,
+        "completed_repeats": row.completed_repeats,
+        "partial_exposure_s": row.partial_exposure_s,
+        "created_at": iso(row.created_at),
+        "updated_at": iso(row.updated_at),
+    }
+
+
+def get_request(s: Session, request_id: int) -> Request:
+    row = s.get(Request, request_id)
+    if row is None:
+        raise NotFoundError(f"request {request_id} not found")
+    return row
+
+
+def list_requests(s: Session, status: str | None = None, program: str | None = None) -> list[Request]:
+    q = select(Request).join(Program).order_by(Request.id)
+    if status:
+        q = q.where(Request.status == status)
+    if program:
+        q = q.where(Program.code == program)
+    return list(s.scalars(q))
+
+
+def active_specs(s: Session) -> list[RequestSpec]:
+    """Requests the planner may schedule, as RequestSpecs."""
+    q = select(Request).join(Program).where(Request.status.in_(ACTIVE_STATUSES)).order_by(Request.id)
+    return [to_spec(r) for r in s.scalars(q)]
+
+
+def withdraw_request(s: Session, request_id: int) -> Request:
+    row = get_request(s, request_id)
+    if row.status in ("done", "withdrawn", "expired"):
+        raise InputError("id", f"request {request_id} is {row.status}; only queued, planned or failed requests can be withdrawn")
+    row.status = "withdrawn"
+    row.updated_at = utcnow()
+    return row
+
+
+def count_requests(s: Session) -> int:
+    return int(s.scalar(select(func.count()).select_from(Request)) or 0)
+
+
+def expire_requests(s: Session, now: datetime) -> list[int]:
+    """Requests whose absolute window has passed leave the queue."""
+    q = select(Request).where(Request.status.in_(ACTIVE_STATUSES), Request.not_after.is_not(None),
+                              Request.not_after < now)
+    rows = list(s.scalars(q))
+    for r in rows:
+        r.status = "expired"
+        r.updated_at = now
+    return [r.id for r in rows]
+
+
+# --------------------------------------------------------------------------- outcomes
+
+def record_outcome(s: Session, request_id: int, result: str, exposure_s: float | None = None,
+                   note: str | None = None, plan_entry_id: int | None = None) -> Outcome:
+    """done: one execution complete (the request leaves the queue when all repeats are done);
+    partial: the exposure achieved is credited and the rest stays queued; failed: back to the queue."""
+    if result not in ("done", "failed", "partial"):
+        raise InputError("result", f"{result!r}; allowed done, failed, partial")
+    row = get_request(s, request_id)
+    if row.status in ("withdrawn", "expired", "done"):
+        raise InputError("id", f"request {request_id} is {row.status}; outcomes are recorded for queued or planned requests")
+    if exposure_s is not None and not (0 <= exposure_s <= row.exposure_s):
+        raise InputError("exposure", f"{exposure_s} is out of range; allowed 0 to {row.exposure_s:g} seconds (the request's exposure)")
+    if note is not None and len(note) > 2000:
+        raise InputError("note", "at most 2000 characters")
+    if result == "done":
+        row.completed_repeats += 1
+        row.partial_exposure_s = 0.0
+        row.status = "done" if row.completed_repeats >= row.repeats else "queued"
+    elif result == "partial":
+        got = exposure_s if exposure_s is not None else 0.0
+        row.partial_exposure_s = min(row.partial_exposure_s + got, row.exposure_s)
+        if row.partial_exposure_s >= row.exposure_s:
+            row.completed_repeats += 1
+            row.partial_exposure_s = 0.0
+        row.status = "done" if row.completed_repeats >= row.repeats else "queued"
+    else:
+        row.status = "queued"
+    row.updated_at = utcnow()
+    out = Outcome(request_id=request_id, result=result, exposure_s=exposure_s, note=note, plan_entry_id=plan_entry_id)
+    s.add(out)
+    s.flush()
+    return out
+
+
+# --------------------------------------------------------------------------- conditions
+
+def store_conditions(s: Session, samples: list, source: str, issued_at: datetime | None = None) -> ConditionsReport:
+    """One report with its samples (ingest.Sample-like objects)."""
+    rep = ConditionsReport(issued_at=issued_at or utcnow(), source=source[:200], n_samples=len(samples))
+    for smp in samples:
+        rep.samples.append(ConditionsSample(
+            time=smp.time, seeing_arcsec=smp.seeing_arcsec, pwv_mm=smp.pwv_mm, cloud_mag=smp.cloud_mag,
+            wind_ms=smp.wind_ms, humidity_pct=smp.humidity_pct, dome_open=smp.dome_open,
+        ))
+    s.add(rep)
+    s.flush()
+    return rep
+
+
+def latest_conditions(s: Session) -> ConditionsReport | None:
+    return s.scalar(select(ConditionsReport).order_by(ConditionsReport.id.desc()).limit(1))
