@@ -1,0 +1,54 @@
+"""Shared fixtures: a real temporary SQLite queue and the real CLI in a subprocess."""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def run_cli(*args: str, cwd: Path, env: dict | None = None, check: bool = False,
+            timeout: float = 300) -> subprocess.CompletedProcess:
+    """Run `nightplan ARGS` as a user would: a new process, its own working folder."""
+    full_env = dict(os.environ)
+    full_env.pop("NIGHTPLAN_DB", None)
+    full_env.pop("NIGHTPLAN_CONFIG", None)
+    full_env["PYTHONPATH"] = str(ROOT) + os.pathsep + full_env.get("PYTHONPATH", "")
+    if env:
+        full_env.update(env)
+    proc = subprocess.run([sys.executable, "-m", "scheduler.cli", *args], cwd=cwd, env=full_env,
+                          capture_output=True, text=True, timeout=timeout)
+    if check and proc.returncode != 0:
+        raise AssertionError(f"nightplan {' '.join(args)} failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
+    return proc
+
+
+def cli_json(*args: str, cwd: Path, env: dict | None = None):
+    return json.loads(run_cli(*args, "--json", cwd=cwd, env=env, check=True).stdout)
+
+
+@pytest.fixture(scope="session")
+def _initialised_template(tmp_path_factory) -> Path:
+    folder = tmp_path_factory.mktemp("template")
+    run_cli("init", cwd=folder, check=True)
+    run_cli("program", "add", "STAR-1", "--pi", "Dr. Mira Okafor", "--hours", "12", "--weight", "2",
+            cwd=folder, check=True)
+    return folder
+
+
+@pytest.fixture
+def workdir(tmp_path: Path, _initialised_template: Path) -> Path:
+    """An initialised nightplan folder (starter config, empty SQLite queue) with one program.
+
+    Made once by the real CLI, then copied per test (a closed SQLite file copies safely).
+    """
+    for name in ("observatory.toml", "nightplan.sqlite"):
+        shutil.copy2(_initialised_template / name, tmp_path / name)
+    return tmp_path
