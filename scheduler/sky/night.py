@@ -1,14 +1,32 @@
 """The night: Sun events at the site and the planning time grid.
 
-CONTRACT (shared by feasibility, solver, reports). Implementation: see compute_night.
+CONTRACT (shared by feasibility, solver, reports): the Night dataclass. compute_night builds it.
+
+A night belongs to the local calendar date of its evening: it is searched between local noon
+of that date and local noon of the next (site.timezone, so daylight-saving days are 23 or 25 h).
+Altitudes are true (unrefracted) altitudes of the Sun's centre; sunset/sunrise use -0.833 deg
+(upper limb on the horizon with 34' of refraction, common practice), twilights -6/-12/-18.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import date, datetime
+from datetime import date, datetime, time, timedelta, timezone
+from zoneinfo import ZoneInfo
 
 import numpy as np
+
+from ..config import Site
+from ..errors import InputError
+from .offline import configure_offline
+
+SUNSET_ALT_DEG = -0.833
+CIVIL_ALT_DEG = -6.0
+NAUTICAL_ALT_DEG = -12.0
+ASTRONOMICAL_ALT_DEG = -18.0
+
+_COARSE_S = 600  # Sun altitude changes < 2.5 deg in 10 min: a crossing is never skipped unless it grazes
+_FINE_POINTS = 41  # 15 s sub-steps inside each bracket; linear interpolation is then sub-second
 
 
 @dataclass(frozen=True)
@@ -36,3 +54,141 @@ class Night:
     @property
     def end(self) -> datetime:
         return self.sunrise
+
+    def index_at(self, when: datetime) -> int:
+        """Grid step containing ``when`` (clipped to the grid). Helper added to the contract."""
+        t = when.timestamp()
+        i = int(np.searchsorted(self.times_unix, t, side="right")) - 1
+        return min(max(i, 0), self.n_times - 1)
+
+
+# --------------------------------------------------------------------------- Sun altitude
+
+def earth_location(site: Site):
+    from astropy import units as u
+    from astropy.coordinates import EarthLocation
+
+    return EarthLocation.from_geodetic(site.longitude_deg * u.deg, site.latitude_deg * u.deg, site.elevation_m * u.m)
+
+
+def sun_alt_deg(site: Site, times_unix: np.ndarray) -> np.ndarray:
+    """True altitude of the Sun's centre (degrees) at the given UTC unix times, one transform."""
+    configure_offline()
+    from astropy.coordinates import AltAz, get_sun
+    from astropy.time import Time
+
+    t = Time(np.asarray(times_unix, dtype=np.float64), format="unix", scale="utc")
+    frame = AltAz(obstime=t, location=earth_location(site))  # pressure 0: no refraction
+    return get_sun(t).transform_to(frame).alt.deg
+
+
+def _crossings(site: Site, t0: float, t1: float, levels: tuple[float, ...]):
+    """All times in [t0, t1] where the Sun's altitude crosses each level, with direction.
+
+    Coarse grid, then one vectorised fine pass over every bracket found. Returns
+    {level: [(unix_time, +1 rising / -1 setting), ...]} sorted by time, and the coarse samples.
+    """
+    n = int(np.ceil((t1 - t0) / _COARSE_S))
+    tc = t0 + np.arange(n + 1) * ((t1 - t0) / n)
+    ac = sun_alt_deg(site, tc)
+    brackets = []  # (level, index of coarse step)
+    for lev in levels:
+        d = ac - lev
+        for i in np.nonzero(np.signbit(d[:-1]) != np.signbit(d[1:]))[0]:
+            brackets.append((lev, int(i)))
+    out: dict[float, list[tuple[float, int]]] = {lev: [] for lev in levels}
+    if not brackets:
+        return out, tc, ac
+    frac = np.linspace(0.0, 1.0, _FINE_POINTS)
+    steps = np.array([i for _, i in brackets])
+    tf = tc[steps][:, None] + frac[None, :] * (tc[steps + 1] - tc[steps])[:, None]
+    af = sun_alt_deg(site, tf.ravel()).reshape(tf.shape)
+    for (lev, _), tt, aa in zip(brackets, tf, af):
+        d = aa - lev
+        j = int(np.nonzero(np.signbit(d[:-1]) != np.signbit(d[1:]))[0][0])
+        root = tt[j] + (tt[j + 1] - tt[j]) * d[j] / (d[j] - d[j + 1])
+        out[lev].append((float(root), 1 if d[j + 1] > d[j] else -1))
+    for lev in out:
+        out[lev].sort()
+    return out, tc, ac
+
+
+def _utc(t: float) -> datetime:
+    return datetime.fromtimestamp(t, tz=timezone.utc)
+
+
+def _local_noon_unix(site: Site, d: date) -> float:
+    return datetime.combine(d, time(12, 0), tzinfo=ZoneInfo(site.timezone)).timestamp()
+
+
+def compute_night(site: Site, night_date: date, step_s: int = 60) -> Night:
+    """Sun events for the night beginning on the local evening of ``night_date``, and the grid.
+
+    The grid runs from sunset (rounded up to a whole minute) to sunrise in steps of ``step_s``;
+    every step ends at or before sunrise. Where the Sun does not rise within the search window
+    (polar night) the night is clipped to the window's local noons. Where it never sets (polar
+    day) there is no night and InputError is raised. Twilight events the Sun never reaches
+    are None.
+    """
+    if not isinstance(step_s, (int, np.integer)) or not 10 <= step_s <= 3600:
+        raise InputError("step_s", f"{step_s!r} is out of range; allowed a whole number of seconds from 10 to 3600")
+    t0 = _local_noon_unix(site, night_date)
+    t1 = _local_noon_unix(site, night_date + timedelta(days=1))
+    levels = (SUNSET_ALT_DEG, CIVIL_ALT_DEG, NAUTICAL_ALT_DEG, ASTRONOMICAL_ALT_DEG)
+    cross, tc, ac = _crossings(site, t0, t1, levels)
+
+    def first_set(lev: float, after: float) -> float | None:
+        return next((t for t, s in cross[lev] if s < 0 and t >= after), None)
+
+    def last_rise(lev: float, before: float) -> float | None:
+        return next((t for t, s in reversed(cross[lev]) if s > 0 and t <= before), None)
+
+    sunset = first_set(SUNSET_ALT_DEG, t0)
+    if sunset is None:
+        if ac[0] > SUNSET_ALT_DEG:
+            raise InputError("night", f"the Sun does not set at latitude {site.latitude_deg} deg on the evening "
+                                      f"of {night_date.isoformat()}: there is no night to plan")
+        sunset = t0  # polar night: dark from the window's start
+    sunrise = last_rise(SUNSET_ALT_DEG, t1)
+    if sunrise is None or sunrise < sunset:
+        sunrise = t1
+
+    events: dict[str, float | None] = {}
+    for name, lev in (("civil", CIVIL_ALT_DEG), ("nautical", NAUTICAL_ALT_DEG), ("astronomical", ASTRONOMICAL_ALT_DEG)):
+        dusk = first_set(lev, sunset)
+        dawn = last_rise(lev, sunrise)
+        if dusk is not None and dawn is not None and dawn < dusk:
+            dawn = None
+        events[name] = (dusk, dawn)
+
+    start = np.ceil(sunset / 60.0) * 60.0
+    n = int(np.floor((sunrise - start) / step_s))
+    times = start + np.arange(max(n, 0), dtype=np.float64) * step_s
+
+    def dt(x):
+        return None if x is None else _utc(x)
+
+    return Night(
+        date=night_date,
+        sunset=_utc(sunset),
+        sunrise=_utc(sunrise),
+        civil_dusk=dt(events["civil"][0]),
+        civil_dawn=dt(events["civil"][1]),
+        nautical_dusk=dt(events["nautical"][0]),
+        nautical_dawn=dt(events["nautical"][1]),
+        astronomical_dusk=dt(events["astronomical"][0]),
+        astronomical_dawn=dt(events["astronomical"][1]),
+        step_s=int(step_s),
+        times_unix=times,
+    )
+
+
+def night_date_for(site: Site, when: datetime) -> date:
+    """The night a UTC instant belongs to: local date, minus one day before local noon.
+
+    Naive datetimes are taken as UTC (the interface speaks ISO-8601 UTC).
+    """
+    if when.tzinfo is None:
+        when = when.replace(tzinfo=timezone.utc)
+    local = when.astimezone(ZoneInfo(site.timezone))
+    return local.date() if local.hour >= 12 else local.date() - timedelta(days=1)
