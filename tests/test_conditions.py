@@ -303,3 +303,10 @@ def test_compare_refuses_grids_of_different_length_and_labels_steps_without_time
     s[5] = 1.5
     old, new = flat(times_unix=None), flat(seeing_arcsec=s, times_unix=None)
     assert "at step 5" in compare(old, new, 2, 0.2, 1.0)[0]
+
+
+def test_wrong_number_of_values_refused():
+    with pytest.raises(InputError) as e:
+        parse_conditions("time,seeing_arcsec\n2026-03-10T01:00:00Z,0.8\n2026-03-10T02:00:00Z,0.8,1\n")
+    assert (e.value.field, e.value.row) == ("columns", 3)
+    assert "3 values" in e.value.message and "2 columns" in e.value.message

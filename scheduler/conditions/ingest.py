@@ -129,7 +129,7 @@ def _parse_csv(text: str, src: str) -> ParsedReport:
             if not cells or all(not c.strip() for c in cells):
                 continue  # blank line
             if len(cells) != len(names):
-                field = names[len(cells)] if len(cells) < len(names) else "row"
+                field = names[len(cells)] if len(cells) < len(names) else "columns"
                 raise InputError(field, f"has {len(cells)} values; the header has {len(names)} columns",
                                  row=line, source=src)
             if len(samples) >= MAX_ROWS:
