@@ -61,6 +61,7 @@ def upgrade() -> None:
     sa.Column('night', sa.Date(), nullable=False),
     sa.Column('created_at', sa.DateTime(), nullable=False),
     sa.Column('reason', sa.Text(), nullable=False),
+    sa.Column('planned_from', sa.DateTime(), nullable=False),
     sa.Column('conditions_report_id', sa.Integer(), nullable=True),
     sa.Column('solver_status', sa.String(length=32), nullable=False),
     sa.Column('objective', sa.Float(), nullable=False),
@@ -126,6 +127,7 @@ def upgrade() -> None:
     sa.Column('start', sa.DateTime(), nullable=False),
     sa.Column('end', sa.DateTime(), nullable=False),
     sa.Column('slew_s', sa.Float(), nullable=False),
+    sa.Column('transition_s', sa.Float(), nullable=False),
     sa.Column('setup_s', sa.Float(), nullable=False),
     sa.Column('exposure_s', sa.Float(), nullable=False),
     sa.Column('airmass_start', sa.Float(), nullable=False),
@@ -136,6 +138,7 @@ def upgrade() -> None:
     sa.Column('merit', sa.Float(), nullable=False),
     sa.Column('moon_sep_deg', sa.Float(), nullable=True),
     sa.Column('value', sa.Float(), nullable=False),
+    sa.Column('fixed', sa.Boolean(), nullable=False),
     sa.ForeignKeyConstraint(['plan_id'], ['plan.id'], name=op.f('fk_plan_entry_plan_id_plan')),
     sa.ForeignKeyConstraint(['request_id'], ['request.id'], name=op.f('fk_plan_entry_request_id_request')),
     sa.PrimaryKeyConstraint('id', name=op.f('pk_plan_entry'))

@@ -144,6 +144,7 @@ class Plan(Base):
     night: Mapped[date] = mapped_column(Date)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     reason: Mapped[str] = mapped_column(Text)
+    planned_from: Mapped[datetime] = mapped_column(UTCDateTime)  # start of the night or the re-plan time
     conditions_report_id: Mapped[int | None] = mapped_column(ForeignKey("conditions_report.id"))
     solver_status: Mapped[str] = mapped_column(String(32))
     objective: Mapped[float] = mapped_column(Float)
@@ -171,7 +172,8 @@ class PlanEntry(Base):
     execution: Mapped[int] = mapped_column(Integer, default=0)
     start: Mapped[datetime] = mapped_column(UTCDateTime)
     end: Mapped[datetime] = mapped_column(UTCDateTime)
-    slew_s: Mapped[float] = mapped_column(Float)
+    slew_s: Mapped[float] = mapped_column(Float)  # axis motion from the previous entry
+    transition_s: Mapped[float] = mapped_column(Float, default=0.0)  # slew + settle + instrument/filter change
     setup_s: Mapped[float] = mapped_column(Float)
     exposure_s: Mapped[float] = mapped_column(Float)
     airmass_start: Mapped[float] = mapped_column(Float)
@@ -182,6 +184,7 @@ class PlanEntry(Base):
     merit: Mapped[float] = mapped_column(Float)
     moon_sep_deg: Mapped[float | None] = mapped_column(Float)
     value: Mapped[float] = mapped_column(Float, default=0.0)
+    fixed: Mapped[bool] = mapped_column(Boolean, default=False)  # kept from the previous plan
 
     plan: Mapped[Plan] = relationship(back_populates="entries")
 

@@ -1,0 +1,196 @@
+"""Plan versions in the database: store (one transaction), read back, diff, re-plan orders.
+
+A plan is immutable once stored. Storing a new plan for a night supersedes the active one in
+the same transaction, so readers always see exactly one complete active plan per night.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import date, datetime, timedelta
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from ..errors import InputError, NotFoundError
+from ..request_spec import RequestSpec, iso
+from ..solve.problem import PlanEntry as PlannedEntry, PlanResult
+from .models import Plan, PlanEntry, ReplanOrder, Request, utcnow
+
+
+def plan_diff(old: list[PlanEntry] | None, new: tuple[PlannedEntry, ...], moved_tolerance_s: float = 60.0) -> dict[str, list]:
+    """added / dropped / moved between the previous active plan's entries and a new plan's.
+
+    Executions are matched per request in time order (the k-th planned execution of a request
+    in one plan against the k-th in the other).
+    """
+    def by_request(items, key_start):
+        out: dict[int, list] = {}
+        for it in sorted(items, key=key_start):
+            out.setdefault(it.request_id, []).append(it)
+        return out
+
+    before = by_request(old or [], lambda e: e.start)
+    after = by_request(new, lambda e: e.start)
+    diff: dict[str, list] = {"added": [], "dropped": [], "moved": []}
+    for rid in sorted(set(before) | set(after)):
+        b, a = before.get(rid, []), after.get(rid, [])
+        for k in range(max(len(a), len(b))):
+            if k >= len(b):
+                diff["added"].append({"request_id": rid, "start": iso(a[k].start)})
+            elif k >= len(a):
+                diff["dropped"].append({"request_id": rid, "start": iso(b[k].start)})
+            elif abs((a[k].start - b[k].start).total_seconds()) > moved_tolerance_s:
+                diff["moved"].append({"request_id": rid, "from": iso(b[k].start), "to": iso(a[k].start),
+                                      "minutes": round((a[k].start - b[k].start).total_seconds() / 60.0, 1)})
+    return diff
+
+
+def active_plan(s: Session, night: date | None = None) -> Plan | None:
+    """The active plan of a night (default: the newest active plan of any night)."""
+    q = select(Plan).where(Plan.active.is_(True))
+    if night is not None:
+        q = q.where(Plan.night == night)
+    return s.scalar(q.order_by(Plan.id.desc()).limit(1))
+
+
+def get_plan(s: Session, version: int | None = None) -> Plan:
+    if version is None:
+        plan = active_plan(s)
+        if plan is None:
+            raise NotFoundError("no plan yet; build one with `nightplan plan build`")
+        return plan
+    plan = s.get(Plan, version)
+    if plan is None:
+        raise NotFoundError(f"plan version {version} not found")
+    return plan
+
+
+def entries_as_planned(plan: Plan | None) -> list[PlannedEntry]:
+    """A stored plan's entries in the solver's PlanEntry form (to seed or stabilise a re-plan)."""
+    if plan is None:
+        return []
+    out = []
+    for e in plan.entries:
+        out.append(PlannedEntry(
+            request_id=e.request_id, execution=e.execution, start=e.start, end=e.end,
+            start_step=-1, end_step=-1, slew_s=e.slew_s, transition_s=e.transition_s, setup_s=e.setup_s,
+            airmass_start=e.airmass_start, airmass_end=e.airmass_end, predicted_fwhm_arcsec=e.fwhm_arcsec,
+            predicted_pwv_mm=e.pwv_mm, transmission=e.transmission, merit=e.merit,
+            moon_sep_deg=e.moon_sep_deg if e.moon_sep_deg is not None else float("nan"), value=e.value,
+            fixed=e.fixed,
+        ))
+    return out
+
+
+def store_plan(s: Session, result: PlanResult, *, night: date, reason: str, planned_from: datetime,
+               specs: dict[int, RequestSpec], conditions_report_id: int | None,
+               extra_summary: dict[str, Any] | None = None) -> Plan:
+    """Write a checked plan as a new active version and supersede the night's previous one."""
+    if result.violations:
+        raise ValueError(f"refusing to store a plan that fails the checker: {result.violations[0]}")
+    previous = active_plan(s, night)
+    diff = plan_diff(list(previous.entries) if previous else None, result.entries)
+    now = utcnow()
+    if previous is not None:
+        previous.active = False
+        previous.superseded_at = now
+    summary = {
+        "unscheduled": [{"request_id": rid, "reason": why} for rid, why in result.unscheduled],
+        "timings": result.timings,
+        "used_greedy": result.used_greedy,
+        "stability_bonus": result.stability_bonus,
+        "science_value": result.science_value,
+        "message": result.message,
+        "stats": result.stats,
+    }
+    summary.update(extra_summary or {})
+    plan = Plan(
+        night=night, reason=reason[:2000] or "-", planned_from=planned_from,
+        conditions_report_id=conditions_report_id, solver_status=result.solver_status,
+        objective=float(result.objective), bound=float(result.bound), gap=float(result.gap),
+        runtime_s=float(result.runtime_s), greedy_objective=float(result.greedy_objective),
+        active=True, previous_id=previous.id if previous else None,
+        summary_json=json.dumps(summary, default=_json_default), diff_json=json.dumps(diff),
+    )
+    for e in result.entries:
+        spec = specs.get(e.request_id)
+        exposure = (spec.next_exposure_s if e.execution == 0 else spec.exposure_s) if spec else \
+            max((e.end - e.start).total_seconds() - e.setup_s, 0.0)
+        plan.entries.append(PlanEntry(
+            request_id=e.request_id, execution=e.execution, start=e.start, end=e.end, slew_s=float(e.slew_s),
+            transition_s=float(e.transition_s), setup_s=float(e.setup_s), exposure_s=float(exposure),
+            airmass_start=float(e.airmass_start), airmass_end=float(e.airmass_end),
+            fwhm_arcsec=float(e.predicted_fwhm_arcsec), pwv_mm=float(e.predicted_pwv_mm),
+            transmission=float(e.transmission), merit=float(e.merit),
+            moon_sep_deg=_finite_or_none(e.moon_sep_deg), value=float(e.value), fixed=bool(e.fixed),
+        ))
+    s.add(plan)
+    s.flush()
+    _mark_planned(s, {e.request_id for e in result.entries})
+    return plan
+
+
+def _mark_planned(s: Session, planned_ids: set[int]) -> None:
+    """queued <-> planned follows the active plan; done/withdrawn/expired are left alone."""
+    rows = s.scalars(select(Request).where(Request.status.in_(("queued", "planned"))))
+    for r in rows:
+        want = "planned" if r.id in planned_ids else "queued"
+        if r.status != want:
+            r.status = want
+
+
+def _finite_or_none(x: float | None) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    return x if x == x and abs(x) != float("inf") else None
+
+
+def _json_default(o: Any):
+    if isinstance(o, (datetime, date)):
+        return o.isoformat()
+    if hasattr(o, "item"):
+        return o.item()
+    return str(o)
+
+
+def plan_summary(plan: Plan) -> dict[str, Any]:
+    return json.loads(plan.summary_json or "{}")
+
+
+def plan_diff_of(plan: Plan) -> dict[str, Any]:
+    return json.loads(plan.diff_json or "{}")
+
+
+# --------------------------------------------------------------------------- re-plan orders
+
+def add_order(s: Session, reason: str, requested_by: str) -> ReplanOrder:
+    reason = (reason or "").strip()
+    if not reason or len(reason) > 2000:
+        raise InputError("reason", "must be 1 to 2000 characters")
+    order = ReplanOrder(reason=reason, requested_by=requested_by[:200])
+    s.add(order)
+    s.flush()
+    return order
+
+
+def pending_orders(s: Session) -> list[ReplanOrder]:
+    return list(s.scalars(select(ReplanOrder).where(ReplanOrder.done_at.is_(None)).order_by(ReplanOrder.id)))
+
+
+def finish_order(order: ReplanOrder, result: str, plan_id: int | None) -> None:
+    order.done_at = utcnow()
+    order.result = result[:2000]
+    order.plan_id = plan_id
+
+
+def order_dict(o: ReplanOrder) -> dict[str, Any]:
+    return {"id": o.id, "reason": o.reason, "requested_by": o.requested_by, "requested_at": iso(o.requested_at),
+            "taken_at": iso(o.taken_at), "done_at": iso(o.done_at), "result": o.result, "plan_version": o.plan_id}
+
+
+def entry_at(plan: Plan, when: datetime, horizon: timedelta = timedelta(0)) -> list[PlanEntry]:
+    """Entries in progress at ``when`` or starting within ``horizon`` after it."""
+    return [e for e in plan.entries if e.end > when and e.start <= when + horizon]

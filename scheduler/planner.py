@@ -1,0 +1,128 @@
+"""The edge between storage and the pure pipeline: read the queue, build, check, store.
+
+Used by `nightplan plan build`, `nightplan replan` (inline), the service and the demo. Keeps a
+SkyCache and the computed nights, so a long-lived process (the service) never recomputes the
+sky for a target it has seen; only the conditions-dependent layers are redone on a re-plan.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass
+from datetime import date, datetime, timezone
+from typing import Callable
+
+from .conditions.grid import ConditionsGrid, conditions_on_grid
+from .conditions.ingest import Sample
+from .config import ObservatoryConfig
+from .db import plans, store
+from .db.session import Database
+from .request_spec import RequestSpec
+from .sky.ephemeris import SkyCache
+from .sky.night import Night, compute_night, night_date_for
+from .solve.problem import PlanEntry, PlanResult
+
+
+@dataclass(frozen=True)
+class PlanInputs:
+    """A consistent snapshot of what a plan is built from (read in one transaction)."""
+
+    specs: list[RequestSpec]
+    weights: dict[str, float]
+    samples: list[Sample]
+    report_id: int | None
+    previous: list[PlanEntry]
+    previous_version: int | None
+
+
+@dataclass(frozen=True)
+class BuiltPlan:
+    version: int | None  # None when nothing was stored
+    result: PlanResult
+    night: Night
+    planned_from: datetime
+    conditions: ConditionsGrid
+
+
+def _sample_of(row) -> Sample:
+    return Sample(time=row.time, seeing_arcsec=row.seeing_arcsec, pwv_mm=row.pwv_mm, cloud_mag=row.cloud_mag,
+                  wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open)
+
+
+class Planner:
+    def __init__(self, config: ObservatoryConfig, sky_cache: SkyCache | None = None):
+        self.config = config
+        self.sky_cache = sky_cache or SkyCache()
+        self._nights: dict[tuple[date, int], Night] = {}
+        self._lock = threading.Lock()
+
+    # ---------------------------------------------------------------- pure-ish helpers
+
+    def night(self, night_date: date) -> Night:
+        key = (night_date, self.config.planning.step_s)
+        with self._lock:
+            if key not in self._nights:
+                self._nights[key] = compute_night(self.config.site, night_date, self.config.planning.step_s)
+            return self._nights[key]
+
+    def night_date(self, when: datetime | None = None) -> date:
+        return night_date_for(self.config.site, when or datetime.now(timezone.utc))
+
+    def conditions(self, night: Night, samples: list[Sample], report_id: int | None) -> ConditionsGrid:
+        return conditions_on_grid(samples, night.times_unix, self.config.defaults, report_id)
+
+    # ---------------------------------------------------------------- storage edges
+
+    def read_inputs(self, db: Database, night_date: date) -> PlanInputs:
+        with db.session() as s:
+            specs = store.active_specs(s)
+            weights = store.program_weights(s)
+            rep = store.latest_conditions(s)
+            samples = [_sample_of(r) for r in rep.samples] if rep is not None else []
+            prev = plans.active_plan(s, night_date)
+            previous = plans.entries_as_planned(prev)
+            return PlanInputs(specs, weights, samples, rep.id if rep else None, previous, prev.id if prev else None)
+
+    def build(self, inputs: PlanInputs, night: Night, *, now: datetime | None = None,
+              time_limit_s: float | None = None, progress: Callable[[str], None] | None = None,
+              use_previous: bool = True) -> tuple[PlanResult, ConditionsGrid]:
+        from .pipeline import build_plan
+
+        cond = self.conditions(night, inputs.samples, inputs.report_id)
+        result = build_plan(
+            self.config, inputs.specs, inputs.weights, night, cond,
+            sky=self.sky_cache, now=now,
+            previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
+            time_limit_s=time_limit_s, progress=progress,
+        )
+        return result, cond
+
+    def build_and_store(self, db: Database, *, night_date: date | None = None, reason: str,
+                        now: datetime | None = None, time_limit_s: float | None = None,
+                        progress: Callable[[str], None] | None = None) -> BuiltPlan:
+        """Build from the current queue and conditions and store a new active plan version.
+
+        ``now`` inside the night makes this a re-plan from now (the entry in progress is kept,
+        nothing new starts before now); otherwise the plan covers the whole night.
+        """
+        night_date = night_date or self.night_date(now)
+        night = self.night(night_date)
+        inputs = self.read_inputs(db, night_date)
+        in_night = now is not None and night.start <= now < night.end
+        result, cond = self.build(inputs, night, now=now if in_night else None,
+                                  time_limit_s=time_limit_s, progress=progress)
+        planned_from = now if in_night else night.start
+        if result.violations:  # the checker refused it: never stored
+            return BuiltPlan(None, result, night, planned_from, cond)
+        spec_by_id = {sp.id: sp for sp in inputs.specs}
+
+        def write(s):
+            return plans.store_plan(
+                s, result, night=night_date, reason=reason, planned_from=planned_from, specs=spec_by_id,
+                conditions_report_id=inputs.report_id,
+                extra_summary={"conditions_covered_fraction": float(cond.covered.mean()) if cond.covered.size else 0.0,
+                               "queue_size": len(inputs.specs)},
+            ).id
+
+        version = db.retrying(write)
+        return BuiltPlan(version, result, night, planned_from, cond)
