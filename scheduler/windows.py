@@ -1,0 +1,112 @@
+"""When can a request be observed tonight, and if never, which constraint binds. Pure.
+
+``binding_constraint`` reads one request's reason bitmask row: the binding constraint is the
+one that, if it alone were lifted, would open the most time (a constraint that is the only
+failure somewhere); when every time fails two or more constraints, it is the one failing
+most often. "Closest" is the time with the fewest failing constraints.
+"""
+
+from __future__ import annotations
+
+from datetime import date, datetime, timezone
+from typing import Any, Sequence
+
+import numpy as np
+
+from .conditions.grid import conditions_on_grid
+from .config import ObservatoryConfig
+from .feasibility import Feasibility, Reason, evaluate, reason_names
+from .request_spec import RequestSpec, iso
+from .sky.ephemeris import SkyGrid, compute_sky
+from .sky.night import Night, compute_night
+
+# Human wording of each constraint.
+DESCRIPTION = {
+    Reason.ALTITUDE: "altitude/airmass (telescope limits, zenith blind spot, max_airmass)",
+    Reason.TWILIGHT: "twilight (Sun too high for the band)",
+    Reason.MOON_SEP: "Moon separation",
+    Reason.SKY_BRIGHTNESS: "sky brightness / Moon illumination",
+    Reason.SEEING: "seeing (max_seeing_arcsec)",
+    Reason.RESOLUTION: "delivered resolution in the band (resolution_arcsec)",
+    Reason.PWV: "water vapour (max_pwv_mm)",
+    Reason.TRANSMISSION: "atmospheric transmission below the floor",
+    Reason.CLOUD: "cloud extinction (max_cloud_mag)",
+    Reason.CLOSURE: "dome closed (operator, wind or humidity)",
+    Reason.SUN: "sun avoidance",
+    Reason.WINDOW: "time window (not_before/not_after or periodic phase)",
+    Reason.NIGHT_END: "the exposure does not fit before the night ends",
+}
+
+
+def _utc(t: float) -> datetime:
+    return datetime.fromtimestamp(float(t), tz=timezone.utc)
+
+
+def runs(mask: np.ndarray) -> list[tuple[int, int]]:
+    """[start, end) index runs where mask is True."""
+    m = np.concatenate([[False], np.asarray(mask, dtype=bool), [False]])
+    d = np.flatnonzero(np.diff(m.astype(np.int8)))
+    return list(zip(d[0::2].tolist(), d[1::2].tolist()))
+
+
+def binding_constraint(reasons_row: np.ndarray) -> dict[str, Any]:
+    """The constraint that binds for one request over the night (see module docstring)."""
+    r = np.asarray(reasons_row, dtype=np.int64)
+    if r.size == 0:
+        return {"constraint": None, "description": "the night has no grid times", "closest_index": None}
+    best_bit, best_opened = None, 0
+    counts = {}
+    for bit in Reason:
+        has = (r & int(bit)) != 0
+        counts[bit] = int(has.sum())
+        opened = int(((r & ~int(bit)) == 0).sum() - (r == 0).sum())
+        if opened > best_opened:
+            best_bit, best_opened = bit, opened
+    if best_bit is None:
+        best_bit = max(counts, key=lambda b: counts[b])
+        if counts[best_bit] == 0:
+            return {"constraint": None, "description": "feasible", "closest_index": int(np.argmax(r == 0))}
+    n_fail = np.array([bin(int(x)).count("1") for x in r])
+    closest = int(np.argmin(n_fail))
+    return {
+        "constraint": best_bit.name,
+        "description": DESCRIPTION[best_bit],
+        "alone_opens_steps": best_opened,
+        "closest_index": closest,
+        "closest_failing": reason_names(int(r[closest])),
+    }
+
+
+def request_windows(spec: RequestSpec, feas: Feasibility, row: int, night: Night) -> dict[str, Any]:
+    """Feasible start windows of one request (row of feas), or the binding constraint."""
+    t = night.times_unix
+    step = night.step_s
+    dur = int(feas.duration_steps[row])
+    out: dict[str, Any] = {"request_id": spec.id, "night": night.date.isoformat(), "duration_s": dur * step,
+                           "windows": []}
+    for a, b in runs(feas.start_ok[row]):
+        out["windows"].append({
+            "start": iso(_utc(t[a])),  # earliest start
+            "last_start": iso(_utc(t[b - 1])),
+            "end": iso(_utc(t[b - 1] + dur * step)),  # latest end
+            "best_merit": round(float(feas.merit[row, a:b].max()), 4),
+        })
+    if not out["windows"]:
+        bc = binding_constraint(feas.reasons[row])
+        out["binding"] = bc["description"]
+        out["binding_constraint"] = bc["constraint"]
+        if bc.get("closest_index") is not None and t.size:
+            out["closest"] = {"time": iso(_utc(t[bc["closest_index"]])), "failing": bc.get("closest_failing", [])}
+    return out
+
+
+def feasible_windows(config: ObservatoryConfig, spec: RequestSpec, night_date: date, samples: Sequence,
+                     *, night: Night | None = None, sky: SkyGrid | None = None) -> dict[str, Any]:
+    """Everything from scratch for one request (CLI `request show --night`)."""
+    night = night or compute_night(config.site, night_date, config.planning.step_s)
+    sky = sky or compute_sky(config.site, night, np.array([spec.ra_deg]), np.array([spec.dec_deg]))
+    cond = conditions_on_grid(samples, night.times_unix, config.defaults)
+    feas = evaluate([spec], np.array([0]), sky, cond, config)
+    out = request_windows(spec, feas, 0, night)
+    out["conditions_covered_fraction"] = round(float(cond.covered.mean()), 3) if cond.covered.size else 0.0
+    return out
