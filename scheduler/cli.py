@@ -429,6 +429,3 @@ def main(argv: list[str] | None = None) -> None:
         click.echo(f"nightplan: error: {kind}: {first[:300]} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
         sys.exit(1)
 
-
-if __name__ == "__main__":
-    main()

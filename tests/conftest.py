@@ -23,7 +23,7 @@ def run_cli(*args: str, cwd: Path, env: dict | None = None, check: bool = False,
     full_env["PYTHONPATH"] = str(ROOT) + os.pathsep + full_env.get("PYTHONPATH", "")
     if env:
         full_env.update(env)
-    proc = subprocess.run([sys.executable, "-m", "scheduler.cli", *args], cwd=cwd, env=full_env,
+    proc = subprocess.run([sys.executable, "-m", "scheduler", *args], cwd=cwd, env=full_env,
                           capture_output=True, text=True, timeout=timeout)
     if check and proc.returncode != 0:
         raise AssertionError(f"nightplan {' '.join(args)} failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
