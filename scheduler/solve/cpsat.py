@@ -1,0 +1,356 @@
+"""The CP-SAT model of the night (OR-Tools), built in one function from a Problem.
+
+Formulation (docs/solver.md has the full write-up and the proof sketch):
+
+* Every request execution is an OPTIONAL interval. Its start is an integer grid step whose
+  domain is exactly the execution's feasible starts (setup + exposure feasible throughout).
+* The interval is extended to the LEFT by a variable ``transition_before``: it covers the gap
+  before the entry. All extended intervals go into one NoOverlap, so nothing else can sit in
+  the gap, and the gap is at least ``transition_before``.
+* Each present execution names how it is entered, exactly one of:
+    - ``follows[i, j]``: it comes straight after execution i. Then its extended interval
+      starts exactly when i ends (so i really is the previous entry) and
+      transition_before >= T[i, j], the pair's transition bound.
+    - ``after_gap[j]``: no named predecessor. Then transition_before >= tmax[j], a bound on
+      the transition into j from ANY target at ANY time, so whatever precedes it is covered.
+  ``follows`` literals exist only for a sparse set of candidate pairs (the K with the
+  smallest transition bound into each execution, plus every pair the hint uses); pairs without
+  one simply pay tmax[j] if they end up adjacent. Sparse arcs cost at most a few minutes of
+  idle time in rare cases and never make a plan wrong.
+* Repeats: execution k+1 only if k; start-to-start spacing >= max(duration, min_spacing).
+* Objective: sum over executions of the value coefficient of the merit bucket holding its
+  start (a bucket literal per bucket), plus a stability bonus for executions that stay within
+  ``stability_window`` steps of their start in the previous plan. Maximised.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
+import numpy as np
+from ortools.sat.python import cp_model
+
+from .problem import Placement, Problem, VALUE_SCALE, objective_of
+
+
+@dataclass
+class ModelVars:
+    present: list
+    start: list
+    transition_before: list
+    buckets: list  # per execution: list of (literal, bucket index) (empty when a single bucket)
+    follows: dict  # (i, j) -> literal
+    after_gap: dict  # j -> literal
+    keep: dict  # j -> literal (stability)
+
+
+@dataclass(frozen=True)
+class SolveOutcome:
+    placements: list[Placement]
+    status: str
+    objective: float  # science-value units (objective / VALUE_SCALE)
+    bound: float
+    gap: float
+    runtime_s: float
+    n_arcs: int
+    n_buckets: int
+
+
+def candidate_arcs(problem: Problem, k_best: int, forced: Sequence[tuple[int, int]] = ()) -> list[tuple[int, int]]:
+    """Pairs (i, j) that get a ``follows`` literal.
+
+    Into each execution j: the k_best predecessors with the smallest transition bound below
+    tmax[j] (ties: higher base value per step first), the previous execution of the same
+    request, all kept (fixed) executions, and every pair in ``forced`` (the hints' pairs).
+    """
+    P = problem
+    execs = P.execs
+    n_e = len(execs)
+    if n_e == 0:
+        return []
+    req = np.array([ex.req for ex in execs])
+    dur = np.array([ex.duration for ex in execs])
+    first = np.array([ex.starts.min() if ex.fixed_start is None else ex.fixed_start for ex in execs])
+    last = np.array([ex.starts.max() if ex.fixed_start is None else ex.fixed_start for ex in execs])
+    density = P.base_value[req] / np.maximum(dur, 1)
+    fixed = np.array([ex.fixed_start is not None for ex in execs])
+    arcs: set[tuple[int, int]] = set()
+    for j in range(n_e):
+        if execs[j].in_progress:
+            continue
+        t = P.T[req, req[j]]
+        ok = (t < P.tmax[req[j]]) & (first + dur + t <= last[j]) & (np.arange(n_e) != j)
+        same = req == req[j]
+        ok &= ~same | (np.array([ex.k for ex in execs]) == execs[j].k - 1)
+        cand = np.flatnonzero(ok & ~fixed)
+        if cand.size > k_best:
+            order = np.lexsort((-density[cand], t[cand]))
+            cand = cand[order[:k_best]]
+        arcs.update((int(i), j) for i in cand)
+        arcs.update((int(i), j) for i in np.flatnonzero(ok & (fixed | same)))
+        if fixed[j]:
+            arcs.update((int(i), j) for i in np.flatnonzero(ok))
+    for i, j in forced:
+        if i != j and not execs[j].in_progress:
+            arcs.add((int(i), int(j)))
+    return sorted(arcs)
+
+
+def build_model(problem: Problem, arcs: Sequence[tuple[int, int]]) -> tuple[cp_model.CpModel, ModelVars]:
+    """The whole CP-SAT model. Pure: reads the Problem's arrays, no I/O."""
+    P = problem
+    m = cp_model.CpModel()
+    n_e = len(P.execs)
+    horizon = P.n_t + int(P.tmax.max(initial=0)) + 1
+    present, start, before, buckets, tmin = [], [], [], [], []
+    intervals = []
+    objective = []
+    preds: dict[int, list[int]] = {j: [] for j in range(n_e)}
+    for i, j in arcs:
+        preds[j].append(i)
+
+    for j, ex in enumerate(P.execs):
+        rid = int(P.request_ids[ex.req])
+        name = f"r{rid}_x{ex.k}"
+        T_in = [int(P.T[P.execs[i].req, ex.req]) for i in preds[j]]
+        tmax_j = int(P.tmax[ex.req])
+        if ex.in_progress:
+            # The entry being observed: kept exactly, no transition before it to model.
+            p = m.NewConstant(1)
+            s = m.NewConstant(int(ex.fixed_start))
+            pre = m.NewConstant(0)
+            intervals.append(m.NewIntervalVar(s, ex.duration, s + ex.duration, f"in_progress_{name}"))
+            objective.append(int(ex.bucket_coef[0]) * p)
+            present.append(p), start.append(s), before.append(pre), buckets.append([]), tmin.append(0)
+            continue
+        p = m.NewBoolVar(f"run_{name}")
+        if ex.fixed_start is not None:
+            s = m.NewIntVar(int(ex.fixed_start), int(ex.fixed_start), f"start_{name}")
+            m.Add(p == 1)
+        else:
+            dom = cp_model.Domain.FromIntervals([[int(lo), int(hi)] for lo, hi in _runs_of(ex.starts)])
+            s = m.NewIntVarFromDomain(dom, f"start_{name}")
+        tmin.append(min([tmax_j] + T_in))
+        pre = m.NewIntVar(tmin[-1], horizon, f"transition_before_{name}")
+        gap_start = m.NewIntVar(-horizon, P.n_t, f"gap_start_{name}")  # = start - transition_before
+        intervals.append(m.NewOptionalIntervalVar(gap_start, pre + ex.duration, s + ex.duration, p, f"slot_{name}"))
+        # Value: the merit bucket that holds the start.
+        lo, hi, coef = ex.bucket_lo, ex.bucket_hi, ex.bucket_coef
+        if ex.fixed_start is not None:
+            b = int(np.searchsorted(lo, ex.fixed_start, side="right")) - 1
+            objective.append(int(coef[b]) * p)
+            buckets.append([])
+        elif len(lo) == 1:
+            objective.append(int(coef[0]) * p)
+            buckets.append([])
+        else:
+            lits = []
+            for b in range(len(lo)):
+                y = m.NewBoolVar(f"starts_in_bucket_{name}_{b}")
+                m.Add(s >= int(lo[b])).OnlyEnforceIf(y)
+                m.Add(s <= int(hi[b])).OnlyEnforceIf(y)
+                lits.append((y, b))
+                objective.append(int(coef[b]) * y)
+            m.Add(sum(y for y, _ in lits) == p)
+            buckets.append(lits)
+        present.append(p), start.append(s), before.append(pre)
+
+    follows: dict[tuple[int, int], object] = {}
+    after_gap: dict[int, object] = {}
+    succ: dict[int, list] = {i: [] for i in range(n_e)}
+    for j, ex in enumerate(P.execs):
+        if ex.in_progress:
+            continue
+        name = f"r{int(P.request_ids[ex.req])}_x{ex.k}"
+        g = m.NewBoolVar(f"after_gap_{name}")
+        m.Add(before[j] >= int(P.tmax[ex.req])).OnlyEnforceIf(g)
+        after_gap[j] = g
+        entry = [g]
+        for i in preds[j]:
+            exi = P.execs[i]
+            f = m.NewBoolVar(f"follows_{name}_after_r{int(P.request_ids[exi.req])}_x{exi.k}")
+            m.Add(start[j] - before[j] == start[i] + exi.duration).OnlyEnforceIf(f)
+            m.Add(before[j] >= int(P.T[exi.req, ex.req])).OnlyEnforceIf(f)
+            m.AddImplication(f, present[i])
+            follows[(i, j)] = f
+            entry.append(f)
+            succ[i].append(f)
+        m.Add(sum(entry) == present[j])
+    for i, lits in succ.items():
+        if len(lits) > 1:
+            m.Add(sum(lits) <= present[i])
+
+    m.AddNoOverlap(intervals)
+    _add_energy_cuts(m, P, present, tmin, buckets)
+
+    # Repeats of one request: in order, spaced start to start.
+    by_req: dict[int, list[int]] = {}
+    for j, ex in enumerate(P.execs):
+        by_req.setdefault(ex.req, []).append(j)
+    for r, js in by_req.items():
+        js.sort(key=lambda j: P.execs[j].k)
+        for a, b in zip(js, js[1:]):
+            gap = max(P.execs[a].duration, int(P.spacing_steps[r]))
+            m.AddImplication(present[b], present[a])
+            m.Add(start[b] >= start[a] + gap).OnlyEnforceIf(present[b])
+
+    # Stability: stay near the previous plan's start unless the gain is worth more.
+    keep: dict[int, object] = {}
+    for j, ex in enumerate(P.execs):
+        c = P.stability_coef(j)
+        if c <= 0:
+            continue
+        k = m.NewBoolVar(f"keeps_previous_start_r{int(P.request_ids[ex.req])}_x{ex.k}")
+        m.AddImplication(k, present[j])
+        m.Add(start[j] >= ex.prev_start - P.stability_window).OnlyEnforceIf(k)
+        m.Add(start[j] <= ex.prev_start + P.stability_window).OnlyEnforceIf(k)
+        objective.append(c * k)
+        keep[j] = k
+
+    m.Maximize(sum(objective))
+    return m, ModelVars(present, start, before, buckets, follows, after_gap, keep)
+
+
+def _add_energy_cuts(m: cp_model.CpModel, P: Problem, present, tmins, buckets,
+                     window: int = 60, stride: int = 30) -> None:
+    """Redundant constraints that give the LP a usable bound (NoOverlap alone relaxes badly).
+
+    In every time window [a, a + window) the entries, each with the least transition it can
+    have before it, occupy at most window steps. An execution starting in bucket b surely
+    covers min over s in {lo_b, hi_b} of |[s - tmin, s + duration) & [a, a + window)| steps
+    of it (the overlap is concave in s, so its minimum is at an end of the bucket).
+    """
+    terms: dict[int, list] = {}
+    starts = range(P.now_step - window // 2, P.n_t, stride)
+    for j, ex in enumerate(P.execs):
+        tmin = tmins[j]
+        if ex.fixed_start is not None:
+            opts = [(present[j], ex.fixed_start, ex.fixed_start)]
+        elif buckets[j]:
+            opts = [(y, int(ex.bucket_lo[b]), int(ex.bucket_hi[b])) for y, b in buckets[j]]
+        else:
+            opts = [(present[j], int(ex.bucket_lo[0]), int(ex.bucket_hi[-1]))]
+        for lit, lo, hi in opts:
+            first_w = (lo - tmin - P.now_step + window // 2) // stride - 1
+            last_w = (hi + ex.duration - P.now_step + window // 2) // stride + 1
+            for w in range(max(0, first_w), max(0, last_w) + 1):
+                a = P.now_step - window // 2 + w * stride
+                if a >= P.n_t:
+                    break
+                cov = min(_overlap(s - tmin, s + ex.duration, a, a + window) for s in (lo, hi))
+                if cov > 0:
+                    terms.setdefault(a, []).append((cov, lit))
+    for a, lst in terms.items():
+        if sum(c for c, _ in lst) > window:
+            m.Add(sum(c * lit for c, lit in lst) <= window)
+
+
+def _overlap(a0: int, a1: int, b0: int, b1: int) -> int:
+    return max(0, min(a1, b1) - max(a0, b0))
+
+
+def _runs_of(starts: np.ndarray) -> list[tuple[int, int]]:
+    if starts.size == 0:
+        return []
+    br = np.flatnonzero(np.diff(starts) != 1)
+    lo = np.concatenate([[starts[0]], starts[br + 1]])
+    hi = np.concatenate([starts[br], [starts[-1]]])
+    return list(zip(lo.tolist(), hi.tolist()))
+
+
+def add_hint(model: cp_model.CpModel, v: ModelVars, problem: Problem, plan: Sequence[Placement]) -> None:
+    """Hint every decision variable from a model-feasible plan (greedy or previous)."""
+    P = problem
+    at = {p.exec_index: p.start for p in plan}
+    order = sorted(plan, key=lambda p: p.start)
+    prev_of: dict[int, int | None] = {}
+    for a, b in zip([None] + order[:-1], order):
+        prev_of[b.exec_index] = None if a is None else a.exec_index
+    for j, ex in enumerate(P.execs):
+        if ex.in_progress:
+            continue
+        on = j in at
+        model.AddHint(v.present[j], on)
+        if not on:
+            for y, _ in v.buckets[j]:
+                model.AddHint(y, False)
+            if j in v.after_gap:
+                model.AddHint(v.after_gap[j], False)
+            continue
+        s = at[j]
+        model.AddHint(v.start[j], s)
+        for y, b in v.buckets[j]:
+            model.AddHint(y, bool(ex.bucket_lo[b] <= s <= ex.bucket_hi[b]))
+        i = prev_of[j]
+        use_arc = i is not None and (i, j) in v.follows and s - (at[i] + P.execs[i].duration) < P.tmax[ex.req]
+        model.AddHint(v.after_gap[j], not use_arc)
+        if use_arc:
+            model.AddHint(v.transition_before[j], s - (at[i] + P.execs[i].duration))
+        else:
+            model.AddHint(v.transition_before[j], int(P.tmax[ex.req]))
+        if j in v.keep:
+            model.AddHint(v.keep[j], abs(s - ex.prev_start) <= P.stability_window)
+    for (i, j), f in v.follows.items():
+        model.AddHint(f, j in at and prev_of.get(j) == i and at[j] - (at[i] + P.execs[i].duration) < P.tmax[P.execs[j].req])
+
+
+def hint_pairs(problem: Problem, plan: Sequence[Placement]) -> list[tuple[int, int]]:
+    """Consecutive pairs of a plan closer than tmax: they need a follows literal."""
+    order = sorted(plan, key=lambda p: p.start)
+    out = []
+    for a, b in zip(order, order[1:]):
+        gap = b.start - (a.start + problem.execs[a.exec_index].duration)
+        if gap < problem.tmax[problem.execs[b.exec_index].req]:
+            out.append((a.exec_index, b.exec_index))
+    return out
+
+
+class _Progress(cp_model.CpSolverSolutionCallback):
+    def __init__(self, cb: Callable[[str], None], t0: float):
+        super().__init__()
+        self.cb, self.t0 = cb, t0
+
+    def on_solution_callback(self) -> None:
+        self.cb(f"solve: objective {self.ObjectiveValue() / VALUE_SCALE:.3f} bound "
+                f"{self.BestObjectiveBound() / VALUE_SCALE:.3f} at {time.perf_counter() - self.t0:.1f}s")
+
+
+def solve_problem(problem: Problem, *, time_limit_s: float = 10.0, gap_tolerance: float = 0.01,
+                  hint: Sequence[Placement] | None = None, k_best: int = 10, num_workers: int | None = None,
+                  seed: int = 0, progress: Callable[[str], None] | None = None,
+                  model_timer: Callable[[float], None] | None = None) -> SolveOutcome:
+    """Build, hint and solve the model. Stops at the time limit or the relative gap tolerance."""
+    t0 = time.perf_counter()
+    arcs = candidate_arcs(problem, k_best, hint_pairs(problem, hint) if hint else ())
+    model, v = build_model(problem, arcs)
+    if hint:
+        add_hint(model, v, problem, hint)
+    n_buckets = sum(max(1, len(b)) for b in v.buckets)
+    if model_timer:
+        model_timer(time.perf_counter() - t0)
+    solver = cp_model.CpSolver()
+    prm = solver.parameters
+    prm.max_time_in_seconds = float(time_limit_s)
+    prm.relative_gap_limit = float(gap_tolerance)
+    prm.num_workers = int(num_workers or os.cpu_count() or 1)
+    prm.random_seed = seed
+    prm.cp_model_probing_level = 0  # probing costs seconds of wall time on 10^4 booleans and finds little
+    t1 = time.perf_counter()
+    cb = _Progress(progress, t1) if progress else None
+    status = solver.Solve(model, cb) if cb else solver.Solve(model)
+    runtime = time.perf_counter() - t1
+    name = solver.StatusName(status)
+    if status not in (cp_model.OPTIMAL, cp_model.FEASIBLE):
+        return SolveOutcome([], name, 0.0, float("inf"), float("inf"), runtime, len(arcs), n_buckets)
+    plan = [Placement(j, int(solver.Value(v.start[j]))) for j in range(len(problem.execs))
+            if solver.Value(v.present[j])]
+    plan.sort(key=lambda p: p.start)
+    obj = solver.ObjectiveValue()
+    sci, stab = objective_of(problem, plan)
+    assert abs((sci + stab) - obj) < 0.5, "model objective and plan value disagree"
+    bound = max(solver.BestObjectiveBound(), obj)
+    gap = 0.0 if status == cp_model.OPTIMAL else (bound - obj) / max(abs(bound), 1e-9)
+    return SolveOutcome(plan, name, obj / VALUE_SCALE, bound / VALUE_SCALE, gap, runtime, len(arcs), n_buckets)

@@ -1,0 +1,401 @@
+"""The night's scheduling problem as plain arrays, and the plan contract (PlanEntry, PlanResult).
+
+``build_problem`` turns feasibility/merit arrays + requests + program weights (+ a previous
+plan when re-planning) into a ``Problem``: one node per request execution with its feasible
+start steps, its value per start (merit buckets), and the transition bounds between requests.
+The greedy dispatcher and the CP-SAT model both read a Problem; neither touches I/O.
+
+Science value of one execution started at step s (documented in docs/solver.md):
+
+    value = program_weight * (priority / 5) * (exposure_s / 3600) * merit(s)
+
+priority runs 1..10 with 10 the most important; merit in (0, 1] comes from feasibility.
+merit(s) is read on buckets of ``bucket_steps`` consecutive feasible starts: the bucket's lowest
+merit counts for every start in it (conservative; bucket_steps=1 is exact). The objective is
+integer: round(VALUE_SCALE * value).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Sequence
+
+import numpy as np
+
+from ..config import ObservatoryConfig
+from ..request_spec import RequestSpec
+from .transitions import pair_transition_steps
+
+VALUE_SCALE = 10_000  # objective units per unit of science value (integer objective for CP-SAT)
+
+
+# --------------------------------------------------------------------------- plan contract
+
+@dataclass(frozen=True)
+class PlanEntry:
+    """One planned execution of a request. Times are aware UTC; steps index the night grid.
+
+    The entry occupies grid steps [start_step, end_step): setup (acquisition) then exposure.
+    The transition before it (slew + settle + instrument/filter change from the previous
+    entry) happens in the gap before start_step; ``transition_s`` is that time, ``slew_s``
+    its axis-motion part. Predicted values are at the start step unless named _end.
+    """
+
+    request_id: int
+    execution: int  # 0 = the next execution still owed, 1 = the one after, ...
+    start: datetime
+    end: datetime
+    start_step: int
+    end_step: int
+    slew_s: float  # axis motion from the previous entry's target (0 for the first entry)
+    transition_s: float  # slew + settle + instrument or filter change (0 for the first entry)
+    setup_s: float  # acquisition and set-up on this target, inside [start, end)
+    airmass_start: float
+    airmass_end: float  # at the last step the entry covers
+    predicted_fwhm_arcsec: float
+    predicted_pwv_mm: float
+    transmission: float
+    merit: float  # merit at the start step
+    moon_sep_deg: float
+    value: float  # science value counted in the objective (see module docstring)
+    program: str = ""
+    target: str = ""
+    band: str = ""
+    instrument: str = ""
+    fixed: bool = False  # kept from the previous plan (in progress or inside the freeze horizon)
+
+
+@dataclass(frozen=True)
+class PlanResult:
+    """A built night plan and how it was found. ``violations`` must be empty to store it.
+
+    objective/bound/gap are in science-value units on the model objective: the sum of the
+    entries' values plus ``stability_bonus`` (non-zero only when re-planning against a previous
+    plan). gap = (bound - objective) / max(bound, tiny); 0 when proven optimal.
+    """
+
+    entries: tuple[PlanEntry, ...]
+    unscheduled: tuple[tuple[int, str], ...]  # (request_id, short reason)
+    solver_status: str  # OPTIMAL, FEASIBLE, or GREEDY (greedy plan kept), or EMPTY
+    objective: float
+    bound: float
+    gap: float
+    runtime_s: float  # CP-SAT wall time
+    greedy_objective: float
+    used_greedy: bool
+    timings: dict  # seconds: sky, feasibility, model, solve, check
+    violations: tuple[str, ...]
+    stability_bonus: float = 0.0
+    now_step: int = 0
+    message: str = ""
+    stats: dict = field(default_factory=dict)  # model size: requests, executions, arcs, buckets
+
+    @property
+    def science_value(self) -> float:
+        return self.objective - self.stability_bonus
+
+
+# --------------------------------------------------------------------------- problem
+
+@dataclass
+class Execution:
+    """One node: execution ``k`` of request ``req`` (index into Problem.requests)."""
+
+    req: int
+    k: int
+    duration: int  # grid steps
+    starts: np.ndarray  # sorted feasible start steps (>= now), int64
+    bucket_lo: np.ndarray  # bucket b covers starts in [bucket_lo[b], bucket_hi[b]]
+    bucket_hi: np.ndarray
+    bucket_coef: np.ndarray  # integer objective coefficient per bucket
+    fixed_start: int | None = None  # in progress or frozen: start is kept exactly
+    in_progress: bool = False
+    prev_start: int | None = None  # start in the previous plan (stability, hint)
+
+    def coef_at(self, s: int) -> int:
+        b = int(np.searchsorted(self.bucket_lo, s, side="right")) - 1
+        if b < 0 or s > self.bucket_hi[b]:
+            raise ValueError(f"step {s} is not a feasible start of this execution")
+        return int(self.bucket_coef[b])
+
+
+@dataclass
+class Problem:
+    config: ObservatoryConfig
+    step_s: int
+    n_t: int
+    now_step: int
+    requests: list[RequestSpec]  # only those in the model
+    request_ids: np.ndarray  # [n_req]
+    feas_rows: np.ndarray  # [n_req] row in the Feasibility
+    base_value: np.ndarray  # [n_req] weight * priority/5 * exposure_h (before merit)
+    instruments: list[str]
+    bands: list[str]
+    spacing_steps: np.ndarray  # [n_req] min start-to-start spacing between executions
+    T: np.ndarray  # [n_req, n_req] transition bound in steps (see transitions.pair_transition_steps)
+    tmax: np.ndarray  # [n_req] transition bound into a request from anything
+    execs: list[Execution]
+    stability_weight: float
+    stability_window: int  # steps: an execution "stays" if it starts within this of its old start
+    unscheduled: dict[int, str]  # request_id -> reason, for requests that are not in the model
+    dropped_fixed: list[tuple[int, str]] = field(default_factory=list)
+
+    def exec_T(self, a: int, b: int) -> int:
+        return int(self.T[self.execs[a].req, self.execs[b].req])
+
+    def stability_coef(self, e: int) -> int:
+        ex = self.execs[e]
+        if ex.prev_start is None or ex.fixed_start is not None or self.stability_weight <= 0:
+            return 0
+        s = ex.prev_start
+        try:
+            c = ex.coef_at(s)
+        except ValueError:
+            c = int(ex.bucket_coef.max()) if ex.bucket_coef.size else 0
+        return int(round(self.stability_weight * c))
+
+
+def science_base_value(spec: RequestSpec, program_weights: dict[str, float]) -> float:
+    w = float(program_weights.get(spec.program, 1.0))
+    return w * (spec.priority / 5.0) * (spec.exposure_s / 3600.0)
+
+
+def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
+    """Inclusive (lo, hi) runs of True in a 1-D bool array."""
+    if not mask.any():
+        return []
+    m = np.concatenate([[False], mask, [False]]).astype(np.int8)
+    d = np.diff(m)
+    lo = np.flatnonzero(d == 1)
+    hi = np.flatnonzero(d == -1) - 1
+    return list(zip(lo.tolist(), hi.tolist()))
+
+
+def _buckets(starts_mask: np.ndarray, merit: np.ndarray, base: float, bucket_steps: int):
+    lo_l, hi_l, coef_l = [], [], []
+    for lo, hi in _runs(starts_mask):
+        for b0 in range(lo, hi + 1, bucket_steps):
+            b1 = min(hi, b0 + bucket_steps - 1)
+            m = float(np.min(merit[b0:b1 + 1]))
+            lo_l.append(b0)
+            hi_l.append(b1)
+            coef_l.append(max(1, int(round(VALUE_SCALE * base * m))))
+    return (np.array(lo_l, dtype=np.int64), np.array(hi_l, dtype=np.int64), np.array(coef_l, dtype=np.int64))
+
+
+def _sliding_all(ok: np.ndarray, d: int) -> np.ndarray:
+    """start_ok for duration d: ok at every step of [t, t + d) and t + d <= n_t."""
+    n_t = ok.shape[0]
+    c = np.concatenate([[0], np.cumsum(ok, dtype=np.int64)])
+    out = np.zeros(n_t, dtype=bool)
+    if d <= n_t:
+        out[: n_t - d + 1] = (c[d:] - c[: n_t - d + 1]) == d
+    return out
+
+
+_REASON_LABELS = {
+    1 << 0: "altitude", 1 << 1: "twilight", 1 << 2: "moon separation", 1 << 3: "sky brightness",
+    1 << 4: "seeing", 1 << 5: "resolution", 1 << 6: "pwv", 1 << 7: "transmission", 1 << 8: "cloud",
+    1 << 9: "closure", 1 << 10: "sun avoidance", 1 << 11: "window", 1 << 12: "night end",
+}
+
+
+def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step: int, duration: int,
+                          step_s: int) -> str:
+    """Short reason a request has no feasible start tonight (after now)."""
+    r = reasons_row[now_step:].astype(np.int64)
+    ok = ok_row[now_step:]
+    if r.size == 0:
+        return "never feasible: night over"
+    if ok.any():
+        return f"never feasible: no window of {duration * step_s / 60:.0f} min"
+    always = [lab for bit, lab in _REASON_LABELS.items() if bit != 1 << 12 and np.all(r & bit)]
+    if always:
+        return "never feasible: " + always[0]
+    counts = {lab: int(np.count_nonzero(r & bit)) for bit, lab in _REASON_LABELS.items() if bit != 1 << 12}
+    top = sorted((c, lab) for lab, c in counts.items() if c)[::-1][:2]
+    return "never feasible: " + " + ".join(lab for _, lab in top)
+
+
+def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], program_weights: dict[str, float],
+                  feas, alt: np.ndarray, az: np.ndarray, *, step_s: int, now_step: int = 0,
+                  previous: Sequence[PlanEntry] | None = None, freeze_steps: int = 0,
+                  stability_weight: float = 0.2, stability_window: int = 15, bucket_steps: int = 10,
+                  transition_bucket_steps: int = 15) -> Problem:
+    """Build the Problem. ``feas`` rows follow ``requests``; alt/az are [n_req, n_t] per request.
+
+    previous: entries of the previous plan. One that started before now and ends after it is
+    kept exactly (in progress) if its remaining steps are still feasible; one starting within
+    ``freeze_steps`` of now keeps its start if that start is still feasible; the others only
+    guide the solution (stability bonus, hint).
+    """
+    n_all, n_t = feas.ok.shape
+    prev_by_req: dict[int, list[PlanEntry]] = {}
+    for e in previous or ():
+        if e.end_step > now_step:
+            prev_by_req.setdefault(int(e.request_id), []).append(e)
+    for v in prev_by_req.values():
+        v.sort(key=lambda e: e.start_step)
+
+    keep: list[int] = []
+    unscheduled: dict[int, str] = {}
+    dropped_fixed: list[tuple[int, str]] = []
+    exec_specs: list[list[tuple[int, np.ndarray, int | None, bool, int | None]]] = []
+    for r, spec in enumerate(requests):
+        rid = int(feas.request_ids[r]) if spec.id is None else int(spec.id)
+        n_rep = spec.remaining_repeats
+        prevs = prev_by_req.get(rid, [])
+        if n_rep <= 0 and not prevs:
+            continue
+        inst = config.instrument_for(spec.band, spec.instrument)
+        d0 = int(feas.duration_steps[r])
+        d_full = max(d0, int(math.ceil((inst.setup_s + spec.exposure_s) / step_s - 1e-9)))
+        so0 = feas.start_ok[r].copy()
+        so0[:now_step] = False
+        so_full = so0 if d_full == d0 else _sliding_all(feas.ok[r], d_full)
+        so_full[:now_step] = False
+        spacing = int(math.ceil((spec.min_spacing_s or 0.0) / step_s - 1e-9))
+        execs_r = []
+        pi = 0
+        # In progress: kept exactly while its remaining steps stay feasible.
+        if prevs and prevs[0].start_step < now_step:
+            p = prevs[0]
+            pi = 1
+            if feas.ok[r, now_step:p.end_step].all():
+                execs_r.append((p.end_step - p.start_step, np.array([p.start_step]), p.start_step, True, p.start_step))
+            else:
+                bad = never_feasible_reason(feas.reasons[r], feas.ok[r], now_step, p.end_step - now_step, step_s)
+                dropped_fixed.append((rid, "interrupted: " + bad.split(": ", 1)[1]))
+        n_left = max(0, n_rep - len(execs_r))
+        for k in range(n_left):
+            d = d0 if (k == 0 and not execs_r) else d_full
+            mask = so0 if d == d0 else so_full
+            p = prevs[pi] if pi < len(prevs) else None
+            pi += 1
+            fixed = None
+            prev_start = p.start_step if p is not None else None
+            if p is not None and now_step <= p.start_step < now_step + freeze_steps and mask[p.start_step]:
+                fixed = p.start_step
+            execs_r.append((d, np.flatnonzero(mask), fixed, False, prev_start))
+        # Cap executions at what can fit (start-to-start spacing >= max(duration, min_spacing)).
+        free = [x for x in execs_r if not x[3]]
+        if free and free[0][1].size:
+            span = int(free[0][1][-1] - free[0][1][0])
+            cap = 1 + span // max(1, max(free[0][0], spacing))
+            free = free[:cap]
+        elif free:
+            free = []
+        execs_r = [x for x in execs_r if x[3]] + free
+        if not execs_r:
+            unscheduled[rid] = never_feasible_reason(feas.reasons[r], feas.ok[r], now_step, d0, step_s)
+            continue
+        keep.append(r)
+        exec_specs.append(execs_r)
+
+    reqs = [requests[r] for r in keep]
+    n = len(reqs)
+    rows = np.array(keep, dtype=np.int64)
+    insts = [config.instrument_for(s.band, s.instrument).name for s in reqs]
+    bands = [s.band for s in reqs]
+    base = np.array([science_base_value(s, program_weights) for s in reqs], dtype=np.float64)
+    spacing = np.array([int(math.ceil((s.min_spacing_s or 0.0) / step_s - 1e-9)) for s in reqs], dtype=np.int64)
+
+    execs: list[Execution] = []
+    for i, (r, lst) in enumerate(zip(keep, exec_specs)):
+        merit = np.asarray(feas.merit[r], dtype=np.float64)
+        for k, (d, starts, fixed, in_prog, prev_start) in enumerate(lst):
+            if in_prog:
+                s = int(starts[0])
+                m = float(merit[s]) if 0 <= s < n_t and merit[s] > 0 else float(merit[now_step:].max(initial=0.0))
+                coef = np.array([max(1, int(round(VALUE_SCALE * base[i] * max(m, 1e-6))))])
+                execs.append(Execution(i, k, d, starts, starts.copy(), starts.copy(), coef, fixed, True, prev_start))
+                continue
+            mask = np.zeros(n_t, dtype=bool)
+            mask[starts] = True
+            lo, hi, coef = _buckets(mask, merit, base[i], max(1, bucket_steps))
+            execs.append(Execution(i, k, d, starts, lo, hi, coef, fixed, False, prev_start))
+
+    # Transition bounds between requests from where each can end to where each can start.
+    end_ok = np.zeros((n, n_t), dtype=bool)
+    start_ok = np.zeros((n, n_t), dtype=bool)
+    for ex in execs:
+        start_ok[ex.req, ex.starts[(ex.starts >= 0) & (ex.starts < n_t)]] = True
+        ends = ex.starts + ex.duration
+        end_ok[ex.req, ends[ends < n_t]] = True
+    T, tmax = pair_transition_steps(config, step_s, alt[rows] if n else alt[:0], az[rows] if n else az[:0],
+                                    insts, bands, end_ok, start_ok, bucket_steps=transition_bucket_steps)
+    _release_clashing_fixed(execs, T)
+    return Problem(
+        config=config, step_s=step_s, n_t=n_t, now_step=now_step, requests=reqs,
+        request_ids=np.array([int(feas.request_ids[r]) if requests[r].id is None else int(requests[r].id)
+                              for r in keep], dtype=np.int64),
+        feas_rows=rows, base_value=base, instruments=insts, bands=bands, spacing_steps=spacing,
+        T=T, tmax=tmax, execs=execs, stability_weight=stability_weight if previous else 0.0,
+        stability_window=stability_window, unscheduled=unscheduled, dropped_fixed=dropped_fixed,
+    )
+
+
+def _release_clashing_fixed(execs: list[Execution], T: np.ndarray) -> None:
+    """Frozen entries whose gap no longer holds tonight's transition bound become free again."""
+    fixed = sorted((ex for ex in execs if ex.fixed_start is not None), key=lambda ex: ex.fixed_start)
+    last = None
+    for ex in fixed:
+        if last is not None and not ex.in_progress:
+            gap = ex.fixed_start - (last.fixed_start + last.duration)
+            if gap < T[last.req, ex.req]:
+                ex.fixed_start = None  # back to its feasible starts; prev_start still guides it
+                continue
+        last = ex
+
+
+# --------------------------------------------------------------------------- solutions
+
+@dataclass(frozen=True)
+class Placement:
+    exec_index: int
+    start: int
+
+
+def check_model_feasible(problem: Problem, plan: Sequence[Placement]) -> list[str]:
+    """Does a plan satisfy the MODEL's constraints (transition bounds, starts, repeats)?
+
+    Used to validate hints and greedy plans; the independent checker validates physics.
+    """
+    errs = []
+    ps = sorted(plan, key=lambda p: p.start)
+    for p in ps:
+        ex = problem.execs[p.exec_index]
+        if ex.fixed_start is not None and p.start != ex.fixed_start:
+            errs.append(f"exec {p.exec_index} moved from fixed start {ex.fixed_start}")
+        if not np.any(ex.starts == p.start):
+            errs.append(f"exec {p.exec_index} start {p.start} not feasible")
+    for a, b in zip(ps, ps[1:]):
+        ea = problem.execs[a.exec_index]
+        gap = b.start - (a.start + ea.duration)
+        if gap < problem.exec_T(a.exec_index, b.exec_index):
+            errs.append(f"gap {gap} < T between exec {a.exec_index} and {b.exec_index}")
+    by_req: dict[int, list[Placement]] = {}
+    for p in ps:
+        by_req.setdefault(problem.execs[p.exec_index].req, []).append(p)
+    for r, lst in by_req.items():
+        ks = [problem.execs[p.exec_index].k for p in lst]
+        if ks != list(range(len(ks))):
+            errs.append(f"request {r}: executions {ks} not in order")
+        for a, b in zip(lst, lst[1:]):
+            if b.start - a.start < max(problem.execs[a.exec_index].duration, int(problem.spacing_steps[r])):
+                errs.append(f"request {r}: spacing")
+    return errs
+
+
+def objective_of(problem: Problem, plan: Sequence[Placement]) -> tuple[int, int]:
+    """(science objective, stability bonus) in integer objective units."""
+    sci = 0
+    stab = 0
+    for p in plan:
+        ex = problem.execs[p.exec_index]
+        sci += ex.coef_at(p.start)
+        if ex.prev_start is not None and abs(p.start - ex.prev_start) <= problem.stability_window:
+            stab += problem.stability_coef(p.exec_index)
+    return sci, stab
