@@ -52,3 +52,26 @@ def workdir(tmp_path: Path, _initialised_template: Path) -> Path:
     for name in ("observatory.toml", "nightplan.sqlite"):
         shutil.copy2(_initialised_template / name, tmp_path / name)
     return tmp_path
+
+
+@pytest.fixture
+def pg_url():
+    """A fresh, empty PostgreSQL database on the loopback server CI starts (.ci/postgres)."""
+    base = os.environ.get("NIGHTPLAN_TEST_PG_URL")
+    if not base:
+        pytest.skip("PostgreSQL not available: NIGHTPLAN_TEST_PG_URL is not set (CI starts one with .ci/postgres)")
+    import uuid
+
+    from sqlalchemy import create_engine, text
+    from sqlalchemy.engine import make_url
+
+    name = f"np_{uuid.uuid4().hex[:12]}"
+    admin = create_engine(make_url(base).set(database="postgres"), isolation_level="AUTOCOMMIT")
+    with admin.connect() as conn:
+        conn.execute(text(f'CREATE DATABASE "{name}"'))
+    url = make_url(base).set(database=name).render_as_string(hide_password=False)
+    yield url
+    with admin.connect() as conn:
+        conn.execute(text(f"SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE datname = '{name}'"))
+        conn.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
+    admin.dispose()

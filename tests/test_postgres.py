@@ -1,0 +1,41 @@
+"""The same schema and commands on a real PostgreSQL server (skipped, visibly, without one)."""
+
+from __future__ import annotations
+
+from alembic.autogenerate import compare_metadata
+from alembic.runtime.migration import MigrationContext
+
+from conftest import cli_json, run_cli
+from scheduler.db import migrate
+from scheduler.db.models import Base
+from scheduler.db.session import open_db
+
+
+def test_migrations_on_postgres(pg_url):
+    db = open_db(pg_url)
+    migrate.upgrade(db)
+    with db.engine.connect() as conn:
+        assert compare_metadata(MigrationContext.configure(conn, opts={"compare_type": True}), Base.metadata) == []
+    migrate.downgrade(db, "base")
+    assert migrate.current_revision(db) is None
+    migrate.upgrade(db)
+    assert migrate.current_revision(db) == migrate.head_revision(db)
+    db.dispose()
+
+
+def test_cli_queue_on_postgres(pg_url, tmp_path):
+    env = {"NIGHTPLAN_DB": pg_url}
+    run_cli("init", cwd=tmp_path, env=env, check=True)
+    run_cli("program", "add", "PG-1", "--pi", "Dr. Post Gres", cwd=tmp_path, env=env, check=True)
+    csv = tmp_path / "r.csv"
+    csv.write_text("program,target,ra,dec,band,exposure_s,max_pwv_mm\n"
+                   "PG-1,a,10,-30,V,300,\nPG-1,b,20,-40,N,600,2.5\n")
+    run_cli("request", "import", str(csv), cwd=tmp_path, env=env, check=True)
+    bad = tmp_path / "bad.csv"
+    bad.write_text("program,target,ra,dec,band,exposure_s\nPG-1,c,10,-30,V,300\nPG-1,d,10,-30,V,-1\n")
+    proc = run_cli("request", "import", str(bad), cwd=tmp_path, env=env)
+    assert proc.returncode == 2 and "row 2" in proc.stderr
+    rows = cli_json("request", "list", cwd=tmp_path, env=env)
+    assert [r["target"] for r in rows] == ["a", "b"] and rows[1]["max_pwv_mm"] == 2.5
+    run_cli("request", "withdraw", str(rows[0]["id"]), cwd=tmp_path, env=env, check=True)
+    assert cli_json("request", "show", str(rows[0]["id"]), cwd=tmp_path, env=env)["status"] == "withdrawn"
