@@ -1,0 +1,253 @@
+"""Commands about the re-planning service: `serve`, `replan`, `status`."""
+
+from __future__ import annotations
+
+import getpass
+import os
+import sys
+from pathlib import Path
+
+import click
+
+from .cli import Ctx, echo_json, pass_ctx
+from .errors import InputError
+from .request_spec import iso
+
+POLL_RANGE = (0.2, 600.0)
+
+
+def _use_db(c: Ctx, db_url: str | None) -> None:
+    if db_url:
+        c.db_url = db_url
+
+
+def _who() -> str:
+    try:
+        user = getpass.getuser()
+    except Exception:  # noqa: BLE001 - no user name in some containers
+        user = str(os.getuid())
+    from .service.lock import this_host
+
+    return f"{user}@{this_host()}"
+
+
+def _clock_option(f):
+    return click.option("--clock", "clock_text", metavar="ISO",
+                        help="rehearsal/testing: pretend now is this UTC time, advancing with the wall clock "
+                             "(env NIGHTPLAN_CLOCK); default real time")(f)
+
+
+def _db_option(f):
+    return click.option("--db", "db_url", metavar="URL", help="database URL or SQLite file (as the global --db)")(f)
+
+
+@click.command()
+@_db_option
+@click.option("--watch", metavar="PATH", help="folder to watch for conditions files (.csv/.json, as `conditions load`)")
+@click.option("--poll", "poll_s", type=float, default=2.0, show_default=True,
+              help="seconds between looks at the folder, orders and conditions (0.2 to 600)")
+@click.option("--log-file", metavar="FILE", help="append the event log to FILE instead of stdout")
+@click.option("--once", is_flag=True, help="run every job once and exit (for cron or a check)")
+@_clock_option
+@pass_ctx
+def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file: str | None, once: bool,
+          clock_text: str | None) -> None:
+    """Run the re-planning service: one per database; stop it with SIGTERM or Ctrl-C.
+
+    It stores conditions files dropped in --watch (moved to done/ or, if bad, rejected/),
+    re-plans from now when the active plan no longer holds, takes `nightplan replan` orders,
+    re-plans on the planning.heartbeat_min heartbeat and expires requests whose windows have
+    passed. Logs one event a line. Plans are advisory: the observatory's interlocks and its
+    licensed operators decide.
+    """
+    from .service.clock import Clock
+    from .service.daemon import Service
+    from .service.lock import STALE_AFTER_S, LockHeld
+    from .service.log import setup_logging
+
+    _use_db(c, db_url)
+    lo, hi = POLL_RANGE
+    if not (lo <= poll_s <= hi):
+        raise InputError("poll", f"{poll_s:g} is out of range; allowed {lo:g} to {hi:g} seconds")
+    folder = None
+    if watch:
+        folder = Path(watch)
+        if not folder.is_dir():
+            raise InputError("watch", f"{watch} is not a folder; create it first")
+        if not os.access(folder, os.W_OK | os.X_OK):
+            raise InputError("watch", f"{watch} is not writable (processed files move to done/ and rejected/)")
+    clock = Clock.from_option(clock_text)
+    config = c.config()
+    db = c.db()
+    if log_file:
+        try:
+            Path(log_file).open("a", encoding="utf-8").close()
+        except OSError as e:
+            raise InputError("log-file", f"{log_file}: cannot append ({e.strerror})") from None
+    log = setup_logging(log_file)
+    svc = Service(db, config, log=log, clock=clock, watch=folder, poll_s=poll_s)
+    try:
+        code = svc.run_once() if once else svc.run_forever()
+    except LockHeld as e:
+        raise InputError("service", f"another nightplan service already runs on {db.url} ({e.info.describe()}); "
+                                    f"stop it first (a dead one is taken over after {STALE_AFTER_S:g} s "
+                                    f"without heartbeat)") from None
+    if code:
+        sys.exit(code)
+
+
+@click.command()
+@click.option("--reason", default="operator re-plan", show_default=True, help="why (1 to 2000 characters); "
+              "becomes the new plan's reason")
+@click.option("--wait", is_flag=True, help="wait until the service has done the order and print the result")
+@click.option("--timeout", "timeout_s", type=float, default=300.0, show_default=True,
+              help="with --wait: give up after this many seconds")
+@_db_option
+@_clock_option
+@pass_ctx
+def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None, clock_text: str | None) -> None:
+    """Order a re-plan from now. The running service takes it within seconds; if no service is
+    alive, the plan is built here (inline) and the command says so."""
+    from .db import plans
+    from .db.models import ReplanOrder, utcnow
+    from .service.clock import Clock
+    from .service.daemon import wait_until
+    from .service.lock import read_lock
+
+    _use_db(c, db_url)
+    if not (1.0 <= timeout_s <= 86400):
+        raise InputError("timeout", f"{timeout_s:g} is out of range; allowed 1 to 86400 seconds")
+    clock = Clock.from_option(clock_text)
+    db = c.db()
+    info = read_lock(db)
+    stale = info.stale_reason() if info is not None else "no service has run on this database"
+    if info is not None and stale is None:
+        oid = db.retrying(lambda s: plans.add_order(s, reason, _who()).id)
+        click.echo(f"order {oid} queued for the service (pid {info.pid} on {info.host})")
+        if not wait:
+            return
+
+        def done():
+            with db.session() as s:
+                o = s.get(ReplanOrder, oid)
+                return o is not None and o.done_at is not None
+
+        if not wait_until(done, timeout_s, 0.25):
+            click.echo(f"nightplan: error: order {oid} not done after {timeout_s:g} s; see `nightplan status`", err=True)
+            sys.exit(1)
+        with db.session() as s:
+            o = s.get(ReplanOrder, oid)
+            result, version = o.result or "", o.plan_id
+        click.echo(f"order {oid} done: {result}")
+        if version is None:
+            sys.exit(1)
+        return
+
+    from .planner import Planner
+    from .service.jobs import describe_built, target_night
+
+    config = c.config()
+    click.echo(f"no service is alive ({stale}); re-planning inline")
+
+    def add(s):
+        o = plans.add_order(s, reason, _who())
+        o.taken_at = utcnow()
+        return o.id
+
+    oid = db.retrying(add)
+    planner = Planner(config)
+    now = clock.now()
+    try:
+        built = planner.build_and_store(db, night_date=target_night(planner, now), reason=reason, now=now)
+        result = ("inline: " + describe_built(built)) if built.version is not None else \
+            f"failed: the plan checker refused the plan ({built.result.violations[0]})"
+    except Exception as e:  # noqa: BLE001 - recorded on the order, then shown by the CLI
+        result = f"failed: {type(e).__name__}: {e}"
+        built = None
+
+    def finish(s):
+        plans.finish_order(s.get(ReplanOrder, oid), result, built.version if built is not None else None)
+
+    db.retrying(finish)
+    if built is None or built.version is None:
+        click.echo(f"nightplan: error: order {oid} {result}", err=True)
+        sys.exit(1)
+    click.echo(f"order {oid} done: {result}")
+
+
+@click.command()
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@_db_option
+@pass_ctx
+def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
+    """Is the service alive (since when, pid, last heartbeat), the active plan, the last
+    conditions report, pending re-plan orders."""
+    from sqlalchemy import select
+
+    from .db import plans, store
+    from .db.models import ReplanOrder
+    from .service.lock import read_lock
+
+    _use_db(c, db_url)
+    db = c.db()
+    info = read_lock(db)
+    if info is None:
+        service = {"alive": False, "state": "stopped", "why": "no service holds this database"}
+    else:
+        why = info.stale_reason()
+        service = {"alive": why is None, "state": "running" if why is None else "dead", **info.as_dict()}
+        if why:
+            service["why"] = why
+    with db.session() as s:
+        plan = plans.active_plan(s)
+        plan_d = None if plan is None else {
+            "version": plan.id, "night": plan.night.isoformat(), "reason": plan.reason,
+            "created_at": iso(plan.created_at), "planned_from": iso(plan.planned_from),
+            "solver_status": plan.solver_status, "entries": len(plan.entries),
+            "conditions_report": plan.conditions_report_id,
+        }
+        rep = store.latest_conditions(s)
+        rep_d = None if rep is None else {
+            "report": rep.id, "source": rep.source, "issued_at": iso(rep.issued_at),
+            "received_at": iso(rep.received_at), "samples": rep.n_samples,
+        }
+        pending = [plans.order_dict(o) for o in plans.pending_orders(s)]
+        last = s.scalar(select(ReplanOrder).where(ReplanOrder.done_at.is_not(None))
+                        .order_by(ReplanOrder.done_at.desc()).limit(1))
+        last_d = plans.order_dict(last) if last is not None else None
+    data = {"service": service, "plan": plan_d, "conditions": rep_d, "pending_orders": pending, "last_order": last_d}
+    if as_json:
+        echo_json(data)
+        return
+    if service["state"] == "running":
+        line = f"running: pid {service['pid']} on {service['host']}, since {service['since']}, " \
+               f"heartbeat {service['heartbeat_age_s']:.0f} s ago"
+    elif service["state"] == "dead":
+        line = f"not running: last holder pid {service['pid']} on {service['host']} ({service['why']})"
+    else:
+        line = "not running (no service holds this database)"
+    click.echo(f"service:    {line}")
+    if plan_d:
+        click.echo(f"plan:       version {plan_d['version']} for the night of {plan_d['night']}, "
+                   f"built {plan_d['created_at']} from {plan_d['planned_from']}, {plan_d['entries']} entries, "
+                   f"{plan_d['solver_status']}")
+        click.echo(f"reason:     {plan_d['reason']}")
+    else:
+        click.echo("plan:       none yet")
+    if rep_d:
+        click.echo(f"conditions: report {rep_d['report']} from {rep_d['source']}, issued {rep_d['issued_at']}, "
+                   f"received {rep_d['received_at']} ({rep_d['samples']} samples)")
+    else:
+        click.echo("conditions: none stored")
+    click.echo(f"orders:     {len(pending)} pending")
+    for o in pending:
+        taken = f", taken {o['taken_at']}" if o["taken_at"] else ""
+        click.echo(f"  #{o['id']} {o['requested_at']} by {o['requested_by']}{taken}: {o['reason']}")
+    if last_d:
+        click.echo(f"last order: #{last_d['id']} done {last_d['done_at']}: {last_d['result']}")
+
+
+def register(cli: click.Group) -> None:
+    cli.add_command(serve)
+    cli.add_command(replan)
+    cli.add_command(status)

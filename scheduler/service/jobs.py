@@ -1,0 +1,307 @@
+"""The service's jobs: each reads the database, decides, and writes in its own transactions.
+
+Jobs never raise: the daemon wraps them, logs one line per failure and keeps running. They
+are run one at a time (a single worker), so two re-plans never race each other.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass
+from datetime import date, datetime, timedelta
+from pathlib import Path
+
+from sqlalchemy import func, select
+from sqlalchemy.exc import SQLAlchemyError
+
+from ..conditions.ingest import MAX_BYTES, parse_conditions
+from ..config import ObservatoryConfig
+from ..db import plans, store
+from ..db.models import ConditionsReport, Outcome, ReplanOrder, Request, utcnow
+from ..db.session import Database
+from ..errors import InputError
+from ..planner import Planner, _sample_of
+from ..request_spec import ACTIVE_STATUSES, iso
+from .clock import Clock
+from .log import EventLog
+from .validity import Planned, conditions_changes, entry_failures, outranking_requests
+
+FEED_SUFFIXES = (".csv", ".json")
+DONE_DIR = "done"
+REJECTED_DIR = "rejected"
+SETTLE_S = 1.0  # a dropped file is read once it has not changed for this long
+RETRY_AFTER_FAILURE_S = 60.0  # after a failed automatic re-plan, wait before the next one
+MAX_LISTED = 5  # outcomes or requests named in one reason
+
+
+def describe_built(built) -> str:
+    r = built.result
+    return (f"plan version {built.version} from {iso(built.planned_from)}: {len(r.entries)} entries, "
+            f"solver {r.solver_status}, gap {r.gap:.3f}, {r.runtime_s:.1f} s")
+
+
+def target_night(planner: Planner, now: datetime) -> date:
+    """The night ``now`` belongs to; once that night is over (after sunrise), the coming one."""
+    d = planner.night_date(now)
+    if now >= planner.night(d).end:
+        d += timedelta(days=1)
+    return d
+
+
+@dataclass
+class FeedResult:
+    stored: int = 0
+    rejected: int = 0
+
+
+class Jobs:
+    def __init__(self, db: Database, config: ObservatoryConfig, planner: Planner, clock: Clock, log: EventLog,
+                 watch: Path | None = None, time_limit_s: float | None = None):
+        self.db = db
+        self.config = config
+        self.planner = planner
+        self.clock = clock
+        self.log = log
+        self.watch = watch
+        self.time_limit_s = time_limit_s
+        self._checked_key: tuple | None = None
+        self._auto_paused_until = 0.0
+
+    # ------------------------------------------------------------------ helpers
+
+    def target_night(self, now: datetime) -> date:
+        return target_night(self.planner, now)
+
+    def replan(self, reason: str, *, trigger: str):
+        """Build from now and store a new version. Returns the BuiltPlan (version None if refused)."""
+        now = self.clock.now()
+        night = self.target_night(now)
+        t0 = time.monotonic()
+        self.log.info("replan_start", trigger=trigger, night=night, now=now, reason=reason)
+        built = self.planner.build_and_store(self.db, night_date=night, reason=reason, now=now,
+                                             time_limit_s=self.time_limit_s)
+        secs = time.monotonic() - t0
+        if built.version is None:
+            self.log.error("plan_refused", trigger=trigger, night=night, seconds=secs,
+                           violation=built.result.violations[0] if built.result.violations else "-")
+        else:
+            r = built.result
+            self.log.info("plan_stored", version=built.version, trigger=trigger, night=night,
+                          planned_from=built.planned_from, entries=len(r.entries), status=r.solver_status,
+                          objective=r.objective, gap=r.gap, seconds=secs, reason=reason)
+        self._checked_key = None  # look again at the new plan
+        return built
+
+    def _auto_replan(self, reason: str, trigger: str) -> None:
+        """A re-plan the service decided on; a failure pauses automatic re-plans for a while."""
+        try:
+            built = self.replan(reason, trigger=trigger)
+            ok = built.version is not None
+        except Exception as e:  # noqa: BLE001 - logged, retried later
+            self.log.error("replan_failed", trigger=trigger, error=f"{type(e).__name__}: {e}")
+            ok = False
+        if not ok:
+            self._auto_paused_until = time.monotonic() + RETRY_AFTER_FAILURE_S
+
+    # ------------------------------------------------------------------ conditions feed
+
+    def ingest_folder(self) -> FeedResult:
+        """Conditions files dropped in the watched folder: stored, then moved to done/ or rejected/."""
+        res = FeedResult()
+        if self.watch is None:
+            return res
+        try:
+            names = sorted(os.listdir(self.watch))
+        except OSError as e:
+            self.log.error("feed_unreadable", folder=self.watch, error=str(e))
+            return res
+        for name in names:
+            p = self.watch / name
+            if name.startswith(".") or p.suffix.lower() not in FEED_SUFFIXES or not p.is_file():
+                continue  # partial uploads (.part, .tmp, dot files) and sub-folders are left alone
+            try:
+                st = p.stat()
+            except FileNotFoundError:
+                continue
+            if time.time() - st.st_mtime < SETTLE_S:
+                continue  # still being written
+            try:
+                rep_id, n, src = self._ingest_file(p, st.st_size)
+            except InputError as e:
+                dest = self._move(p, REJECTED_DIR)
+                try:
+                    dest.with_name(dest.name + ".error.txt").write_text(str(e) + "\n", encoding="utf-8")
+                except OSError:
+                    pass
+                self.log.warning("feed_rejected", file=name, moved_to=dest, error=str(e))
+                res.rejected += 1
+                continue
+            except SQLAlchemyError as e:  # not the file's fault: leave it for the next poll
+                self.log.error("feed_store_failed", file=name, error=f"{type(e).__name__}: {str(e).splitlines()[0]}")
+                break
+            dest = self._move(p, DONE_DIR)
+            self.log.info("conditions_stored", report=rep_id, samples=n, source=src, file=name, moved_to=dest)
+            res.stored += 1
+        return res
+
+    def _ingest_file(self, p: Path, size: int) -> tuple[int, int, str]:
+        if size > MAX_BYTES:
+            raise InputError("file", f"{p.name} is larger than the limit of {MAX_BYTES} bytes")
+        try:
+            text = p.read_text(encoding="utf-8-sig")
+        except UnicodeDecodeError:
+            raise InputError("file", f"{p.name} is not UTF-8 text") from None
+        report = parse_conditions(text, None, source_name=p.name)
+        if len(report) == 0:
+            raise InputError("file", f"{p.name} holds no samples")
+        src = report.source or p.name
+        rep_id = self.db.retrying(lambda s: store.store_conditions(s, list(report), src, report.issued).id)
+        return rep_id, len(report), src
+
+    def _move(self, p: Path, sub: str) -> Path:
+        folder = self.watch / sub
+        folder.mkdir(exist_ok=True)
+        dest = folder / p.name
+        if dest.exists():
+            stamp = datetime.now().strftime("%Y%m%dT%H%M%S%f")
+            dest = folder / f"{p.stem}.{stamp}{p.suffix}"
+        os.replace(p, dest)
+        return dest
+
+    # ------------------------------------------------------------------ operator orders
+
+    def take_orders(self) -> int:
+        """Pending re-plan orders (also those taken by a service that died): one build serves them all."""
+        def take(s):
+            orders = plans.pending_orders(s)
+            now = utcnow()
+            for o in orders:
+                o.taken_at = now
+            return [(o.id, o.reason, o.requested_by) for o in orders]
+
+        orders = self.db.retrying(take)
+        if not orders:
+            return 0
+        ids = ",".join(str(o[0]) for o in orders)
+        self.log.info("order_taken", orders=ids, requested_by=orders[0][2])
+        reason = orders[0][1] if len(orders) == 1 else "; ".join(o[1] for o in orders)
+        version = None
+        try:
+            built = self.replan(reason, trigger="order")
+            version = built.version
+            result = describe_built(built) if version is not None else \
+                f"failed: the plan checker refused the plan ({built.result.violations[0]})"
+        except Exception as e:  # noqa: BLE001 - recorded on the order and logged
+            result = f"failed: {type(e).__name__}: {e}"
+
+        def finish(s):
+            for oid, _r, _b in orders:
+                o = s.get(ReplanOrder, oid)
+                if o is not None and o.done_at is None:
+                    plans.finish_order(o, result, version)
+
+        self.db.retrying(finish)
+        (self.log.info if version is not None else self.log.error)("order_done", orders=ids, result=result)
+        return len(orders)
+
+    # ------------------------------------------------------------------ validity
+
+    def _change_key(self, s, plan_id: int | None) -> tuple:
+        return (
+            plan_id,
+            s.scalar(select(func.max(ConditionsReport.id))),
+            s.scalar(select(func.max(Outcome.id))),
+            s.scalar(select(func.max(Request.updated_at))),
+            s.scalar(select(func.count(Request.id))),
+        )
+
+    def check_validity(self) -> list[str] | None:
+        """Re-plan if the active plan no longer holds. Returns the reasons found (None: not checked)."""
+        if time.monotonic() < self._auto_paused_until:
+            return None
+        now = self.clock.now()
+        night_date = self.target_night(now)
+        night = self.planner.night(night_date)
+        with self.db.session() as s:
+            plan = plans.active_plan(s, night_date)
+            if plan is None:
+                reasons = [f"first plan for the night of {night_date}"]
+                key = None
+            else:
+                key = self._change_key(s, plan.id)
+                if key == self._checked_key:
+                    return None
+                reasons = self._assess(s, plan, night, now)
+        if plan is not None and not reasons:
+            self._checked_key = key
+            self.log.info("plan_still_valid", version=plan.id, report=key[1], now=now)
+            return []
+        self._auto_replan("; ".join(reasons), "no_plan" if plan is None else "validity")
+        return reasons
+
+    def _assess(self, s, plan, night, now: datetime) -> list[str]:
+        cfg, cache = self.config, self.planner.sky_cache
+        reasons: list[str] = []
+        entries = [Planned(e.request_id, e.start, e.end) for e in plan.entries if e.end > now]
+        rows = {r.id: r for r in s.scalars(select(Request).where(Request.id.in_({e.request_id for e in entries})))}
+        specs = {rid: store.to_spec(r) for rid, r in rows.items()}
+
+        latest = store.latest_conditions(s)
+        latest_samples = [_sample_of(x) for x in latest.samples] if latest is not None else []
+        cond = self.planner.conditions(night, latest_samples, latest.id if latest else None)
+        if latest is not None and latest.id != plan.conditions_report_id:
+            old_rep = s.get(ConditionsReport, plan.conditions_report_id) if plan.conditions_report_id else None
+            old = self.planner.conditions(night, [_sample_of(x) for x in old_rep.samples] if old_rep else [],
+                                          plan.conditions_report_id)
+            changes = conditions_changes(cfg, night, old, cond, now)
+            if changes:
+                reasons.append(f"conditions report {latest.id} ({latest.source}): " + "; ".join(changes))
+            reasons += entry_failures(cfg, night, cache, entries, specs, cond, now)
+
+        outcomes = list(s.scalars(select(Outcome).where(Outcome.recorded_at > plan.created_at).order_by(Outcome.id)))
+        told = set()
+        if outcomes:
+            text = ", ".join(f"request {o.request_id} {o.result}" for o in outcomes[:MAX_LISTED])
+            more = f" and {len(outcomes) - MAX_LISTED} more" if len(outcomes) > MAX_LISTED else ""
+            reasons.append(f"outcome recorded: {text}{more}")
+            told = {o.request_id for o in outcomes}
+        gone = sorted({(rid, r.status) for rid, r in rows.items()
+                       if r.status not in ACTIVE_STATUSES and rid not in told})
+        if gone:
+            reasons.append("planned request left the queue: " + ", ".join(f"{rid} {st}" for rid, st in gone[:MAX_LISTED]))
+
+        new_rows = s.scalars(select(Request).where(Request.created_at > plan.created_at,
+                                                   Request.status.in_(ACTIVE_STATUSES)).order_by(Request.id))
+        new_specs = [store.to_spec(r) for r in new_rows]
+        if new_specs:
+            remaining = [specs[e.request_id] for e in entries if e.start > now and e.request_id in specs
+                         and rows[e.request_id].status in ACTIVE_STATUSES]
+            found = outranking_requests(cfg, night, cache, new_specs, remaining, store.program_weights(s), cond, now)
+            reasons += found[:MAX_LISTED]
+        return reasons
+
+    # ------------------------------------------------------------------ heartbeat and expiry
+
+    def heartbeat(self) -> bool:
+        """Re-plan when the night's active plan is older than planning.heartbeat_min."""
+        if time.monotonic() < self._auto_paused_until:
+            return False
+        now = self.clock.now()
+        with self.db.session() as s:
+            plan = plans.active_plan(s, self.target_night(now))
+            if plan is None:
+                return False  # check_validity builds the first plan
+            age_min = (utcnow() - plan.created_at).total_seconds() / 60.0
+            version = plan.id
+        if age_min < self.config.planning.heartbeat_min:
+            return False
+        self._auto_replan(f"heartbeat: plan version {version} is {age_min:.0f} min old", "heartbeat")
+        return True
+
+    def expire(self) -> list[int]:
+        now = self.clock.now()
+        ids = self.db.retrying(lambda s: store.expire_requests(s, now))
+        if ids:
+            self.log.info("requests_expired", ids=",".join(map(str, ids)), now=now)
+        return ids

@@ -1,0 +1,141 @@
+"""Does the active plan still hold? Pure functions of the plan, the queue and the conditions.
+
+The service calls these after each new conditions report and whenever the queue or the
+outcomes change; any sentence returned is a reason to re-plan from now, and the sentences
+become the new plan version's reason. Material changes:
+
+- conditions: a closure (dome, wind, humidity) or a seeing / PWV / cloud change beyond the
+  configured thresholds from now on (``conditions.change.compare``);
+- a planned entry, from now to its end, no longer passes its request's constraints under the
+  new conditions (named with the constraint and, for seeing, PWV and cloud, the numbers);
+- a new request, feasible tonight after now, that outranks the least valuable entry still to
+  come (science value: program weight x priority x exposure), or any new target of
+  opportunity, or any new feasible request when nothing is left in the plan;
+- a recorded outcome, or a planned request that left the queue (withdrawn, expired, done).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from typing import Sequence
+
+import numpy as np
+
+from ..conditions.change import compare
+from ..conditions.grid import ConditionsGrid
+from ..config import ObservatoryConfig
+from ..feasibility import Feasibility, Reason, evaluate, static_layer
+from ..request_spec import RequestSpec
+from ..sky.ephemeris import SkyCache
+from ..sky.night import Night
+from ..solve.problem import science_base_value
+
+
+@dataclass(frozen=True)
+class Planned:
+    """One stored plan entry, as much as validity needs."""
+
+    request_id: int
+    start: datetime
+    end: datetime
+
+
+def hhmm(t: datetime) -> str:
+    return t.astimezone(timezone.utc).strftime("%H:%M UTC")
+
+
+def now_index(night: Night, now: datetime) -> int:
+    """First grid step that is not over at ``now`` (0 before the night, n_t after it)."""
+    t = now.timestamp()
+    times = night.times_unix
+    if times.size == 0 or t < times[0]:
+        return 0
+    return int(np.searchsorted(times, t, side="right")) - 1 if t < times[-1] + night.step_s else int(times.size)
+
+
+def feasibility_for(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, specs: Sequence[RequestSpec],
+                    cond: ConditionsGrid) -> Feasibility:
+    ra = np.array([s.ra_deg for s in specs], dtype=np.float64)
+    dec = np.array([s.dec_deg for s in specs], dtype=np.float64)
+    sky = sky_cache.get(config.site, night, ra, dec)
+    rows = np.arange(len(specs), dtype=np.int64)
+    return evaluate(list(specs), rows, sky, cond, config, static_layer(list(specs), rows, sky, config))
+
+
+def conditions_changes(config: ObservatoryConfig, night: Night, old: ConditionsGrid, new: ConditionsGrid,
+                       now: datetime) -> list[str]:
+    p = config.planning
+    return compare(old, new, now_index(night, now), p.replan_seeing_change_arcsec, p.replan_pwv_change_mm,
+                   safety=config.safety, times_unix=night.times_unix)
+
+
+def _why(bits: int, spec: RequestSpec, cond: ConditionsGrid, a: int, b: int) -> str:
+    """The failing constraints over steps [a, b), with the numbers for the weather ones."""
+    parts, covered = [], 0
+    if bits & Reason.PWV and spec.max_pwv_mm is not None:
+        parts.append(f"PWV up to {float(np.max(cond.pwv_mm[a:b])):.1f} mm over its {spec.max_pwv_mm:g} mm limit")
+        covered |= Reason.PWV
+    if bits & Reason.SEEING and spec.max_seeing_arcsec is not None:
+        parts.append(f"seeing up to {float(np.max(cond.seeing_arcsec[a:b])):.2f} arcsec over its "
+                     f"{spec.max_seeing_arcsec:g} arcsec limit")
+        covered |= Reason.SEEING
+    if bits & Reason.CLOUD and spec.max_cloud_mag is not None:
+        parts.append(f"cloud up to {float(np.max(cond.cloud_mag[a:b])):.2f} mag over its "
+                     f"{spec.max_cloud_mag:g} mag limit")
+        covered |= Reason.CLOUD
+    if bits & Reason.CLOSURE:
+        parts.append("closure (dome closed, or wind or humidity over the limit)")
+        covered |= Reason.CLOSURE
+    parts += [r.name.lower().replace("_", " ") for r in Reason
+              if r != Reason.NIGHT_END and bits & r and not r & covered]
+    return ", ".join(parts)
+
+
+def entry_failures(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, entries: Sequence[Planned],
+                   specs: dict[int, RequestSpec], cond: ConditionsGrid, now: datetime) -> list[str]:
+    """Planned entries (from now to their end) whose constraints fail under ``cond``."""
+    i0 = now_index(night, now)
+    todo = [e for e in entries if e.end > now and e.request_id in specs]
+    if not todo or i0 >= night.n_times:
+        return []
+    ids = sorted({e.request_id for e in todo})
+    row_of = {rid: i for i, rid in enumerate(ids)}
+    feas = feasibility_for(config, night, sky_cache, [specs[i] for i in ids], cond)
+    times = night.times_unix
+    out = []
+    for e in sorted(todo, key=lambda e: e.start):
+        a = max(int(np.searchsorted(times, e.start.timestamp(), side="left")), i0)
+        b = int(np.searchsorted(times, e.end.timestamp(), side="left"))
+        r = row_of[e.request_id]
+        if b <= a or feas.ok[r, a:b].all():
+            continue
+        bits = int(np.bitwise_or.reduce(feas.reasons[r, a:b].astype(np.int64) & ~int(Reason.NIGHT_END)))
+        spec = specs[e.request_id]
+        out.append(f"request {e.request_id} ({spec.target}) planned {hhmm(e.start)}-{hhmm(e.end)} no longer "
+                   f"feasible: {_why(bits, spec, cond, a, b) or 'constraints fail'}")
+    return out
+
+
+def outranking_requests(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, new: Sequence[RequestSpec],
+                        remaining: Sequence[RequestSpec], weights: dict[str, float], cond: ConditionsGrid,
+                        now: datetime) -> list[str]:
+    """New requests worth a re-plan (see module doc)."""
+    i0 = now_index(night, now)
+    if not new or i0 >= night.n_times:
+        return []
+    feas = feasibility_for(config, night, sky_cache, list(new), cond)
+    floor = min((science_base_value(s, weights) for s in remaining), default=None)
+    out = []
+    for r, spec in enumerate(new):
+        if spec.remaining_repeats <= 0 or not feas.start_ok[r, i0:].any():
+            continue
+        value = science_base_value(spec, weights)
+        label = f"new request {spec.id} ({spec.target}, priority {spec.priority})"
+        if spec.too:
+            out.append(f"{label}: target of opportunity")
+        elif floor is None:
+            out.append(f"{label}: feasible tonight and nothing else is planned")
+        elif value > floor + 1e-12:
+            out.append(f"{label} outranks the plan (value {value:.3g} > {floor:.3g})")
+    return out
