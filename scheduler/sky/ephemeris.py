@@ -99,22 +99,24 @@ def _night_frame(site: Site, night: Night) -> _NightFrame:
     cols = img.represent_as("unitspherical").to_cartesian().xyz.value  # (3 xyz, 3 basis, n_t)
     rot = np.transpose(cols, (2, 0, 1))  # [n_t, xyz, basis]
 
-    sun = get_sun(t).transform_to(altaz)
-    moon = get_body("moon", t, loc).transform_to(altaz)
-    sun_xyz = sun.cartesian.xyz.to_value(u.km).T  # [n_t, 3], topocentric, with distance
-    moon_xyz = moon.cartesian.xyz.to_value(u.km).T
-    # Phase angle: at the Moon, between the directions to the Sun and to the observer.
+    sun_gcrs = get_sun(t)
+    moon_gcrs = get_body("moon", t)  # geocentric, with distance: AltAz adds the ~1 deg parallax
+    sun = sun_gcrs.transform_to(altaz)
+    moon = moon_gcrs.transform_to(altaz)
+    # Phase angle, geocentric (almanac convention): at the Moon, between Sun and Earth's centre.
+    sun_xyz = sun_gcrs.cartesian.xyz.to_value(u.km).T
+    moon_xyz = moon_gcrs.cartesian.xyz.to_value(u.km).T
     to_sun = _unit(sun_xyz - moon_xyz)
-    to_obs = _unit(-moon_xyz)
-    phase = np.degrees(np.arccos(np.clip(np.sum(to_sun * to_obs, axis=1), -1.0, 1.0)))
+    to_earth = _unit(-moon_xyz)
+    phase = np.degrees(np.arccos(np.clip(np.sum(to_sun * to_earth, axis=1), -1.0, 1.0)))
     return _NightFrame(
         t_mid_unix=t_mid,
         location=loc,
         rot=rot,
         sun_alt_deg=sun.alt.deg,
-        sun_vec=_unit(sun_xyz),
+        sun_vec=sun.represent_as(UnitSphericalRepresentation).to_cartesian().xyz.value.T,
         moon_alt_deg=moon.alt.deg,
-        moon_vec=_unit(moon_xyz),
+        moon_vec=moon.represent_as(UnitSphericalRepresentation).to_cartesian().xyz.value.T,
         moon_illum=0.5 * (1.0 + np.cos(np.radians(phase))),
         moon_phase_angle_deg=phase,
     )
