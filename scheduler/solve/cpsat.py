@@ -338,6 +338,7 @@ def solve_problem(problem: Problem, *, time_limit_s: float = 10.0, gap_tolerance
     prm.num_workers = int(num_workers or os.cpu_count() or 1)
     prm.random_seed = seed
     prm.cp_model_probing_level = 0  # probing costs seconds of wall time on 10^4 booleans and finds little
+    prm.catch_sigint_signal = False  # else CP-SAT leaves SIGINT at its default: Ctrl-C would kill the service
     t1 = time.perf_counter()
     cb = _Progress(progress, t1) if progress else None
     status = solver.Solve(model, cb) if cb else solver.Solve(model)
