@@ -130,7 +130,10 @@ class Service:
         try:
             sched.start()
             while not self._stop.wait(0.5):
-                pass
+                # A library may reset SIGINT/SIGTERM at the C level (some solvers do after a solve in
+                # a worker thread); re-arm ours so Ctrl-C always stops cleanly.
+                for sig in previous:
+                    signal.signal(sig, self._on_signal)
             self.log.info("service_stopping", why=self._why_stop)
             sched.shutdown(wait=True)  # lets a running build finish (bounded by the solver time limit)
         finally:

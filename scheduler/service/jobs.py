@@ -38,7 +38,7 @@ MAX_LISTED = 5  # outcomes or requests named in one reason
 def describe_built(built) -> str:
     r = built.result
     return (f"plan version {built.version} from {iso(built.planned_from)}: {len(r.entries)} entries, "
-            f"solver {r.solver_status}, gap {r.gap:.3f}, {r.runtime_s:.1f} s")
+            f"solver {r.solver_status}, gap {r.gap:.3f}, built in {sum(r.timings.values()):.1f} s")
 
 
 def target_night(planner: Planner, now: datetime) -> date:

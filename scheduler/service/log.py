@@ -74,10 +74,11 @@ def setup_logging(log_file: str | None = None) -> EventLog:
         handler = logging.StreamHandler(sys.stdout)
     handler.setFormatter(EventFormatter())
     logger.addHandler(handler)
-    # APScheduler's own chatter (every job run) is noise; keep its warnings, in our format.
+    # APScheduler's own chatter is noise: every job run, and "skipped" runs, which are expected
+    # because all jobs share one worker. Keep its errors, in our format.
     aps = logging.getLogger("apscheduler")
     aps.handlers.clear()
     aps.propagate = False
-    aps.setLevel(logging.WARNING)
+    aps.setLevel(logging.ERROR)
     aps.addHandler(handler)
     return EventLog(logger)

@@ -112,7 +112,7 @@ def entry_failures(config: ObservatoryConfig, night: Night, sky_cache: SkyCache,
             continue
         bits = int(np.bitwise_or.reduce(feas.reasons[r, a:b].astype(np.int64) & ~int(Reason.NIGHT_END)))
         spec = specs[e.request_id]
-        out.append(f"request {e.request_id} ({spec.target}) planned {hhmm(e.start)}-{hhmm(e.end)} no longer "
+        out.append(f"request {e.request_id} ({spec.target}) planned {hhmm(e.start)[:5]}-{hhmm(e.end)} no longer "
                    f"feasible: {_why(bits, spec, cond, a, b) or 'constraints fail'}")
     return out
 
