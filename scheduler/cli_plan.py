@@ -1,0 +1,372 @@
+"""Commands for queue observers and operators: `plan build|show|list|export|chart|why`, `next`,
+`record`, and `demo`. Thin: parse, call the planner or a report, print."""
+
+from __future__ import annotations
+
+import sys
+import time
+from datetime import date, datetime, timedelta, timezone
+from pathlib import Path
+
+import click
+
+from .cli import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from .errors import InputError, NotFoundError
+from .request_spec import iso, parse_time
+
+
+# --------------------------------------------------------------------------- helpers
+
+def _now(text: str | None, field: str) -> datetime:
+    return parse_time(text, field) if text else datetime.now(timezone.utc)
+
+
+def default_night(planner, now: datetime) -> date:
+    """The night containing ``now``, or, once that night is over (morning), the coming one."""
+    d = planner.night_date(now)
+    if now >= planner.night(d).end:
+        d = d + timedelta(days=1)
+    return d
+
+
+def _version(version: int | None) -> int | None:
+    if version is not None and version < 1:
+        raise InputError("version", f"{version} is out of range; plan versions start at 1")
+    return version
+
+
+_NIGHTS: dict = {}
+
+
+def night_of(config, night_date: date):
+    """compute_night, remembered for the process (the demo asks for the same night many times)."""
+    from .sky.night import compute_night
+
+    key = (config.site, night_date, config.planning.step_s)
+    if key not in _NIGHTS:
+        _NIGHTS[key] = compute_night(config.site, night_date, config.planning.step_s)
+    return _NIGHTS[key]
+
+
+def load_document(c: Ctx, version: int | None):
+    """(document, plan night, config) of a stored plan version (default: the newest active plan)."""
+    from .db import plans
+    from .report.export import plan_document
+
+    config = c.config()
+    with c.db().session() as s:
+        plan = plans.get_plan(s, _version(version))
+        night = night_of(config, plan.night)
+        doc = plan_document(s, plan, config, night)
+    return doc, night, config
+
+
+# --------------------------------------------------------------------------- plan
+
+@click.group()
+def plan() -> None:
+    """Night plans: build, show, list, export, chart, why."""
+
+
+@plan.command("build")
+@click.option("--night", help="YYYY-MM-DD, the local evening the night begins (default: the night containing now, "
+                              "or the coming night)")
+@click.option("--time-limit", type=float, help="solver time limit in seconds, 0.1 to 3600 (default: planning.time_limit_s)")
+@click.option("--reason", default="plan build (command line)", show_default=True, help="why this plan is built (stored)")
+@click.option("--now", "now_text", metavar="ISO", help="plan as if the clock read this time, ISO-8601 UTC (default: the "
+                                                      "clock); inside the night nothing new starts before it")
+@pass_ctx
+def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str, now_text: str | None) -> None:
+    """Build a plan from the queue and the latest conditions, check it, store it as a new version."""
+    from .planner import Planner
+
+    if time_limit is not None and not (0.1 <= time_limit <= 3600):
+        raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 3600 seconds")
+    reason = (reason or "").strip()
+    if not reason or len(reason) > 2000:
+        raise InputError("reason", "must be 1 to 2000 characters")
+    now = _now(now_text, "now")
+    config = c.config()
+    db = c.db()
+    planner = Planner(config)
+    night_date = parse_night(night) if night else default_night(planner, now)
+    t0 = time.perf_counter()
+
+    def progress(msg: str) -> None:
+        click.echo(f"  [{time.perf_counter() - t0:5.1f}s] {msg}", err=True)
+
+    with db.session() as s:
+        from .db import store
+
+        n_queue = len(store.active_specs(s))
+        has_conditions = store.latest_conditions(s) is not None
+    if n_queue == 0:
+        warn("the queue is empty: the plan will have no entries")
+    if not has_conditions:
+        warn("no conditions report stored: the configuration's conservative defaults are assumed all night")
+    progress(f"planning the night of {night_date.isoformat()} ({n_queue} requests in the queue)")
+    built = planner.build_and_store(db, night_date=night_date, reason=reason, now=now,
+                                    time_limit_s=time_limit, progress=progress)
+    r = built.result
+    if built.version is None:
+        click.echo(f"nightplan: error: the plan checker refused the plan ({len(r.violations)} violations); "
+                   f"nothing was stored. First: {r.violations[0]}", err=True)
+        for v in r.violations[1:5]:
+            click.echo(f"  {v}", err=True)
+        sys.exit(1)
+    doc, _, _ = load_document(c, built.version)
+    sm, p = doc["summary"], doc["plan"]
+    out = console()
+    out.print(f"plan version {p['version']} stored for the night of {doc['night']['date']} "
+              f"({time.perf_counter() - t0:.1f} s)")
+    rows = [
+        ("solver status", p["solver_status"]),
+        ("objective", f"{p['objective']:.3f}"),
+        ("bound", f"{p['bound']:.3f}"),
+        ("gap", f"{100 * p['gap']:.2f} %"),
+        ("greedy objective", f"{p['greedy_objective']:.3f}" if p["greedy_objective"] is not None else "-"),
+        ("entries", f"{sm['entries']} ({sm['scheduled_hours']:.2f} h)"),
+        ("dark hours used", f"{sm['dark_hours_used']:.2f} of {sm['dark_hours']:.2f} h"
+                            + (f" ({100 * sm['dark_fraction_used']:.1f} %)" if sm["dark_fraction_used"] is not None else "")),
+        ("unscheduled", f"{sm['unscheduled']} of {sm['queue_size'] if sm['queue_size'] is not None else n_queue}"),
+        ("planned from", p["planned_from"]),
+        ("reason", p["reason"]),
+    ]
+    for k, v in rows:
+        out.print(f"  {k:<17} {v}")
+    out.print(f"  see: nightplan plan show{'' if p['active'] else ' --version ' + str(p['version'])}")
+
+
+@plan.command("show")
+@click.option("--version", type=int, help="plan version (default: the newest active plan)")
+@click.option("--unscheduled", "show_unscheduled", is_flag=True, help="also list the unscheduled requests and why")
+@click.option("--json", "as_json", is_flag=True, help="print the plan document (same as `plan export --format json`)")
+@pass_ctx
+def plan_show(c: Ctx, version: int | None, show_unscheduled: bool, as_json: bool) -> None:
+    """The plan as a table, with the night's summary above it."""
+    from .report.table import print_plan
+
+    doc, _, _ = load_document(c, version)
+    if as_json:
+        echo_json(doc)
+        return
+    print_plan(console(), doc, unscheduled=show_unscheduled)
+
+
+@plan.command("list")
+@click.option("--night", help="only this night (YYYY-MM-DD)")
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@pass_ctx
+def plan_list(c: Ctx, night: str | None, as_json: bool) -> None:
+    """Stored plan versions, newest first."""
+    from sqlalchemy import select
+
+    from .db.models import Plan
+
+    q = select(Plan).order_by(Plan.id.desc())
+    if night:
+        q = q.where(Plan.night == parse_night(night))
+    with c.db().session() as s:
+        rows = [{"version": p.id, "night": p.night.isoformat(), "created_at": iso(p.created_at), "active": p.active,
+                 "reason": p.reason, "solver_status": p.solver_status, "objective": p.objective, "gap": p.gap,
+                 "entries": len(p.entries), "previous_version": p.previous_id} for p in s.scalars(q)]
+    if as_json:
+        echo_json(rows)
+        return
+    from rich.table import Table
+
+    t = Table("version", "night", "created (UTC)", "active", "status", "objective", "gap", "entries", "reason",
+              title="plans")
+    for r in rows:
+        t.add_row(str(r["version"]), r["night"], r["created_at"], "yes" if r["active"] else "", r["solver_status"],
+                  f"{r['objective']:.3f}", f"{100 * r['gap']:.1f} %", str(r["entries"]), r["reason"][:60])
+    console().print(t)
+
+
+@plan.command("export")
+@click.option("--format", "fmt", type=click.Choice(["json", "csv"]), required=True, help="file format")
+@click.option("-o", "--output", metavar="FILE", help="write here (atomically); default: standard output")
+@click.option("--version", type=int, help="plan version (default: the newest active plan)")
+@pass_ctx
+def plan_export(c: Ctx, fmt: str, output: str | None, version: int | None) -> None:
+    """Export the plan: JSON (the full document other tools read) or CSV (one row per entry)."""
+    from .report.export import CAUTION, to_csv, to_json, write_atomic
+
+    doc, _, _ = load_document(c, version)
+    text = to_json(doc) if fmt == "json" else to_csv(doc)
+    if output is None:
+        click.echo(text, nl=False)
+        return
+    path = write_atomic(output, text)
+    click.echo(f"plan version {doc['plan']['version']} exported as {fmt.upper()}: {path.resolve()} "
+               f"({len(doc['entries'])} entries)")
+    click.echo(CAUTION, err=True)
+
+
+@plan.command("chart")
+@click.option("-o", "--output", metavar="FILE.png", required=True, help="PNG file to write")
+@click.option("--version", type=int, help="plan version (default: the newest active plan)")
+@pass_ctx
+def plan_chart(c: Ctx, output: str, version: int | None) -> None:
+    """Altitude against time of the planned targets, twilight, the Moon, seeing and PWV (PNG)."""
+    if not output.lower().endswith(".png"):
+        raise InputError("output", f"{output!r}: the chart is written as PNG; give a file name ending in .png")
+    from .report.chart import render_chart
+    from .report.export import write_atomic
+
+    doc, night, config = load_document(c, version)
+    samples = _plan_samples(c, doc)
+    png = render_chart(doc, night, config, samples)
+    path = write_atomic(output, png)
+    click.echo(f"chart of plan version {doc['plan']['version']}: {path.resolve()}")
+
+
+def _plan_samples(c: Ctx, doc) -> list:
+    """The conditions samples a plan was built on (empty: defaults were assumed)."""
+    from .db.models import ConditionsReport
+    from .planner import _sample_of
+
+    rid = doc["plan"]["conditions"]["report_id"]
+    if rid is None:
+        return []
+    with c.db().session() as s:
+        rep = s.get(ConditionsReport, rid)
+        return [_sample_of(x) for x in rep.samples] if rep is not None else []
+
+
+@plan.command("why")
+@click.argument("request_id", type=int)
+@click.option("--version", type=int, help="plan version (default: the newest active plan)")
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@pass_ctx
+def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> None:
+    """Why request ID is in the plan, or which constraint or which entries keep it out."""
+    import numpy as np
+
+    from .conditions.grid import conditions_on_grid
+    from .db import store
+    from .report.why import explain
+    from .sky.ephemeris import compute_sky
+
+    doc, night, config = load_document(c, version)
+    with c.db().session() as s:
+        spec = store.to_spec(store.get_request(s, request_id))
+        weights = store.program_weights(s)
+    solver_reason = next((u["reason"] for u in doc["unscheduled"] if u["request_id"] == request_id), None)
+    sky = compute_sky(config.site, night, np.array([spec.ra_deg]), np.array([spec.dec_deg]))
+    cond = conditions_on_grid(_plan_samples(c, doc), night.times_unix, config.defaults,
+                              doc["plan"]["conditions"]["report_id"])
+    res = explain(config, spec, night, sky, cond, doc, weights, solver_reason)
+    if as_json:
+        echo_json(res)
+        return
+    for line in res["explanation"]:
+        click.echo(line)
+    if res.get("solver_reason") and res["state"] != "scheduled":
+        click.echo(f"  solver's note: {res['solver_reason']}")
+
+
+# --------------------------------------------------------------------------- next, record
+
+@click.command("next")
+@click.option("--at", "at_text", metavar="ISO", help="ISO-8601 UTC time to ask about (default: now)")
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@pass_ctx
+def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
+    """What to observe now, until when, and the next two entries."""
+    from .db import plans
+    from .report.export import plan_document
+    from .report.next import what_next
+    from .report.table import entry_line, hm
+    from .sky.night import night_date_for
+
+    at = _now(at_text, "at")
+    config = c.config()
+    with c.db().session() as s:
+        plan_row = plans.active_plan(s, night_date_for(config.site, at)) or plans.active_plan(s)
+        if plan_row is None:
+            raise NotFoundError("no plan yet; build one with `nightplan plan build`")
+        night = night_of(config, plan_row.night)
+        doc = plan_document(s, plan_row, config, night)
+    res = what_next(doc, at)
+    if as_json:
+        echo_json(res)
+        return
+    click.echo(f"at {iso(at)}: plan version {res['plan_version']} for the night of {res['night']}")
+    cur = res["current"]
+    if cur is not None:
+        click.echo(f"NOW   until {hm(cur['end'])} UTC ({hm(cur['end_local'])} local), {res['minutes_left']:.0f} min "
+                   f"left: {entry_line(cur)}")
+    elif res["state"] == "finished":
+        click.echo("NOW   the plan is finished for this night")
+    elif res["state"] == "empty":
+        click.echo("NOW   the plan has no entries")
+    else:
+        first = res["upcoming"][0]
+        click.echo(f"NOW   nothing in progress: move to #{first['request_id']} {first['target']}, which starts "
+                   f"at {hm(first['start'])} UTC ({hm(first['start_local'])} local)")
+    for label, e in zip(("NEXT", "THEN"), res["upcoming"]):
+        click.echo(f"{label:<5} {entry_line(e)}")
+    click.echo(res["caution"])
+
+
+@click.command("record")
+@click.argument("request_id", type=int)
+@click.option("--result", type=click.Choice(["done", "failed", "partial"]), required=True, help="what happened")
+@click.option("--exposure", type=float, help="exposure actually achieved, seconds (required for partial)")
+@click.option("--note", help="observer's note (at most 2000 characters)")
+@pass_ctx
+def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: str | None) -> None:
+    """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back."""
+    from .db import plans, store
+
+    if result == "partial" and exposure is None:
+        raise InputError("exposure", "required with --result partial: the seconds of exposure achieved")
+    now = datetime.now(timezone.utc)
+
+    def work(s):
+        active = plans.active_plan(s)
+        entry_id = None
+        if active is not None:
+            mine = [e for e in active.entries if e.request_id == request_id]
+            if mine:  # the entry in progress or the latest one started, else the first planned
+                started = [e for e in mine if e.start <= now]
+                entry_id = (started[-1] if started else mine[0]).id
+        out = store.record_outcome(s, request_id, result, exposure, note, entry_id)
+        row = store.get_request(s, request_id)
+        return out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s
+
+    oid, status, done_n, reps, part, exp = c.db().retrying(work)
+    if status == "done":
+        tail = "all executions done; it leaves the queue"
+    elif result == "partial":
+        tail = (f"{part:g} s of {exp:g} s credited; the remaining {exp - part:g} s stay queued" if part > 0 else
+                f"execution {done_n} of {reps} complete; the next stays queued")
+    elif result == "failed":
+        tail = "back in the queue"
+    else:
+        tail = f"{done_n} of {reps} executions done; the rest stay queued"
+    click.echo(f"outcome {oid} recorded: request {request_id} {result}; {tail} (status {status}). "
+               f"The next plan build reflects it.")
+
+
+# --------------------------------------------------------------------------- demo
+
+@click.command("demo")
+@click.option("--out", "out_dir", metavar="DIR", help="folder for the demo's database, config, chart and exports "
+                                                      "(default: a new temporary folder)")
+@click.option("--time-limit", type=float, default=8.0, show_default=True, help="solver time limit per build, seconds")
+def demo(out_dir: str | None, time_limit: float) -> None:
+    """The whole job on the invented scenario: queue, forecast, plan, chart, export, re-plan."""
+    from .demo import run_demo
+
+    if not (0.1 <= time_limit <= 600):
+        raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 600 seconds")
+    run_demo(out_dir, time_limit)
+
+
+def register(cli: click.Group) -> None:
+    cli.add_command(plan)
+    cli.add_command(next_cmd)
+    cli.add_command(record)
+    cli.add_command(demo)
