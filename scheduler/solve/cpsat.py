@@ -25,6 +25,7 @@ Formulation (docs/solver.md has the full write-up and the proof sketch):
 
 from __future__ import annotations
 
+import math
 import os
 import time
 from dataclasses import dataclass
@@ -99,8 +100,13 @@ def candidate_arcs(problem: Problem, k_best: int, forced: Sequence[tuple[int, in
     return sorted(arcs)
 
 
-def build_model(problem: Problem, arcs: Sequence[tuple[int, int]]) -> tuple[cp_model.CpModel, ModelVars]:
-    """The whole CP-SAT model. Pure: reads the Problem's arrays, no I/O."""
+def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
+                upper_bound: int | None = None) -> tuple[cp_model.CpModel, ModelVars]:
+    """The whole CP-SAT model. Pure: reads the Problem's arrays, no I/O.
+
+    upper_bound: a proven bound on the objective (lagrangian_bound); stated as a constraint it
+    cuts no solution and lets the gap-based stop work from the first second.
+    """
     P = problem
     m = cp_model.CpModel()
     n_e = len(P.execs)
@@ -210,6 +216,8 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]]) -> tuple[cp_m
         objective.append(c * k)
         keep[j] = k
 
+    if upper_bound is not None:
+        m.Add(sum(objective) <= int(upper_bound))
     m.Maximize(sum(objective))
     return m, ModelVars(present, start, before, buckets, follows, after_gap, keep)
 
@@ -319,13 +327,14 @@ class _Progress(cp_model.CpSolverSolutionCallback):
 
 
 def solve_problem(problem: Problem, *, time_limit_s: float = 10.0, gap_tolerance: float = 0.01,
-                  hint: Sequence[Placement] | None = None, k_best: int = 10, num_workers: int | None = None,
+                  hint: Sequence[Placement] | None = None, upper_bound: int | None = None,
+                  k_best: int = 10, num_workers: int | None = None,
                   seed: int = 0, progress: Callable[[str], None] | None = None,
                   model_timer: Callable[[float], None] | None = None) -> SolveOutcome:
     """Build, hint and solve the model. Stops at the time limit or the relative gap tolerance."""
     t0 = time.perf_counter()
     arcs = candidate_arcs(problem, k_best, hint_pairs(problem, hint) if hint else ())
-    model, v = build_model(problem, arcs)
+    model, v = build_model(problem, arcs, upper_bound)
     if hint:
         add_hint(model, v, problem, hint)
     n_buckets = sum(max(1, len(b)) for b in v.buckets)
@@ -352,6 +361,104 @@ def solve_problem(problem: Problem, *, time_limit_s: float = 10.0, gap_tolerance
     obj = solver.ObjectiveValue()
     sci, stab = objective_of(problem, plan)
     assert abs((sci + stab) - obj) < 0.5, "model objective and plan value disagree"
-    bound = max(solver.BestObjectiveBound(), obj)
+    bound = max(min(solver.BestObjectiveBound(), upper_bound if upper_bound is not None else math.inf), obj)
     gap = 0.0 if status == cp_model.OPTIMAL else (bound - obj) / max(abs(bound), 1e-9)
     return SolveOutcome(plan, name, obj / VALUE_SCALE, bound / VALUE_SCALE, gap, runtime, len(arcs), n_buckets)
+
+
+# --------------------------------------------------------------------------- bound
+
+@dataclass(frozen=True)
+class LagrangianResult:
+    bound: int  # valid upper bound on the model objective (integer units)
+    order: list[int]  # executions by decreasing reduced value at the best prices
+    preferred: dict[int, int]  # each execution's best start at the best prices
+    iterations: int
+
+
+def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300, time_limit_s: float = 2.0) -> LagrangianResult:
+    """Upper bound from the time-indexed relaxation, by subgradient on per-step prices.
+
+    Relaxation: an execution started at s occupies at least the steps [s - tmin, s + d) of the
+    grid (tmin = the smallest transition bound into it from any request, so it is no larger
+    than the model's transition_before); entries are disjoint, so every step is covered at
+    most once. Pricing each step with lambda >= 0 and dropping the cover constraints gives,
+    for ANY lambda,
+
+        L(lambda) = sum_t lambda_t + sum_free_e max(0, max_s [c_e(s) - sum_{t in cover(e,s)} lambda_t])
+                    + sum_kept_e [c_e(s_e) - sum_{t in cover(e,s_e)} lambda_t]
+
+    >= the model's optimum (c includes the stability bonus where it can apply; repeats and
+    transitions beyond tmin are relaxed). Polyak steps toward ``lower`` (a known plan's value).
+    """
+    P = problem
+    execs = P.execs
+    n_t = P.n_t
+    t_start = time.perf_counter()
+    if not execs:
+        return LagrangianResult(0, [], {}, 0)
+    # tmin over ALL predecessors (not only the sparse arcs): the relaxation stays valid for any arc set.
+    Tm = P.T.copy()
+    n_exec_of = np.bincount([ex.req for ex in execs], minlength=len(P.requests))
+    single = np.flatnonzero(n_exec_of <= 1)
+    Tm[single, single] = np.iinfo(np.int64).max // 4  # a request with one execution cannot follow itself
+    col_min = Tm.min(axis=0) if Tm.size else np.zeros(0, dtype=np.int64)
+    E, S, C, LO, HI, forced = [], [], [], [], [], []
+    for e, ex in enumerate(execs):
+        tmin = 0 if ex.in_progress else int(min(P.tmax[ex.req], col_min[ex.req]))
+        st = ex.starts if ex.fixed_start is None else np.array([ex.fixed_start], dtype=np.int64)
+        b = np.searchsorted(ex.bucket_lo, st, side="right") - 1
+        c = ex.bucket_coef[b].astype(np.float64)
+        sc = P.stability_coef(e)
+        if sc and ex.prev_start is not None:
+            c = c + sc * (np.abs(st - ex.prev_start) <= P.stability_window)
+        E.append(np.full(st.size, e)), S.append(st), C.append(c)
+        LO.append(np.clip(st - tmin, 0, n_t)), HI.append(np.clip(st + ex.duration, 0, n_t))
+        forced.append(ex.fixed_start is not None)
+    E, S, C = np.concatenate(E), np.concatenate(S), np.concatenate(C)
+    LO, HI = np.concatenate(LO), np.concatenate(HI)
+    forced = np.array(forced)
+    seg_len = np.array([1 if ex.fixed_start is not None else ex.starts.size for ex in execs])
+    seg0 = np.concatenate([[0], np.cumsum(seg_len)[:-1]])
+    free = ~forced
+    span = max(1, n_t - P.now_step)
+    lam = np.full(n_t, max(lower, 1) / span, dtype=np.float64)
+    lam[: P.now_step] = 0.0
+    best = (math.inf, lam.copy())
+    theta, stall = 1.0, 0
+    it = 0
+    for it in range(1, iterations + 1):
+        cum = np.concatenate([[0.0], np.cumsum(lam)])
+        red = C - (cum[HI] - cum[LO])
+        segmax = np.maximum.reduceat(red, seg0)
+        val = lam.sum() + np.maximum(segmax[free], 0.0).sum() + segmax[forced].sum()
+        if val < best[0] - 1e-9:
+            best, stall = (val, lam.copy()), 0
+        else:
+            stall += 1
+            if stall >= 8:
+                theta, stall = theta / 2, 0
+        take = forced | (segmax > 0)
+        is_max = red >= np.repeat(segmax, seg_len) - 1e-9
+        idx = np.flatnonzero(is_max & take[E])
+        _, first = np.unique(E[idx], return_index=True)
+        ch = idx[first]
+        diff = np.zeros(n_t + 1)
+        np.add.at(diff, LO[ch], 1.0)
+        np.add.at(diff, HI[ch], -1.0)
+        g = 1.0 - np.cumsum(diff)[:n_t]
+        nrm = float(g @ g)
+        if nrm == 0 or theta < 1e-4 or time.perf_counter() - t_start > time_limit_s:
+            break
+        lam = np.maximum(0.0, lam - theta * max(val - lower, 1e-6) / nrm * g)
+    lam = best[1]
+    cum = np.concatenate([[0.0], np.cumsum(lam)])
+    red = C - (cum[HI] - cum[LO])
+    segmax = np.maximum.reduceat(red, seg0)
+    is_max = red >= np.repeat(segmax, seg_len) - 1e-9
+    idx = np.flatnonzero(is_max)
+    _, first = np.unique(E[idx], return_index=True)
+    ch = idx[first]
+    preferred = {int(E[i]): int(S[i]) for i in ch}
+    order = [int(e) for e in np.argsort(-segmax, kind="stable")]
+    return LagrangianResult(int(math.floor(best[0] + 1e-6)), order, preferred, it)

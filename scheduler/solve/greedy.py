@@ -15,6 +15,8 @@ complete hint) and the checker's true transitions are never longer.
 
 from __future__ import annotations
 
+from typing import Sequence
+
 import numpy as np
 
 from .problem import Placement, Problem
@@ -39,7 +41,7 @@ def dense_tables(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
     return nxt, coef
 
 
-def greedy_plan(problem: Problem) -> list[Placement]:
+def greedy_plan(problem: Problem, wait_exponent: float = 1.0) -> list[Placement]:
     P = problem
     n_t = P.n_t
     execs = P.execs
@@ -97,7 +99,10 @@ def greedy_plan(problem: Problem) -> list[Placement]:
             if nb is not None:
                 ok &= end + P.T[req[cand], execs[nb].req] <= execs[nb].fixed_start
             if ok.any():
-                sc = np.where(ok, coef[cand, np.minimum(s, n_t - 1)] / np.maximum(end - cur, 1), -1.0)
+                cost = np.maximum(end - cur, 1).astype(np.float64)
+                if wait_exponent != 1.0:
+                    cost = cost ** wait_exponent
+                sc = np.where(ok, coef[cand, np.minimum(s, n_t - 1)] / cost, -1.0)
                 j = int(np.argmax(sc))
                 e = int(cand[j])
                 placed.append(Placement(e, int(s[j])))
@@ -115,3 +120,80 @@ def greedy_plan(problem: Problem) -> list[Placement]:
         bi += 1
     placed.sort(key=lambda p: p.start)
     return placed
+
+
+def insertion_plan(problem: Problem, order: Sequence[int], preferred: dict[int, int] | None = None,
+                   coef: np.ndarray | None = None) -> list[Placement]:
+    """Insert executions one by one, in ``order``, wherever they fit in the plan built so far.
+
+    An execution fits in a gap between two planned entries when one of its feasible starts
+    leaves the transition bound (Problem.T) on both sides; among the fitting starts it takes
+    ``preferred[e]`` when that fits, else the one with the highest value. Repeats keep their
+    order and spacing. Used with orders derived from the Lagrangian prices (cpsat.lagrangian_bound)
+    to give CP-SAT a strong first solution.
+    """
+    P = problem
+    execs = P.execs
+    n_t = P.n_t
+    if coef is None:
+        coef = dense_tables(P)[1]
+    seq: list[Placement] = sorted((Placement(e, int(ex.fixed_start)) for e, ex in enumerate(execs)
+                                   if ex.fixed_start is not None), key=lambda p: p.start)
+    placed_at: dict[int, int] = {p.exec_index: p.start for p in seq}
+    by_req: dict[int, list[int]] = {}
+    for e, ex in enumerate(execs):
+        by_req.setdefault(ex.req, []).append(e)
+    for lst in by_req.values():
+        lst.sort(key=lambda e: execs[e].k)
+    preferred = preferred or {}
+    pending = [e for e in order if e not in placed_at]
+    for _ in range(2):  # a second pass picks up repeats whose predecessor was placed late
+        left = []
+        for e in pending:
+            ex = execs[e]
+            sib = by_req[ex.req]
+            pos = sib.index(e)
+            lo_bound, hi_bound = P.now_step, n_t - 1
+            if pos > 0:
+                prev_e = sib[pos - 1]
+                if prev_e not in placed_at:
+                    left.append(e)
+                    continue
+                lo_bound = max(lo_bound, placed_at[prev_e] + max(execs[prev_e].duration, int(P.spacing_steps[ex.req])))
+            if pos + 1 < len(sib) and sib[pos + 1] in placed_at:
+                nxt_e = sib[pos + 1]
+                hi_bound = min(hi_bound, placed_at[nxt_e] - max(ex.duration, int(P.spacing_steps[ex.req])))
+            st = ex.starts[(ex.starts >= lo_bound) & (ex.starts <= hi_bound)]
+            if st.size == 0:
+                continue
+            best = None
+            starts_seq = [p.start for p in seq]
+            for g in range(len(seq) + 1):
+                a = seq[g - 1] if g > 0 else None
+                b = seq[g] if g < len(seq) else None
+                lo = P.now_step if a is None else a.start + execs[a.exec_index].duration + int(P.T[execs[a.exec_index].req, ex.req])
+                hi = n_t - ex.duration if b is None else b.start - ex.duration - int(P.T[ex.req, execs[b.exec_index].req])
+                if hi < lo or (a is not None and a.start > st[-1]) or (b is not None and b.start < st[0]):
+                    continue
+                i0, i1 = np.searchsorted(st, lo, "left"), np.searchsorted(st, hi, "right")
+                if i1 <= i0:
+                    continue
+                cand = st[i0:i1]
+                want = preferred.get(e)
+                if want is not None and lo <= want <= hi and np.any(cand == want):
+                    s = want
+                else:
+                    s = int(cand[int(np.argmax(coef[e, cand]))])
+                c = int(coef[e, s])
+                if best is None or c > best[0]:
+                    best = (c, int(s))
+            if best is None:
+                continue
+            s = best[1]
+            k = int(np.searchsorted(starts_seq, s))
+            seq.insert(k, Placement(e, s))
+            placed_at[e] = s
+        if not left:
+            break
+        pending = left
+    return seq

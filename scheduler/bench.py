@@ -1,0 +1,297 @@
+"""Benchmark: python -m scheduler.bench [--sizes 100,500,2000] [--quick] [--out docs]
+
+Deterministic generated queues (seeded RNG; invented programs, targets and limits; bands U..Q
+from the starter config) on one night at the starter config's (fictional) site, 1-minute
+grid, with a generated forecast. For each size: build time split into sky / feasibility /
+model / solve, peak memory, objective, bound, gap, fraction of dark time used, mean airmass of
+planned time and science value next to the greedy baseline. Also a re-plan after a
+conditions change (sky grid reused) and a sky section. Writes docs/benchmarks.md and .json.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import resource
+import time
+import tracemalloc
+from datetime import date, datetime, timedelta, timezone
+from pathlib import Path
+
+import numpy as np
+
+from .config import ObservatoryConfig, starter_config
+from .request_spec import RequestSpec
+
+BENCH_DATE = date(2026, 12, 5)  # a short southern summer night (about 10 h) at the starter site
+SEED = 20260620
+
+
+def generate_programs(rng: np.random.Generator, n: int = 8) -> dict[str, float]:
+    """Invented program codes with weights 0.5..3."""
+    return {f"QB-{k + 1:02d}": float(np.round(rng.uniform(0.5, 3.0), 2)) for k in range(n)}
+
+
+def generate_queue(config: ObservatoryConfig, n: int, seed: int = SEED, night=None) -> tuple[list[RequestSpec], dict[str, float]]:
+    """n invented requests with mixed bands and limits (deterministic for a seed)."""
+    rng = np.random.default_rng(seed)
+    weights = generate_programs(rng)
+    progs = list(weights)
+    bands = list(config.bands)
+    # optical most common, then near-IR, then mid-IR
+    p_band = np.array([3 if b in "UBVRI" else 2 if b in "JHK" else 1 for b in bands], dtype=float)
+    p_band /= p_band.sum()
+    lat = config.site.latitude_deg
+    t0 = t1 = None
+    if night is not None:
+        t0, t1 = float(night.times_unix[0]), float(night.times_unix[-1])
+    out = []
+    for i in range(n):
+        band = bands[rng.choice(len(bands), p=p_band)]
+        # targets that culminate above ~35 deg: |dec - lat| < 55
+        dec = float(np.clip(lat + rng.uniform(-55, 55), -89, 89))
+        ra = float(rng.uniform(0, 360))
+        exposure = float(60 * round(math.exp(rng.uniform(math.log(5), math.log(90)))))
+        kw: dict = {}
+        if rng.random() < 0.4:
+            kw["max_seeing_arcsec"] = float(np.round(rng.uniform(0.6, 1.6), 2))
+        if rng.random() < 0.2:
+            lim = config.diffraction_limit_arcsec(band)
+            kw["resolution_arcsec"] = float(np.round(max(lim * 1.5, rng.uniform(0.4, 1.5)), 2))
+        if band in ("J", "H", "K", "N", "Q") and rng.random() < 0.6:
+            kw["max_pwv_mm"] = float(np.round(rng.uniform(1.0, 8.0), 1))
+        if rng.random() < 0.6:
+            kw["max_airmass"] = float(np.round(rng.uniform(1.3, 2.5), 2))
+        if rng.random() < 0.3:
+            kw["min_moon_sep_deg"] = float(np.round(rng.uniform(20, 60)))
+        if rng.random() < 0.2:
+            kw["max_moon_illum"] = float(np.round(rng.uniform(0.3, 1.0), 2))
+        if rng.random() < 0.3:
+            kw["max_cloud_mag"] = float(np.round(rng.uniform(0.1, 0.6), 2))
+        if t0 is not None and rng.random() < 0.08:  # time-critical window of 20..120 min
+            a = rng.uniform(t0, t1 - 3600)
+            kw["not_before"] = datetime.fromtimestamp(60 * round(a / 60), tz=timezone.utc)
+            kw["not_after"] = kw["not_before"] + timedelta(minutes=float(rng.uniform(20, 120)) + exposure / 60)
+        reps = int(rng.choice([1, 1, 1, 1, 1, 1, 2, 2, 3]))
+        if reps > 1:
+            kw["min_spacing_s"] = float(60 * round(rng.uniform(30, 120)))
+        out.append(RequestSpec(
+            program=progs[int(rng.integers(len(progs)))], target=f"GEN-{i + 1:05d}", ra_deg=ra, dec_deg=dec,
+            band=band, exposure_s=exposure, instrument=config.instrument_for(band).name, repeats=reps,
+            priority=int(rng.integers(1, 11)), id=i + 1, **kw))
+    return out, weights
+
+
+def generate_forecast(night, seed: int = SEED, *, wet_early: bool = True, shift: float = 0.0):
+    """Samples every 30 min: seeing random walk, PWV wet early / dry late, thin cloud, open dome."""
+    from .conditions.ingest import Sample
+    rng = np.random.default_rng(seed + 1)
+    t0, t1 = float(night.times_unix[0]), float(night.times_unix[-1]) + night.step_s
+    ts = np.arange(t0 - 1800, t1 + 1800, 1800.0)
+    seeing = np.clip(0.9 + np.cumsum(rng.normal(0, 0.08, ts.size)) + shift, 0.4, 2.5)
+    frac = (ts - ts[0]) / (ts[-1] - ts[0])
+    pwv = np.clip((6.0 - 5.0 * frac if wet_early else 1.5 + 3 * frac) + rng.normal(0, 0.3, ts.size) + shift, 0.3, 20)
+    cloud = np.clip(rng.normal(0.05, 0.05, ts.size), 0, 1)
+    return [Sample(time=datetime.fromtimestamp(float(t), tz=timezone.utc), seeing_arcsec=float(s), pwv_mm=float(p),
+                   cloud_mag=float(c), wind_ms=6.0, humidity_pct=35.0, dome_open=True)
+            for t, s, p, c in zip(ts, seeing, pwv, cloud)]
+
+
+def _plan_metrics(result, night, sky_used_steps: int) -> dict:
+    step = night.step_s
+    planned_steps = sum(e.end_step - e.start_step for e in result.entries)
+    x = [e.airmass_start for e in result.entries] + [e.airmass_end for e in result.entries]
+    w = [e.end_step - e.start_step for e in result.entries] * 2
+    return {
+        "entries": len(result.entries),
+        "dark_fraction_used": planned_steps / max(1, sky_used_steps),
+        "mean_airmass": float(np.average(x, weights=w)) if x else None,
+        "planned_hours": planned_steps * step / 3600,
+    }
+
+
+def _dark_steps(sky) -> int:
+    """Grid steps with the Sun below -12 deg (nautical darkness, when any band may observe)."""
+    return int(np.count_nonzero(sky.sun_alt_deg <= -12.0))
+
+
+def run_size(config, night, n: int, *, time_limit_s: float, seed: int = SEED) -> dict:
+    from .conditions.grid import conditions_on_grid
+    from .pipeline import build_plan, target_rows_for
+    from .sky.ephemeris import compute_sky
+
+    reqs, weights = generate_queue(config, n, seed, night)
+    cond = conditions_on_grid(generate_forecast(night, seed), night.times_unix, config.defaults)
+    tracemalloc.start()
+    t0 = time.perf_counter()
+    ra, dec, _ = target_rows_for(reqs)
+    ts = time.perf_counter()
+    sky = compute_sky(config.site, night, ra, dec)
+    sky_s = time.perf_counter() - ts
+    res = build_plan(config, reqs, weights, night, cond, sky=sky, time_limit_s=time_limit_s - sky_s)
+    total = time.perf_counter() - t0
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    timings = dict(res.timings)
+    timings["sky"] = sky_s
+    row = {
+        "requests": n, "total_s": total, "timings": timings, "peak_traced_mib": peak / 2**20,
+        "status": res.solver_status, "objective": res.objective, "bound": res.bound, "gap": res.gap,
+        "greedy_objective": res.greedy_objective, "used_greedy": res.used_greedy,
+        "vs_greedy": (res.objective / res.greedy_objective - 1) if res.greedy_objective else None,
+        "violations": len(res.violations), "stats": res.stats, "message": res.message,
+    }
+    row.update(_plan_metrics(res, night, _dark_steps(sky)))
+    return row, (reqs, weights, sky, cond, res)
+
+
+def run_replan(config, night, base, *, time_limit_s: float) -> dict:
+    """Conditions change mid-night: re-plan from 3 h after dusk, sky grid reused, previous plan kept stable."""
+    from .conditions.grid import conditions_on_grid
+    from .pipeline import build_plan
+
+    reqs, weights, sky, _cond, res = base
+    now = datetime.fromtimestamp(float(night.times_unix[0]) + 3 * 3600 + 20, tz=timezone.utc)
+    cond2 = conditions_on_grid(generate_forecast(night, SEED, shift=0.3), night.times_unix, config.defaults)
+    t0 = time.perf_counter()
+    r2 = build_plan(config, reqs, weights, night, cond2, sky=sky, now=now, previous_entries=list(res.entries),
+                    time_limit_s=time_limit_s)
+    total = time.perf_counter() - t0
+    keep = {(e.request_id, e.execution, e.start_step) for e in res.entries}
+    later = [e for e in r2.entries if e.start_step >= r2.now_step]
+    return {
+        "requests": len(reqs), "total_s": total, "timings": r2.timings, "status": r2.solver_status,
+        "objective": r2.objective, "bound": r2.bound, "gap": r2.gap, "greedy_objective": r2.greedy_objective,
+        "used_greedy": r2.used_greedy, "violations": len(r2.violations), "entries": len(r2.entries),
+        "unchanged_entries": sum(1 for e in later if (e.request_id, e.execution, e.start_step) in keep),
+        "entries_after_now": len(later), "message": r2.message,
+    }
+
+
+def run_sky_section(config, night, quick: bool) -> dict:
+    from .conditions.grid import conditions_on_grid
+    from .feasibility import evaluate, static_layer
+    from .pipeline import target_rows_for
+    from .sky.ephemeris import compute_sky
+    from .sky.night import compute_night
+
+    n_tg = 2000
+    n_t = 600
+    night600 = night
+    if night.n_times < n_t:  # use a grid step that gives 600 times over the night
+        night600 = compute_night(config.site, BENCH_DATE, max(10, int(night.n_times * night.step_s / n_t)))
+    rng = np.random.default_rng(SEED + 7)
+    ra, dec = rng.uniform(0, 360, n_tg), rng.uniform(-85, 35, n_tg)
+    t0 = time.perf_counter()
+    sky = compute_sky(config.site, night, ra, dec)
+    sky_s = time.perf_counter() - t0
+    reqs, _ = generate_queue(config, 500, SEED, night)
+    cond = conditions_on_grid(generate_forecast(night, SEED), night.times_unix, config.defaults)
+    r_ra, r_dec, rows = target_rows_for(reqs)
+    sky500 = compute_sky(config.site, night, r_ra, r_dec)
+    t0 = time.perf_counter()
+    st = static_layer(reqs, rows, sky500, config)
+    static_s = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    evaluate(reqs, rows, sky500, cond, config, st)
+    cond_s = time.perf_counter() - t0
+    return {"compute_sky_targets": n_tg, "compute_sky_times": int(night.n_times), "compute_sky_s": sky_s,
+            "feasibility_requests": 500, "static_layer_s": static_s, "conditions_layers_s": cond_s}
+
+
+def _fmt(x, nd=2):
+    if x is None:
+        return "-"
+    if isinstance(x, float):
+        if math.isinf(x):
+            return "inf"
+        return f"{x:.{nd}f}"
+    return str(x)
+
+
+def write_docs(out: Path, data: dict) -> None:
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "benchmarks.json").write_text(json.dumps(data, indent=2, default=str) + "\n", encoding="utf-8")
+    lines = [
+        "# Benchmarks",
+        "",
+        "Generated by `python -m scheduler.bench` (do not edit by hand; the analysis section is kept",
+        "in docs/solver.md). Machine: " + data["machine"] + f". Night {data['night']}, "
+        f"{data['n_times']} steps of {data['step_s']} s; dark (Sun < -12 deg) {data['dark_hours']:.1f} h.",
+        "",
+        "| requests | total s | sky | feasibility | model | solve | check | peak MiB | status | objective | bound | gap | greedy | vs greedy | entries | dark used | mean X |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+    ]
+    for r in data["sizes"]:
+        t = r["timings"]
+        lines.append(
+            f"| {r['requests']} | {_fmt(r['total_s'])} | {_fmt(t['sky'])} | {_fmt(t['feasibility'])} | {_fmt(t['model'])} | "
+            f"{_fmt(t['solve'])} | {_fmt(t['check'])} | {_fmt(r['peak_traced_mib'], 0)} | {r['status']} | "
+            f"{_fmt(r['objective'], 3)} | {_fmt(r['bound'], 3)} | {100 * r['gap']:.1f} % | {_fmt(r['greedy_objective'], 3)} | "
+            f"{100 * (r['vs_greedy'] or 0):+.1f} % | {r['entries']} | {100 * r['dark_fraction_used']:.0f} % | "
+            f"{_fmt(r['mean_airmass'])} |")
+    rp = data.get("replan")
+    if rp:
+        lines += ["", "Re-plan after a conditions change (seeing and PWV up by 0.3), sky grid reused, from 3 h after dusk:",
+                  "", "| requests | total s | feasibility | model | solve | status | objective | bound | gap | greedy | entries after now | unchanged |",
+                  "|---|---|---|---|---|---|---|---|---|---|---|---|",
+                  f"| {rp['requests']} | {_fmt(rp['total_s'])} | {_fmt(rp['timings']['feasibility'])} | {_fmt(rp['timings']['model'])} | "
+                  f"{_fmt(rp['timings']['solve'])} | {rp['status']} | {_fmt(rp['objective'], 3)} | {_fmt(rp['bound'], 3)} | "
+                  f"{100 * rp['gap']:.1f} % | {_fmt(rp['greedy_objective'], 3)} | {rp['entries_after_now']} | {rp['unchanged_entries']} |"]
+    sk = data.get("sky")
+    if sk:
+        lines += ["", "Sky and feasibility stages alone:", "",
+                  f"- compute_sky, {sk['compute_sky_targets']} targets x {sk['compute_sky_times']} times: {sk['compute_sky_s']:.2f} s",
+                  f"- feasibility static layer, {sk['feasibility_requests']} requests: {sk['static_layer_s']:.2f} s",
+                  f"- feasibility conditions layers, {sk['feasibility_requests']} requests: {sk['conditions_layers_s']:.2f} s"]
+    lines += ["", "Peak memory: `tracemalloc` peak of Python allocations during the build (numpy included);",
+              f"process max RSS at the end of the run: {data['max_rss_mib']:.0f} MiB.", ""]
+    lines += ["Targets (2 cores): 500 requests <= 10 s end to end with gap <= 2 %; 2000 <= 60 s; re-plan <= 5 s;",
+              "memory < 1 GiB; never below greedy. See docs/solver.md for the analysis of misses.", ""]
+    (out / "benchmarks.md").write_text("\n".join(lines), encoding="utf-8")
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(prog="python -m scheduler.bench", description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", default="100,500,2000")
+    ap.add_argument("--quick", action="store_true", help="sizes 100,500 and short time limits")
+    ap.add_argument("--out", default=str(Path(__file__).resolve().parents[1] / "docs"))
+    ap.add_argument("--no-write", action="store_true")
+    a = ap.parse_args(argv)
+    config = starter_config()
+    from .sky.night import compute_night
+    night = compute_night(config.site, BENCH_DATE, 60)
+    sizes = [int(s) for s in a.sizes.split(",") if s.strip()]
+    if a.quick:
+        sizes = [s for s in sizes if s <= 500] or [100]
+    limits = {n: (10.0 if n <= 500 else 60.0) for n in sizes}
+    if a.quick:
+        limits = {n: 3.0 for n in sizes}
+    data = {"machine": f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}",
+            "night": str(BENCH_DATE), "n_times": night.n_times, "step_s": night.step_s, "sizes": [],
+            "quick": a.quick}
+    base500 = None
+    for n in sizes:
+        row, base = run_size(config, night, n, time_limit_s=limits[n])
+        data["sizes"].append(row)
+        print(f"{n:5d} requests: {row['total_s']:.1f} s, {row['status']}, objective {row['objective']:.3f} "
+              f"bound {row['bound']:.3f} gap {100 * row['gap']:.1f} % greedy {row['greedy_objective']:.3f}", flush=True)
+        if n == 500:
+            base500 = base
+    data["dark_hours"] = _dark_steps(base[2]) * night.step_s / 3600 if sizes else 0.0
+    if base500 is not None:
+        data["replan"] = run_replan(config, night, base500, time_limit_s=3.0 if a.quick else 5.0)
+        print(f"replan: {data['replan']['total_s']:.1f} s gap {100 * data['replan']['gap']:.1f} %", flush=True)
+    data["sky"] = run_sky_section(config, night, a.quick)
+    data["max_rss_mib"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    if not a.no_write:
+        write_docs(Path(a.out), data)
+    print(json.dumps({k: v for k, v in data.items() if k != "sizes"}, default=str)[:2000])
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
