@@ -7,6 +7,7 @@ fixed (--clock) to 01:30 UTC, after astronomical dusk (00:52 UTC). Waits are bou
 from __future__ import annotations
 
 import json
+import logging
 import os
 import re
 import shlex
@@ -14,13 +15,14 @@ import signal
 import subprocess
 import sys
 import time
-from datetime import datetime, timedelta, timezone
+from datetime import date, datetime, timedelta, timezone
 from pathlib import Path
 
 import pytest
 from sqlalchemy import select
 
 from conftest import ROOT, run_cli
+from scheduler.conditions.ingest import parse_conditions
 from scheduler.config import load_config
 from scheduler.db import plans, store
 from scheduler.db.models import Plan, ReplanOrder
@@ -264,3 +266,165 @@ def test_kill_9_then_restart_resumes(served, night):
         assert o.plan_id == done["version"] and o.result.startswith("plan version")
     again.proc.send_signal(signal.SIGINT)
     assert again.proc.wait(WAIT_S) == 0, again.log()
+
+
+# --------------------------------------------------------------------------- in-process: the decisions
+
+class _Records(logging.Handler):
+    def __init__(self):
+        super().__init__()
+        self.events: list[tuple[str, dict]] = []
+
+    def emit(self, record):
+        self.events.append((record.getMessage(), getattr(record, "kv", {})))
+
+
+@pytest.fixture
+def jobs(night):
+    from scheduler.planner import Planner
+    from scheduler.service.clock import Clock
+    from scheduler.service.jobs import Jobs
+    from scheduler.service.log import EventLog
+
+    config = load_config(night / "observatory.toml")
+    db = open_db(str(night / "nightplan.sqlite"), create_file=False)
+    logger = logging.getLogger(f"test.service.{time.monotonic_ns()}")
+    logger.propagate = False
+    rec = _Records()
+    logger.addHandler(rec)
+    logger.setLevel(logging.INFO)
+    j = Jobs(db, config, Planner(config), Clock(T0), EventLog(logger), watch=night / "feed")
+    j.records = rec
+    yield j
+    db.dispose()
+
+
+def _add(jobs, **fields) -> int:
+    spec = validate_request({"program": "STAR-1", **fields}, jobs.config, {"STAR-1"})
+    return jobs.db.retrying(lambda s: store.add_requests(s, [spec]))[0]
+
+
+def _active(jobs):
+    with jobs.db.session() as s:
+        p = plans.active_plan(s)
+        return p.id, p.reason, {e.request_id for e in p.entries}
+
+
+def test_validity_follows_requests_and_outcomes(jobs):
+    jobs.db.retrying(lambda s: store.store_conditions(
+        s, list(parse_conditions(forecast_csv(1.0))), "test forecast"))
+    assert jobs.check_validity() == ["first plan for the night of 2026-12-16"]
+    v1, _, planned = _active(jobs)
+    assert jobs.check_validity() == []  # the new plan, looked at once
+    assert jobs.check_validity() is None  # nothing changed since: not looked at again
+    assert _active(jobs)[0] == v1
+
+    # A low-value newcomer does not outrank anything planned: no re-plan.
+    low = _add(jobs, target="TEST-LOW", ra=40.0, dec=-35.0, band="V", exposure_s=60, priority=1)
+    assert jobs.check_validity() == []
+    assert _active(jobs)[0] == v1
+    # ... although it is observable tonight (it would count if nothing else were planned).
+    from scheduler.service.validity import outranking_requests
+
+    night = jobs.planner.night(date(2026, 12, 16))
+    with jobs.db.session() as s:
+        low_spec = store.to_spec(store.get_request(s, low))
+    cond = jobs.planner.conditions(night, list(parse_conditions(forecast_csv(1.0))), None)
+    assert outranking_requests(jobs.config, night, jobs.planner.sky_cache, [low_spec], [], {"STAR-1": 2.0},
+                               cond, T0) == [f"new request {low} (TEST-LOW, priority 1): feasible tonight and "
+                                             "nothing else is planned"]
+
+    # A target of opportunity that can be observed tonight does.
+    too = _add(jobs, target="TEST-TOO", ra=70.0, dec=-30.0, band="R", exposure_s=600, priority=8, too=True)
+    reasons = jobs.check_validity()
+    assert reasons == [f"new request {too} (TEST-TOO, priority 8): target of opportunity"]
+    v2, reason, planned = _active(jobs)
+    assert v2 > v1 and reason == reasons[0] and too in planned
+
+    # An outcome recorded by the observers.
+    done = sorted(planned - {too})[0]
+    jobs.db.retrying(lambda s: store.record_outcome(s, done, "done"))
+    assert jobs.check_validity() == [f"outcome recorded: request {done} done"]
+    v3, _, planned = _active(jobs)
+    assert v3 > v2 and done not in planned
+
+    # A planned request withdrawn by its PI.
+    gone = sorted(planned)[0]
+    jobs.db.retrying(lambda s: store.withdraw_request(s, gone))
+    assert jobs.check_validity() == [f"planned request left the queue: {gone} withdrawn"]
+    assert gone not in _active(jobs)[2]
+
+
+def test_closure_is_named_and_unchanged_conditions_are_not(jobs):
+    from scheduler.service.validity import Planned, conditions_changes, entry_failures
+
+    night = jobs.planner.night(date(2026, 12, 16))
+    base = parse_conditions(forecast_csv(1.0))
+    closed_text = forecast_csv(1.0).replace("2026-12-17T03:00:00Z,0.7,1.0,0.0,5.0,20,open",
+                                            "2026-12-17T03:00:00Z,0.7,1.0,0.0,5.0,20,closed")
+    closed = parse_conditions(closed_text)
+    old = jobs.planner.conditions(night, list(base), 1)
+    new = jobs.planner.conditions(night, list(closed), 2)
+    assert conditions_changes(jobs.config, night, old, old, T0) == []
+    changes = conditions_changes(jobs.config, night, old, new, T0)
+    assert changes and changes[0].startswith("dome closed from 03:00 UTC")
+    with jobs.db.session() as s:
+        specs = {sp.id: sp for sp in store.active_specs(s)}
+    k = next(i for i, sp in specs.items() if sp.target == "TEST-K-1")
+    before = Planned(k, T0 + timedelta(minutes=30), T0 + timedelta(minutes=55))  # 02:00-02:25
+    during = Planned(k, T0 + timedelta(minutes=100), T0 + timedelta(minutes=125))  # 03:10-03:35
+    found = entry_failures(jobs.config, night, jobs.planner.sky_cache, [before, during], specs, new, T0)
+    assert found == [f"request {k} (TEST-K-1) planned 03:10-03:35 UTC no longer feasible: "
+                     "closure (dome closed, or wind or humidity over the limit)"]
+    # Once the entry is over, it no longer matters.
+    assert entry_failures(jobs.config, night, jobs.planner.sky_cache, [during], specs, new,
+                          T0 + timedelta(hours=2)) == []
+
+
+def test_heartbeat_and_expiry(jobs):
+    assert jobs.heartbeat() is False  # no plan yet: the validity job builds the first one
+    jobs.check_validity()
+    v1 = _active(jobs)[0]
+    assert jobs.heartbeat() is False  # fresh
+    old = datetime.now(timezone.utc) - timedelta(minutes=31)
+    jobs.db.retrying(lambda s: setattr(s.get(Plan, v1), "created_at", old))
+    assert jobs.heartbeat() is True
+    v2, reason, _ = _active(jobs)
+    assert v2 > v1 and reason == f"heartbeat: plan version {v1} is 31 min old"
+
+    late = _add(jobs, target="TEST-LATE", ra=50.0, dec=-30.0, band="R", exposure_s=300,
+                not_before="2026-12-16T23:00:00Z", not_after="2026-12-17T01:00:00Z")
+    assert jobs.expire() == [late]  # the clock says 01:30: its window is over
+    with jobs.db.session() as s:
+        assert store.get_request(s, late).status == "expired"
+    assert jobs.expire() == []
+    assert [kv["ids"] for ev, kv in jobs.records.events if ev == "requests_expired"] == [str(late)]
+
+
+def test_clock_option(monkeypatch):
+    from scheduler.errors import InputError
+    from scheduler.service.clock import CLOCK_ENV, Clock
+
+    c = Clock.from_option(CLOCK)
+    a = c.now()
+    time.sleep(0.05)
+    b = c.now()
+    assert a >= T0 and timedelta(seconds=0.04) <= b - a < timedelta(seconds=5)
+    monkeypatch.setenv(CLOCK_ENV, "2026-12-17T03:00:00")
+    assert abs((Clock.from_option(None).now() - T0 - timedelta(hours=1, minutes=30)).total_seconds()) < 5
+    monkeypatch.delenv(CLOCK_ENV)
+    assert not Clock.from_option(None).simulated
+    with pytest.raises(InputError) as e:
+        Clock.from_option("tomorrow evening")
+    assert e.value.field == "clock"
+
+
+@pytest.mark.parametrize("args, field", [
+    (["--poll", "0"], "poll"),
+    (["--watch", "no-such-folder"], "watch"),
+    (["--clock", "tomorrow evening"], "clock"),
+])
+def test_serve_bad_options_are_one_line_exit_2(workdir, args, field):
+    r = run_cli("serve", "--once", *args, cwd=workdir, timeout=60)
+    assert r.returncode == 2
+    assert r.stderr.startswith(f"nightplan: error: {field}") and len(r.stderr.strip().splitlines()) == 1
