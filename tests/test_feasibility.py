@@ -348,3 +348,39 @@ def test_static_layer_reused_and_checked():
         evaluate(reqs[:2], rows[:2], sk, c, CFG, static=st)
     with pytest.raises(ValueError):
         evaluate(reqs, rows, sk, cond(n_t - 1), CFG, static=st)
+
+
+# --------------------------------------------------------------------------- with the real ephemerides
+
+def test_with_computed_sky_against_pyephem():
+    """compute_night + compute_sky on the starter (fictional) site; altitudes and Sun checked with PyEphem,
+    an independent ephemeris library (true altitudes: pressure 0)."""
+    ephem = pytest.importorskip("ephem")
+    from scheduler.sky.ephemeris import compute_sky
+    from scheduler.sky.night import compute_night
+
+    site = CFG.site
+    nt = compute_night(site, date(2026, 6, 15), step_s=300)
+    # dec +30 culminates at 33.4 deg here (airmass ~1.8); RA 18h, dec -30 culminates near local midnight in June
+    ra, dec = np.array([270.0, 270.0]), np.array([30.0, -30.0])
+    sk = compute_sky(site, nt, ra, dec)
+    reqs = [req("V", max_airmass=1.5, id=1), req("V", id=2)]
+    f = evaluate(reqs, np.array([0, 1]), sk, cond(nt.n_times), CFG)
+    assert not f.ok[0].any() and np.all(f.reasons[0] & Reason.ALTITUDE)
+
+    o = ephem.Observer()
+    o.lat, o.lon, o.elevation, o.pressure = str(site.latitude_deg), str(site.longitude_deg), site.elevation_m, 0
+    star = ephem.FixedBody()
+    star._ra, star._dec, star._epoch = ephem.hours("18:00:00"), ephem.degrees("-30:00:00"), ephem.J2000
+    checked = 0
+    for i in range(0, nt.n_times, 3):
+        o.date = ephem.Date(datetime.fromtimestamp(nt.times_unix[i], timezone.utc).replace(tzinfo=None))
+        star.compute(o)
+        sun = ephem.Sun(o)
+        alt, sun_alt = math.degrees(star.alt), math.degrees(sun.alt)
+        if abs(alt - 20.0) < 0.2 or abs(alt - 87.0) < 0.2 or abs(sun_alt + 18.0) < 0.2:
+            continue  # too close to a limit to judge
+        expect = 20.0 <= alt <= 87.0 and sun_alt < -18.0
+        assert bool(f.ok[1, i]) == expect, (i, alt, sun_alt)
+        checked += 1
+    assert checked > 20 and f.ok[1].any() and not f.ok[1].all()
