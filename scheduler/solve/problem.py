@@ -289,6 +289,8 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
             free = []
         execs_r = [x for x in execs_r if x[3]] + free
         if not execs_r:
+            if dropped_fixed and dropped_fixed[-1][0] == rid:
+                continue  # already reported as interrupted
             unscheduled[rid] = never_feasible_reason(feas.reasons[r], feas.ok[r], now_step, d0, step_s)
             continue
         keep.append(r)

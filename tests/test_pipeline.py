@@ -1,0 +1,160 @@
+"""build_plan: re-planning from now (in-progress entry, freeze horizon, stability), reasons for
+unscheduled requests, greedy fallback, sky reuse, and one run on the real sky."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from datetime import timedelta
+
+import numpy as np
+import pytest
+
+import scheduler.pipeline as pipeline
+from scheduler.pipeline import build_plan
+from scheduler.solve.cpsat import SolveOutcome
+
+from test_solver import CFG, T0, assert_clean, make_cond, make_night, make_sky, random_scene, req
+
+N_T = 300
+
+
+@pytest.fixture(scope="module")
+def base():
+    night, sky, cond, reqs, w = random_scene(31, 14, N_T)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    assert_clean(res)
+    assert len(res.entries) >= 4
+    return night, sky, cond, reqs, w, res
+
+
+def _now_inside(night, e, minutes_after_start=2):
+    return e.start + timedelta(minutes=minutes_after_start, seconds=20)
+
+
+def test_replan_keeps_the_entry_in_progress_and_starts_nothing_before_now(base):
+    night, sky, cond, reqs, w, res = base
+    cur = res.entries[1]
+    now = _now_inside(night, cur)
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, now=now, previous_entries=list(res.entries), time_limit_s=2)
+    assert_clean(res2)
+    kept = [e for e in res2.entries if e.start_step < res2.now_step]
+    assert len(kept) == 1
+    k = kept[0]
+    assert (k.request_id, k.execution, k.start_step, k.end_step, k.fixed) == (cur.request_id, cur.execution,
+                                                                              cur.start_step, cur.end_step, True)
+    assert all(e.start >= now for e in res2.entries if e is not k)
+    assert res2.now_step == cur.start_step + 3  # first whole step after now
+
+
+def test_replan_with_unchanged_conditions_keeps_the_plan(base):
+    night, sky, cond, reqs, w, res = base
+    now = _now_inside(night, res.entries[0])
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, now=now, previous_entries=list(res.entries), time_limit_s=2)
+    assert_clean(res2)
+    old = {(e.request_id, e.execution): e.start_step for e in res.entries}
+    moved = [e for e in res2.entries if (e.request_id, e.execution) not in old
+             or abs(old[(e.request_id, e.execution)] - e.start_step) > 15]
+    assert len(moved) <= 1
+    assert res2.stability_bonus > 0
+    assert res2.science_value == pytest.approx(res2.objective - res2.stability_bonus)
+
+
+def test_frozen_entries_stay_and_storage_form_without_steps_is_accepted(base):
+    night, sky, cond, reqs, w, res = base
+    e0, e1 = res.entries[0], res.entries[1]
+    now = e1.start - timedelta(minutes=5)  # e1 starts inside the 15-minute freeze horizon
+    stored = [replace(e, start_step=-1, end_step=-1) for e in res.entries]  # storage keeps times only
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, now=now, previous_entries=stored, time_limit_s=2)
+    assert_clean(res2)
+    same = [e for e in res2.entries if (e.request_id, e.execution) == (e1.request_id, e1.execution)]
+    assert len(same) == 1 and same[0].start_step == e1.start_step and same[0].fixed
+
+
+def test_entry_in_progress_is_dropped_when_the_dome_closes(base):
+    night, sky, cond, reqs, w, res = base
+    cur = res.entries[1]
+    now = _now_inside(night, cur)
+    closed = np.asarray(cond.dome_open).copy()
+    closed[cur.start_step:] = False
+    cond2 = replace(cond, dome_open=closed)
+    res2 = build_plan(CFG, reqs, w, night, cond2, sky=sky, now=now, previous_entries=list(res.entries), time_limit_s=2)
+    assert_clean(res2)
+    assert res2.entries == ()
+    reasons = dict(res2.unscheduled)
+    assert reasons[cur.request_id] == "interrupted: closure"
+
+
+def test_unscheduled_reasons():
+    n_t = 120
+    night = make_night(n_t)
+    alt = np.vstack([np.full(n_t, 60.0), np.full(n_t, 10.0), np.full(n_t, 60.0), np.full(n_t, 60.0)])
+    sky = make_sky(night, alt, np.array([[0.0], [0.0], [30.0], [60.0]]) * np.ones((1, n_t)))
+    cond = make_cond(n_t, pwv=5.0)
+    reqs = [req(0, exposure_min=100, priority=10),  # fills the night
+            req(1, exposure_min=10),  # never above the altitude limit
+            req(2, band="Q", exposure_min=10, max_pwv_mm=1.0),  # PWV 5 mm all night
+            req(3, exposure_min=60, priority=1)]  # feasible, but there is no room
+    res = build_plan(CFG, reqs, {"P1": 1.0}, night, cond, sky=sky, time_limit_s=2)
+    assert_clean(res)
+    why = dict(res.unscheduled)
+    assert [e.request_id for e in res.entries] == [1]
+    assert why == {2: "never feasible: altitude", 3: "never feasible: pwv", 4: "displaced"}
+
+
+def test_greedy_plan_kept_when_cp_sat_finds_nothing(base, monkeypatch):
+    night, sky, cond, reqs, w, _ = base
+
+    def nothing(problem, **kw):
+        return SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.01, 0, 0)
+
+    monkeypatch.setattr(pipeline, "solve_problem", nothing)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    assert_clean(res)
+    assert res.used_greedy and res.solver_status == "GREEDY"
+    assert "greedy plan kept" in res.message
+    assert res.objective == pytest.approx(res.greedy_objective) and res.entries
+    assert res.bound >= res.objective and np.isfinite(res.gap)
+
+
+def test_result_contract(base):
+    res = base[-1]
+    assert set(res.timings) == {"sky", "feasibility", "model", "solve", "check"}
+    assert res.solver_status in ("OPTIMAL", "FEASIBLE")
+    assert res.objective == pytest.approx(sum(e.value for e in res.entries) + res.stability_bonus)
+    for e in res.entries:
+        assert e.start.tzinfo is not None and e.end > e.start
+        assert 1.0 <= e.airmass_start < 3.0 and 0 < e.merit <= 1 and 0 < e.transmission <= 1
+        assert e.predicted_fwhm_arcsec > 0 and e.value > 0
+    assert all(a.end_step <= b.start_step for a, b in zip(res.entries, res.entries[1:]))
+
+
+def test_sky_grid_must_hold_the_targets(base):
+    night, sky, cond, reqs, w, _ = base
+    stranger = req(0, exposure_min=10, id=500)
+    stranger = replace(stranger, ra_deg=333.0)
+    with pytest.raises(ValueError, match="no row for target"):
+        build_plan(CFG, reqs + [stranger], w, night, cond, sky=sky, time_limit_s=1)
+
+
+def test_empty_queue():
+    night = make_night(60)
+    res = build_plan(CFG, [], {}, night, make_cond(60), sky=make_sky(night, np.zeros((0, 60)), np.zeros((0, 60))))
+    assert res.solver_status == "EMPTY" and res.entries == () and res.violations == ()
+
+
+def test_real_sky_and_forecast_end_to_end():
+    """compute_sky + conditions_on_grid + evaluate + solver + checker on a generated queue."""
+    from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
+    from scheduler.conditions.grid import conditions_on_grid
+    from scheduler.sky.night import compute_night
+
+    night = compute_night(CFG.site, BENCH_DATE, 60)
+    reqs, w = generate_queue(CFG, 40, 7, night)
+    cond = conditions_on_grid(generate_forecast(night, 7), night.times_unix, CFG.defaults)
+    res = build_plan(CFG, reqs, w, night, cond, time_limit_s=3)
+    assert_clean(res)
+    assert len(res.entries) >= 3
+    assert res.objective >= res.greedy_objective - 1e-9
+    planned = {e.request_id for e in res.entries}
+    listed = {rid for rid, _ in res.unscheduled}
+    assert planned | listed == {r.id for r in reqs}
