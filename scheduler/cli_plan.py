@@ -248,10 +248,10 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
     from .report.why import explain
     from .sky.ephemeris import compute_sky
 
-    doc, night, config = load_document(c, version)
-    with c.db().session() as s:
+    with c.db().session() as s:  # an unknown id fails before any sky work
         spec = store.to_spec(store.get_request(s, request_id))
         weights = store.program_weights(s)
+    doc, night, config = load_document(c, version)
     solver_reason = next((u["reason"] for u in doc["unscheduled"] if u["request_id"] == request_id), None)
     sky = compute_sky(config.site, night, np.array([spec.ra_deg]), np.array([spec.dec_deg]))
     cond = conditions_on_grid(_plan_samples(c, doc), night.times_unix, config.defaults,

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import csv
 import json
+import shlex
 import tempfile
 import time
 from pathlib import Path
@@ -61,7 +62,7 @@ def run_demo(out: str | None, time_limit: float) -> dict:
     t_start = time.perf_counter()
 
     def run(*args: str, show: str | None = None) -> None:
-        click.secho(f"\n$ nightplan {show or ' '.join(args)}", bold=True)
+        click.secho(f"\n$ nightplan {show or shlex.join(args)}", bold=True)
         cli.main(args=[*base, *args], prog_name="nightplan", standalone_mode=False)
 
     def rel(p: Path) -> str:
@@ -100,7 +101,8 @@ def run_demo(out: str | None, time_limit: float) -> dict:
         v1 = plans.active_plan(s)
         v1_id = v1.id
         unscheduled = plans.plan_summary(v1).get("unscheduled", [])
-        never = next((u["request_id"] for u in unscheduled if "altitude" in u["reason"]), None)
+        never = next((u["request_id"] for u in unscheduled if u["reason"].endswith(": altitude")),
+                     next((u["request_id"] for u in unscheduled if u["reason"].startswith("never")), None))
         displaced = next((u["request_id"] for u in unscheduled if not u["reason"].startswith("never")), None)
         first_entry = min(v1.entries, key=lambda e: e.start) if v1.entries else None
         at = (first_entry.start.timestamp() + 3 * 3600) if first_entry else None
