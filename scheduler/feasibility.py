@@ -31,7 +31,8 @@ Two layers, both plain numpy over [requests x times] (no loop over time):
                 False in start_ok and does not clear ``ok`` (ok is about the step itself).
 
 duration_steps = ceil((instrument.setup_s + request.next_exposure_s) / step);
-start_ok[r, t] = ok for every step of [t, t + duration) (cumulative sums, no loop).
+start_ok[r, t] = ok at every grid instant of [t, t + duration], both ends included, so an
+exposure is also allowed at the instant it ends (cumulative sums, no loop).
 
 Merit, in (0, 1] where ok (0 where not ok), a product of three factors:
 
@@ -274,8 +275,12 @@ def start_windows(ok: np.ndarray, duration_steps: np.ndarray) -> tuple[np.ndarra
     d = np.asarray(duration_steps, dtype=np.int64)[:, None]
     end = np.arange(n_t, dtype=np.int64)[None, :] + d
     fits = end <= n_t
-    c_end = np.take_along_axis(c, np.minimum(end, n_t), axis=1)
-    return fits & (c_end - c[:, :n_t] == d), fits
+    # The grid samples instants: an exposure over [t, t + d) must also be allowed at its end
+    # instant t + d (e.g. not run past dawn inside its last step). The grid's last instant is
+    # the final check for an exposure that ends exactly at the grid's end.
+    last = np.minimum(end + 1, n_t)
+    c_end = np.take_along_axis(c, last, axis=1)
+    return fits & (c_end - c[:, :n_t] == last - np.arange(n_t)[None, :]), fits
 
 
 def evaluate(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyGrid, cond: ConditionsGrid,

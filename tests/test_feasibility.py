@@ -217,9 +217,10 @@ def test_duration_steps_and_start_ok_require_the_whole_duration():
     assert f.duration_steps[0] == 8
     d = 8
     for t in range(n_t):
-        expect = t + d <= n_t and bool(f.ok[0, t:t + d].all())
+        # both ends: the instant the exposure ends (t + d) must be allowed too
+        expect = t + d <= n_t and bool(f.ok[0, t:t + d + 1].all())
         assert f.start_ok[0, t] == expect, t
-    assert f.start_ok[0, 4] and not f.start_ok[0, 5] and not f.start_ok[0, 12] and f.start_ok[0, 13]
+    assert f.start_ok[0, 3] and not f.start_ok[0, 4] and not f.start_ok[0, 12] and f.start_ok[0, 13]
     assert f.start_ok[0, n_t - d] and not f.start_ok[0, n_t - d + 1:].any()
     # NIGHT_END marks exactly the starts that cannot fit before the grid ends; ok itself is untouched
     night_end = (f.reasons[0] & Reason.NIGHT_END) > 0
@@ -240,7 +241,7 @@ def test_start_windows_random_against_brute_force():
     start_ok, fits = start_windows(ok, d)
     for r in range(7):
         for t in range(50):
-            assert start_ok[r, t] == (t + d[r] <= 50 and ok[r, t:t + d[r]].all())
+            assert start_ok[r, t] == (t + d[r] <= 50 and ok[r, t:t + d[r] + 1].all())
             assert fits[r, t] == (t + d[r] <= 50)
 
 
