@@ -190,7 +190,6 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
             m.Add(sum(lits) <= present[i])
 
     m.AddNoOverlap(intervals)
-    _add_energy_cuts(m, P, present, tmin, buckets)
 
     # Repeats of one request: in order, spaced start to start.
     by_req: dict[int, list[int]] = {}
@@ -220,44 +219,6 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
         m.Add(sum(objective) <= int(upper_bound))
     m.Maximize(sum(objective))
     return m, ModelVars(present, start, before, buckets, follows, after_gap, keep)
-
-
-def _add_energy_cuts(m: cp_model.CpModel, P: Problem, present, tmins, buckets,
-                     window: int = 60, stride: int = 30) -> None:
-    """Redundant constraints that give the LP a usable bound (NoOverlap alone relaxes badly).
-
-    In every time window [a, a + window) the entries, each with the least transition it can
-    have before it, occupy at most window steps. An execution starting in bucket b surely
-    covers min over s in {lo_b, hi_b} of |[s - tmin, s + duration) & [a, a + window)| steps
-    of it (the overlap is concave in s, so its minimum is at an end of the bucket).
-    """
-    terms: dict[int, list] = {}
-    starts = range(P.now_step - window // 2, P.n_t, stride)
-    for j, ex in enumerate(P.execs):
-        tmin = tmins[j]
-        if ex.fixed_start is not None:
-            opts = [(present[j], ex.fixed_start, ex.fixed_start)]
-        elif buckets[j]:
-            opts = [(y, int(ex.bucket_lo[b]), int(ex.bucket_hi[b])) for y, b in buckets[j]]
-        else:
-            opts = [(present[j], int(ex.bucket_lo[0]), int(ex.bucket_hi[-1]))]
-        for lit, lo, hi in opts:
-            first_w = (lo - tmin - P.now_step + window // 2) // stride - 1
-            last_w = (hi + ex.duration - P.now_step + window // 2) // stride + 1
-            for w in range(max(0, first_w), max(0, last_w) + 1):
-                a = P.now_step - window // 2 + w * stride
-                if a >= P.n_t:
-                    break
-                cov = min(_overlap(s - tmin, s + ex.duration, a, a + window) for s in (lo, hi))
-                if cov > 0:
-                    terms.setdefault(a, []).append((cov, lit))
-    for a, lst in terms.items():
-        if sum(c for c, _ in lst) > window:
-            m.Add(sum(c * lit for c, lit in lst) <= window)
-
-
-def _overlap(a0: int, a1: int, b0: int, b1: int) -> int:
-    return max(0, min(a1, b1) - max(a0, b0))
 
 
 def _runs_of(starts: np.ndarray) -> list[tuple[int, int]]:

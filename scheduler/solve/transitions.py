@@ -148,18 +148,30 @@ def pair_transition_steps(config: ObservatoryConfig, step_s: int, alt: np.ndarra
     inst_change = np.array([_instrument(config, x).instrument_change_s for x in insts])
     filt_change = np.array([_instrument(config, x).filter_change_s for x in insts])
 
+    # Largest box-to-box slew over the buckets where i can end and j can start soon after.
+    # One bucket at a time on the [ends here] x [starts near here] sub-matrix (float32).
+    slew = np.full((n, n), -1.0, dtype=np.float32)
+    r_az, r_alt = np.float32(tel.slew_rate_az_deg_s), np.float32(tel.slew_rate_alt_deg_s)
+    for b in range(nb):
+        ri = np.flatnonzero(ends_in[:, b])
+        cj = np.flatnonzero(starts_near[:, b])
+        if ri.size == 0 or cj.size == 0:
+            continue
+        ca, ha, la, ua = (x[ri, b].astype(np.float32)[:, None] for x in ai)
+        cb, hb, lb, ub = (x[cj, b].astype(np.float32)[None, :] for x in aj)
+        d = np.abs(ca - cb) % np.float32(360.0)
+        daz = np.minimum(np.float32(180.0), np.minimum(d, np.float32(360.0) - d) + ha + hb)
+        dalt = np.maximum(np.maximum(ub - la, ua - lb), np.float32(0.0))
+        sub = np.maximum(daz / r_az, dalt / r_alt)
+        block = slew[np.ix_(ri, cj)]
+        slew[np.ix_(ri, cj)] = np.maximum(block, sub)
     T = np.empty((n, n), dtype=np.int64)
-    for s0 in range(0, n, chunk):  # chunk the predecessors to bound memory at n = 2000+
+    for s0 in range(0, n, chunk):  # change times and rounding, in row chunks
         sl = slice(s0, min(n, s0 + chunk))
-        daz = np.minimum(180.0, az_distance_deg(ai[0][sl, None, :], aj[0][None, :, :])
-                         + ai[1][sl, None, :] + aj[1][None, :, :])
-        dalt = np.maximum(aj[3][None, :, :] - ai[2][sl, None, :], ai[3][sl, None, :] - aj[2][None, :, :])
-        slew = np.maximum(daz / tel.slew_rate_az_deg_s, np.maximum(dalt, 0.0) / tel.slew_rate_alt_deg_s)
-        both = ends_in[sl, None, :] & starts_near[None, :, :]
-        slew = np.where(both, slew, -1.0).max(axis=2)  # [chunk, n]; -1: never adjacent
         same_inst = ii[sl, None] == ii[None, :]
         same_band = same_inst & (bb[sl, None] == bb[None, :])
         chg = np.where(same_band, 0.0, np.where(same_inst, filt_change[None, :], inst_change[None, :]))
-        steps = seconds_to_steps(slew + tel.settle_s + chg, step_s)
-        T[sl] = np.where(slew >= 0.0, np.minimum(steps, tmax[None, :]), tmax[None, :])
+        sw = slew[sl].astype(np.float64)
+        steps = seconds_to_steps(sw + tel.settle_s + chg, step_s)
+        T[sl] = np.where(sw >= 0.0, np.minimum(steps, tmax[None, :]), tmax[None, :])
     return T, tmax
