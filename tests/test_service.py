@@ -185,6 +185,7 @@ def test_conditions_feed_replans_on_pwv_rise_and_survives_a_bad_file(served, nig
     with svc.db.session() as s:
         diff = plans.plan_diff_of(s.get(Plan, p2["version"]))
     assert q_id in {d["request_id"] for d in diff["dropped"]}
+    assert re.search(rf" INFO plan_stored version={p2['version']} trigger=validity .* dropped=[1-9]", svc.log())
     assert not _sockets(svc.proc.pid), "the service opens no socket"
 
     # One event a line: timestamp, level, event, then key=value pairs (values JSON-quoted if needed).

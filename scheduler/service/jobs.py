@@ -18,7 +18,7 @@ from sqlalchemy.exc import SQLAlchemyError
 from ..conditions.ingest import MAX_BYTES, parse_conditions
 from ..config import ObservatoryConfig
 from ..db import plans, store
-from ..db.models import ConditionsReport, Outcome, ReplanOrder, Request, utcnow
+from ..db.models import ConditionsReport, Outcome, Plan, ReplanOrder, Request, utcnow
 from ..db.session import Database
 from ..errors import InputError
 from ..planner import Planner, _sample_of
@@ -66,6 +66,7 @@ class Jobs:
         self.watch = watch
         self.time_limit_s = time_limit_s
         self._checked_key: tuple | None = None
+        self._unmovable: set[str] = set()
         self._auto_paused_until = 0.0
 
     # ------------------------------------------------------------------ helpers
@@ -87,9 +88,12 @@ class Jobs:
                            violation=built.result.violations[0] if built.result.violations else "-")
         else:
             r = built.result
+            with self.db.session() as s:
+                diff = plans.plan_diff_of(s.get(Plan, built.version))
             self.log.info("plan_stored", version=built.version, trigger=trigger, night=night,
                           planned_from=built.planned_from, entries=len(r.entries), status=r.solver_status,
-                          objective=r.objective, gap=r.gap, seconds=secs, reason=reason)
+                          objective=r.objective, gap=r.gap, seconds=secs, added=len(diff.get("added", [])),
+                          dropped=len(diff.get("dropped", [])), moved=len(diff.get("moved", [])), reason=reason)
         self._checked_key = None  # look again at the new plan
         return built
 
@@ -126,10 +130,14 @@ class Jobs:
                 continue
             if time.time() - st.st_mtime < SETTLE_S:
                 continue  # still being written
+            if name in self._unmovable:
+                continue
             try:
                 rep_id, n, src = self._ingest_file(p, st.st_size)
             except InputError as e:
                 dest = self._move(p, REJECTED_DIR)
+                if dest is None:
+                    continue
                 try:
                     dest.with_name(dest.name + ".error.txt").write_text(str(e) + "\n", encoding="utf-8")
                 except OSError:
@@ -140,7 +148,7 @@ class Jobs:
             except SQLAlchemyError as e:  # not the file's fault: leave it for the next poll
                 self.log.error("feed_store_failed", file=name, error=f"{type(e).__name__}: {str(e).splitlines()[0]}")
                 break
-            dest = self._move(p, DONE_DIR)
+            dest = self._move(p, DONE_DIR)  # None: stored, but left in place (logged; not read again)
             self.log.info("conditions_stored", report=rep_id, samples=n, source=src, file=name, moved_to=dest)
             res.stored += 1
         return res
@@ -159,15 +167,23 @@ class Jobs:
         rep_id = self.db.retrying(lambda s: store.store_conditions(s, list(report), src, report.issued).id)
         return rep_id, len(report), src
 
-    def _move(self, p: Path, sub: str) -> Path:
+    def _move(self, p: Path, sub: str) -> Path | None:
+        """Move a processed file into done/ or rejected/. On failure (permissions, disk) the file
+        is remembered and skipped until the service restarts, so it is neither re-read nor logged
+        on every poll."""
         folder = self.watch / sub
-        folder.mkdir(exist_ok=True)
-        dest = folder / p.name
-        if dest.exists():
-            stamp = datetime.now().strftime("%Y%m%dT%H%M%S%f")
-            dest = folder / f"{p.stem}.{stamp}{p.suffix}"
-        os.replace(p, dest)
-        return dest
+        try:
+            folder.mkdir(exist_ok=True)
+            dest = folder / p.name
+            if dest.exists():
+                stamp = datetime.now().strftime("%Y%m%dT%H%M%S%f")
+                dest = folder / f"{p.stem}.{stamp}{p.suffix}"
+            os.replace(p, dest)
+            return dest
+        except OSError as e:
+            self._unmovable.add(p.name)
+            self.log.error("feed_move_failed", file=p.name, to=sub, error=str(e))
+            return None
 
     # ------------------------------------------------------------------ operator orders
 
