@@ -222,6 +222,27 @@ def _fmt(x, nd=2):
     return str(x)
 
 
+def _targets(data: dict) -> list[tuple[bool, str]]:
+    out = []
+    by = {r["requests"]: r for r in data["sizes"]}
+    if 500 in by:
+        r = by[500]
+        out.append((r["total_s"] <= 10.0, f"500 requests end to end in {r['total_s']:.1f} s (target 10 s)"))
+        out.append((r["gap"] <= 0.02, f"500 requests gap {100 * r['gap']:.1f} % (target 2 %; missed by "
+                                      f"{100 * max(0.0, r['gap'] - 0.02):.1f} points)"))
+    if 2000 in by:
+        r = by[2000]
+        out.append((r["total_s"] <= 60.0, f"2000 requests end to end in {r['total_s']:.1f} s (target 60 s)"))
+    rp = data.get("replan")
+    if rp:
+        out.append((rp["total_s"] <= 5.0, f"re-plan of 500 requests in {rp['total_s']:.1f} s (target 5 s)"))
+    for r in data["sizes"]:
+        out.append((r["peak_rss_mib"] < 1024, f"{r['requests']} requests peak RSS {r['peak_rss_mib']:.0f} MiB (target < 1024)"))
+        out.append((r["objective"] >= r["greedy_objective"] - 1e-9,
+                    f"{r['requests']} requests objective {r['objective']:.3f} >= greedy {r['greedy_objective']:.3f}"))
+    return out
+
+
 def write_docs(out: Path, data: dict) -> None:
     out.mkdir(parents=True, exist_ok=True)
     (out / "benchmarks.json").write_text(json.dumps(data, indent=2, default=str) + "\n", encoding="utf-8")
@@ -260,8 +281,20 @@ def write_docs(out: Path, data: dict) -> None:
     base_rss = max((r["baseline_rss_mib"] for r in data["sizes"]), default=0.0)
     lines += ["", "Peak RSS: each size runs in a fresh process; the figure is that process's peak resident set",
               f"(ru_maxrss), including about {base_rss:.0f} MiB of interpreter and libraries (astropy, OR-Tools) before any work.", ""]
-    lines += ["Targets (2 cores): 500 requests <= 10 s end to end with gap <= 2 %; 2000 <= 60 s; re-plan <= 5 s;",
-              "memory < 1 GiB; never below greedy. See docs/solver.md for the analysis of misses.", ""]
+    lines += ["## Targets (2 cores)", ""]
+    lines += [f"- {'met' if ok else 'MISSED'}: {what}" for ok, what in _targets(data)]
+    lines += ["", "## Why the misses", "",
+              "- **Gap.** The bound is the Lagrangian (time-indexed) relaxation, tighter than CP-SAT's own bound on",
+              "  this model. It lets every step of the night be filled fractionally by the best-value request that",
+              "  could run then, with the smallest possible transition. A real night holds only ~10 long entries, so",
+              "  packing losses (a 60-minute request cannot use a 40-minute hole) are a large share of the gap. On the",
+              "  100-request queue GLOP solves the same LP to within 0.6 % of the Lagrangian value, and CP-SAT given",
+              "  60 s improves the plan by under 1 % more: this suggests the gap is mostly relaxation, not search. Closing it",
+              "  needs a stronger formulation (sequences as columns, or exact time-indexed cuts), not more seconds.",
+              "- **Time.** The solver gets what is left of the 10 s / 60 s budget after the sky, feasibility and model;",
+              "  CP-SAT returns a few hundred ms after its limit on large models; the bench counts the sky inside the budget.",
+              "- The queue is never shrunk to meet a target: every generated request enters feasibility, and every",
+              "  request with a feasible start tonight enters the model.", ""]
     (out / "benchmarks.md").write_text("\n".join(lines), encoding="utf-8")
 
 

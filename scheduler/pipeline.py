@@ -148,7 +148,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     previous_entries: the active plan, for the in-progress entry, the freeze horizon
       (config.planning.freeze_horizon_min), the stability bonus and the hint.
     time_limit_s: wall-clock budget for the whole build (default config.planning.time_limit_s);
-      CP-SAT gets what is left after sky, feasibility and model (at least 1 s).
+      CP-SAT gets what is left after sky, feasibility and model, less a small margin (at least 1 s).
     gap_tolerance: stop once the proven relative gap is below this (default config.planning.gap_tolerance).
     feasibility / static: precomputed Feasibility (rows = requests after filtering) or the
       feasibility static layer, to reuse on a re-plan.
@@ -214,7 +214,8 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     timings["model"] = time.perf_counter() - t0
     say(f"greedy objective {(g_sci + g_stab) / VALUE_SCALE:.3f}; solving")
 
-    budget = max(1.0, limit - (time.perf_counter() - t_start))
+    # CP-SAT overruns its limit by a few hundred ms on big models (loading, response): keep a margin
+    budget = max(1.0, 0.92 * (limit - (time.perf_counter() - t_start)) - 0.2)
     model_s = [0.0]
     outcome = None
     if problem.execs:

@@ -46,6 +46,8 @@ class ModelVars:
     follows: dict  # (i, j) -> literal
     after_gap: dict  # j -> literal
     keep: dict  # j -> literal (stability)
+    gap_start: dict  # j -> start of the slot (= start - transition_before)
+    tmin: list  # lower end of each transition_before domain
 
 
 @dataclass(frozen=True)
@@ -112,6 +114,7 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
     n_e = len(P.execs)
     horizon = P.n_t + int(P.tmax.max(initial=0)) + 1
     present, start, before, buckets, tmin = [], [], [], [], []
+    gap_starts: dict[int, object] = {}
     intervals = []
     objective = []
     preds: dict[int, list[int]] = {j: [] for j in range(n_e)}
@@ -142,6 +145,7 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
         tmin.append(min([tmax_j] + T_in))
         pre = m.NewIntVar(tmin[-1], horizon, f"transition_before_{name}")
         gap_start = m.NewIntVar(-horizon, P.n_t, f"gap_start_{name}")  # = start - transition_before
+        gap_starts[j] = gap_start
         intervals.append(m.NewOptionalIntervalVar(gap_start, pre + ex.duration, s + ex.duration, p, f"slot_{name}"))
         # Value: the merit bucket that holds the start.
         lo, hi, coef = ex.bucket_lo, ex.bucket_hi, ex.bucket_coef
@@ -218,7 +222,7 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
     if upper_bound is not None:
         m.Add(sum(objective) <= int(upper_bound))
     m.Maximize(sum(objective))
-    return m, ModelVars(present, start, before, buckets, follows, after_gap, keep)
+    return m, ModelVars(present, start, before, buckets, follows, after_gap, keep, gap_starts, tmin)
 
 
 def _runs_of(starts: np.ndarray) -> list[tuple[int, int]]:
@@ -244,10 +248,19 @@ def add_hint(model: cp_model.CpModel, v: ModelVars, problem: Problem, plan: Sequ
         on = j in at
         model.AddHint(v.present[j], on)
         if not on:
-            for y, _ in v.buckets[j]:
+            # complete hint: absent executions get harmless values too (CP-SAT then accepts the
+            # hint as a solution at once instead of searching for the missing part)
+            s0 = int(ex.fixed_start if ex.fixed_start is not None else ex.starts[0])
+            lo = int(v.tmin[j])
+            model.AddHint(v.start[j], s0)
+            model.AddHint(v.transition_before[j], lo)
+            model.AddHint(v.gap_start[j], s0 - lo)
+            for y, b in v.buckets[j]:
                 model.AddHint(y, False)
             if j in v.after_gap:
                 model.AddHint(v.after_gap[j], False)
+            if j in v.keep:
+                model.AddHint(v.keep[j], False)
             continue
         s = at[j]
         model.AddHint(v.start[j], s)
@@ -256,10 +269,9 @@ def add_hint(model: cp_model.CpModel, v: ModelVars, problem: Problem, plan: Sequ
         i = prev_of[j]
         use_arc = i is not None and (i, j) in v.follows and s - (at[i] + P.execs[i].duration) < P.tmax[ex.req]
         model.AddHint(v.after_gap[j], not use_arc)
-        if use_arc:
-            model.AddHint(v.transition_before[j], s - (at[i] + P.execs[i].duration))
-        else:
-            model.AddHint(v.transition_before[j], int(P.tmax[ex.req]))
+        pre = s - (at[i] + P.execs[i].duration) if use_arc else int(P.tmax[ex.req])
+        model.AddHint(v.transition_before[j], pre)
+        model.AddHint(v.gap_start[j], s - pre)
         if j in v.keep:
             model.AddHint(v.keep[j], abs(s - ex.prev_start) <= P.stability_window)
     for (i, j), f in v.follows.items():
