@@ -221,6 +221,21 @@ def plan_chart(c: Ctx, output: str, version: int | None) -> None:
     click.echo(f"chart of plan version {doc['plan']['version']}: {path.resolve()}")
 
 
+@plan.command("check")
+@click.option("--version", type=int, help="plan version (default: the newest active plan)")
+@pass_ctx
+def plan_check(c: Ctx, version: int | None) -> None:
+    """Re-verify a stored plan with the independent checker (exit 1 if it fails)."""
+    from .planner import verify_stored_plan
+
+    v, violations = verify_stored_plan(c.db(), c.config(), _version(version))
+    if violations:
+        for line in violations:
+            click.echo(f"plan {v}: {line}")
+        raise SystemExit(1)
+    click.echo(f"plan {v}: every entry passes the checker")
+
+
 def _plan_samples(c: Ctx, doc) -> list:
     """The conditions samples a plan was built on (empty: defaults were assumed)."""
     from .db.models import ConditionsReport

@@ -126,3 +126,40 @@ class Planner:
 
         version = db.retrying(write)
         return BuiltPlan(version, result, night, planned_from, cond)
+
+
+def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | None = None,
+                       planner: Planner | None = None) -> tuple[int, list[str]]:
+    """Re-run the independent checker on a stored plan, against the conditions report it used.
+
+    Returns (version, violations). Used by `nightplan plan check` and the crash-safety tests.
+    Requests are checked as they are now (an outcome recorded since can shorten an exposure).
+    """
+    from .pipeline import _now_step, _with_steps, target_rows_for
+    from .solve.checker import check_plan
+
+    planner = planner or Planner(config)
+    with db.session() as s:
+        plan = plans.get_plan(s, version)
+        version = plan.id
+        stored = plans.entries_as_planned(plan)
+        ids = {e.request_id for e in stored}
+        specs = {r.id: store.to_spec(r) for r in store.list_requests(s) if r.id in ids}
+        samples: list[Sample] = []
+        if plan.conditions_report_id is not None:
+            from .db.models import ConditionsReport
+
+            rep = s.get(ConditionsReport, plan.conditions_report_id)
+            samples = [_sample_of(r) for r in rep.samples]
+        night_date, planned_from, report_id = plan.night, plan.planned_from, plan.conditions_report_id
+    night = planner.night(night_date)
+    entries = _with_steps(stored, night)
+    if len(entries) != len(stored):
+        return version, [f"{len(stored) - len(entries)} entries fall outside the night of {night_date}"]
+    spec_list = list(specs.values())
+    ra, dec, rows = target_rows_for(spec_list)
+    sky = planner.sky_cache.get(config.site, night, ra, dec)
+    row_by_id = {sp.id: int(r) for sp, r in zip(spec_list, rows)}
+    cond = planner.conditions(night, samples, report_id)
+    now_step = _now_step(night, planned_from) if planned_from > night.start else 0
+    return version, check_plan(entries, specs, row_by_id, sky, cond, config, now_step=now_step)
