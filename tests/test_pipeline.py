@@ -158,3 +158,41 @@ def test_real_sky_and_forecast_end_to_end():
     planned = {e.request_id for e in res.entries}
     listed = {rid for rid, _ in res.unscheduled}
     assert planned | listed == {r.id for r in reqs}
+
+
+def test_periodic_window_and_partial_exposure():
+    """A periodic event (phase window) and a request with exposure already credited."""
+    n_t = 300
+    night = make_night(n_t)
+    sky = make_sky(night, np.full((3, n_t), 60.0), np.array([[0.0], [45.0], [90.0]]) * np.ones((1, n_t)))
+    cond = make_cond(n_t)
+    # period 0.2 d (288 min) from T0: phase 0.5..0.6 is minutes 144..172.8 after T0
+    periodic = req(0, exposure_min=15, priority=10, period_epoch=T0, period_days=0.2, phase_min=0.5, phase_max=0.6)
+    partial = replace(req(1, exposure_min=60, priority=9), partial_exposure_s=45 * 60.0)
+    filler = req(2, exposure_min=90, priority=4)
+    res = build_plan(CFG, [periodic, partial, filler], {"P1": 1.0}, night, cond, sky=sky, time_limit_s=2)
+    assert_clean(res)
+    by = {e.request_id: e for e in res.entries}
+    p = by[1]
+    assert p.start_step >= 144 and p.end_step <= 172
+    q = by[2]  # 3 min setup + the 15 min still owed
+    assert q.end_step - q.start_step == 18
+
+
+def test_sky_cache_path_matches_a_computed_grid():
+    from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
+    from scheduler.conditions.grid import conditions_on_grid
+    from scheduler.sky.ephemeris import SkyCache
+    from scheduler.sky.night import compute_night
+
+    night = compute_night(CFG.site, BENCH_DATE, 60)
+    reqs, w = generate_queue(CFG, 25, 3, night)
+    cond = conditions_on_grid(generate_forecast(night, 3), night.times_unix, CFG.defaults)
+    cache = SkyCache()
+    a = build_plan(CFG, reqs, w, night, cond, sky=cache, time_limit_s=2)
+    assert_clean(a)
+    computed = cache.targets_computed
+    b = build_plan(CFG, reqs, w, night, cond, sky=cache, time_limit_s=2)  # re-plan: no new sky rows
+    assert_clean(b)
+    assert cache.targets_computed == computed
+    assert b.objective >= b.greedy_objective - 1e-9
