@@ -53,7 +53,7 @@ def test_replan_with_unchanged_conditions_keeps_the_plan(base):
     assert_clean(res2)
     old = {(e.request_id, e.execution): e.start_step for e in res.entries}
     moved = [e for e in res2.entries if (e.request_id, e.execution) not in old
-             or abs(old[(e.request_id, e.execution)] - e.start_step) > 15]
+             or abs(old[(e.request_id, e.execution)] - e.start_step) > 2]
     assert len(moved) <= 1
     assert res2.stability_bonus > 0
     assert res2.science_value == pytest.approx(res2.objective - res2.stability_bonus)

@@ -222,7 +222,7 @@ def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step:
 def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], program_weights: dict[str, float],
                   feas, alt: np.ndarray, az: np.ndarray, *, step_s: int, now_step: int = 0,
                   previous: Sequence[PlanEntry] | None = None, freeze_steps: int = 0,
-                  stability_weight: float = 0.2, stability_window: int = 15, bucket_steps: int = 10,
+                  stability_weight: float = 0.2, stability_window: int = 2, bucket_steps: int = 10,
                   transition_bucket_steps: int = 15) -> Problem:
     """Build the Problem. ``feas`` rows follow ``requests``; alt/az are [n_req, n_t] per request.
 
