@@ -196,3 +196,39 @@ def test_sky_cache_path_matches_a_computed_grid():
     assert_clean(b)
     assert cache.targets_computed == computed
     assert b.objective >= b.greedy_objective - 1e-9
+
+
+def _overlapping(problem, plan):
+    """A copy of ``plan`` whose second entry starts inside the first (a deliberately bad plan)."""
+    from scheduler.solve.problem import Placement
+    ps = sorted(plan, key=lambda p: p.start)
+    bad = [ps[0], Placement(ps[1].exec_index, ps[0].start + 1)] + ps[2:]
+    return bad
+
+
+def test_a_cp_sat_plan_that_fails_the_checker_is_never_returned(base, monkeypatch):
+    night, sky, cond, reqs, w, _ = base
+    real_greedy = pipeline.greedy_plan
+
+    def lying_solver(problem, **kw):
+        bad = _overlapping(problem, real_greedy(problem))
+        return SolveOutcome(bad, "FEASIBLE", 1e9, 1e9, 0.0, 0.01, 0, 0)
+
+    monkeypatch.setattr(pipeline, "solve_problem", lying_solver)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    assert res.violations == ()
+    assert res.used_greedy and res.solver_status == "GREEDY"
+    assert "failed the checker" in res.message
+
+
+def test_last_resort_drops_the_entries_the_checker_names(base, monkeypatch):
+    night, sky, cond, reqs, w, _ = base
+    real_greedy = pipeline.greedy_plan
+    monkeypatch.setattr(pipeline, "greedy_plan", lambda problem: _overlapping(problem, real_greedy(problem)))
+    monkeypatch.setattr(pipeline, "solve_problem",
+                        lambda problem, **kw: SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.0, 0, 0))
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    assert res.violations == ()
+    assert "checker removed 1 entries" in res.message
+    assert any(why.startswith("dropped: failed the plan check") for _, why in res.unscheduled)
+    assert all(a.end_step <= b.start_step for a, b in zip(res.entries, res.entries[1:]))
