@@ -95,6 +95,7 @@ class ConditionDefaults:
 class Planning:
     step_s: int = 60
     time_limit_s: float = 10.0
+    replan_time_limit_s: float = 4.0  # the service's re-plans (the lower of the two limits applies)
     gap_tolerance: float = 0.01
     freeze_horizon_min: float = 15.0
     replan_seeing_change_arcsec: float = 0.2
@@ -325,6 +326,7 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
     planning = Planning(
         step_s=int(step),
         time_limit_s=pt.num("time_limit_s", 0.1, 3600, 10.0),
+        replan_time_limit_s=pt.num("replan_time_limit_s", 0.1, 3600, 4.0),
         gap_tolerance=pt.num("gap_tolerance", 0, 1, 0.01),
         freeze_horizon_min=pt.num("freeze_horizon_min", 0, 600, 15.0),
         replan_seeing_change_arcsec=pt.num("replan_seeing_change_arcsec", 0, 10, 0.2),

@@ -80,8 +80,10 @@ class Jobs:
         night = self.target_night(now)
         t0 = time.monotonic()
         self.log.info("replan_start", trigger=trigger, night=night, now=now, reason=reason)
+        planning = self.config.planning
+        limit = self.time_limit_s or min(planning.time_limit_s, planning.replan_time_limit_s)
         built = self.planner.build_and_store(self.db, night_date=night, reason=reason, now=now,
-                                             time_limit_s=self.time_limit_s)
+                                             time_limit_s=limit)
         secs = time.monotonic() - t0
         if built.version is None:
             self.log.error("plan_refused", trigger=trigger, night=night, seconds=secs,
