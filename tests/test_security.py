@@ -1,0 +1,34 @@
+"""Security basics, checked on the product's source: no shell, no SQL built from strings.
+
+(The SQLite file's owner-only mode is tested in test_db.py; the service's lack of sockets in
+test_service.py.)
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+SRC = Path(__file__).resolve().parents[1] / "scheduler"
+
+
+def _sources():
+    for p in sorted(SRC.rglob("*.py")):
+        yield p, p.read_text(encoding="utf-8")
+
+
+def test_no_shell_is_invoked():
+    bad = re.compile(r"shell\s*=\s*True|os\.system\(|os\.popen\(|subprocess\.(call|run|Popen|check_output)\(")
+    hits = [f"{p.name}:{i + 1}" for p, src in _sources() for i, line in enumerate(src.splitlines()) if bad.search(line)]
+    assert hits == []
+
+
+def test_no_sql_is_built_from_strings():
+    # Raw SQL through sqlalchemy.text() or a DB-API cursor must be a constant: no f-string, no
+    # %-formatting, no concatenation. Queries are built with the SQLAlchemy expression language.
+    raw = re.compile(r"""(text|execute|exec_driver_sql)\(\s*(f["']|["'][^"']*["']\s*(%|\+|\.format))""")
+    hits = [f"{p.name}:{i + 1}" for p, src in _sources() for i, line in enumerate(src.splitlines()) if raw.search(line)]
+    assert hits == []
+    # and the only raw statements are the SQLite connection pragmas
+    stmts = [m.group(0) for _, src in _sources() for m in re.finditer(r"execute\(\"[^\"]*\"\)", src)]
+    assert stmts and all(s.startswith('execute("PRAGMA ') for s in stmts)
