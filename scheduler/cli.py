@@ -375,6 +375,26 @@ def request_withdraw(c: Ctx, request_id: int) -> None:
     click.echo(f"request {request_id} withdrawn")
 
 
+@cli.group("db")
+def db_group() -> None:
+    """Database housekeeping."""
+
+
+@db_group.command("copy")
+@click.option("--to", "to_url", required=True, metavar="URL", help="destination database URL (a new, empty database)")
+@pass_ctx
+def db_copy(c: Ctx, to_url: str) -> None:
+    """Copy this queue, its plans and history to another database (e.g. SQLite to PostgreSQL)."""
+    from .db.session import open_db
+    from .db.transfer import copy_database
+
+    src = c.db()
+    dst = open_db(to_url)
+    counts = copy_database(src, dst)
+    total = sum(counts.values())
+    click.echo(f"copied {total} rows to {dst.url}: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
+
+
 def parse_night(text: str):
     from datetime import date
 

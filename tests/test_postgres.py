@@ -39,3 +39,23 @@ def test_cli_queue_on_postgres(pg_url, tmp_path):
     assert [r["target"] for r in rows] == ["a", "b"] and rows[1]["max_pwv_mm"] == 2.5
     run_cli("request", "withdraw", str(rows[0]["id"]), cwd=tmp_path, env=env, check=True)
     assert cli_json("request", "show", str(rows[0]["id"]), cwd=tmp_path, env=env)["status"] == "withdrawn"
+
+
+def test_copy_sqlite_queue_to_postgres(pg_url, workdir):
+    """The documented move from the SQLite default to a shared PostgreSQL server."""
+    csv = workdir / "r.csv"
+    csv.write_text("program,target,ra,dec,band,exposure_s\nSTAR-1,a,10,-30,V,300\nSTAR-1,b,20,-40,K,600\n")
+    run_cli("request", "import", str(csv), cwd=workdir, check=True)
+    run_cli("request", "withdraw", "1", cwd=workdir, check=True)
+    before = cli_json("request", "list", cwd=workdir)
+    proc = run_cli("db", "copy", "--to", pg_url, cwd=workdir, check=True)
+    assert "request 2" in proc.stdout
+    env = {"NIGHTPLAN_DB": pg_url}
+    assert cli_json("request", "list", cwd=workdir, env=env) == before
+    # ids continue after the copied ones on PostgreSQL
+    new_id = run_cli("request", "add", "--program", "STAR-1", "--target", "c", "--ra", "30", "--dec", "-20",
+                     "--band", "R", "--exposure", "60", cwd=workdir, env=env, check=True).stdout.strip()
+    assert int(new_id) == 3
+    # copying again into a non-empty database is refused, nothing changed
+    proc = run_cli("db", "copy", "--to", pg_url, cwd=workdir)
+    assert proc.returncode == 2 and "not empty" in proc.stderr
