@@ -24,7 +24,7 @@ from .sky.ephemeris import SkyGrid
 from .sky.night import Night
 from .solve.checker import check_plan, true_transition_s
 from .solve.cpsat import lagrangian_bound, solve_problem
-from .solve.greedy import dense_tables, greedy_plan, insertion_plan
+from .solve.greedy import dense_tables, greedy_plan, insertion_plan, randomized_dispatch, ruin_and_recreate
 from .solve.problem import (VALUE_SCALE, Placement, PlanEntry, PlanResult, Problem, build_problem,
                             check_model_feasible, objective_of)
 from .solve.transitions import slew_s as _slew_s
@@ -203,14 +203,23 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     greedy = greedy_plan(problem)
     g_sci, g_stab = objective_of(problem, greedy)
     hint, hint_from, hint_obj = greedy, "greedy", g_sci + g_stab
-    lag = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.1 * limit))
-    candidates = [("price-guided insertion", insertion_plan(problem, lag.order, lag.preferred, dense_tables(problem)[1]))]
+    rnd, n_rnd = randomized_dispatch(problem, runs=400, time_limit_s=max(0.2, 0.1 * limit))
+    candidates = [("randomized dispatch", rnd)]
     if prev:
         candidates.append(("previous plan", _previous_hint(problem, prev)))
-    for label, plan_c in candidates:
+
+    def consider(label, plan_c):
+        nonlocal hint, hint_from, hint_obj
         val = sum(objective_of(problem, plan_c))
         if val > hint_obj and not check_model_feasible(problem, plan_c):
             hint, hint_from, hint_obj = plan_c, label, val
+
+    for label, plan_c in candidates:
+        consider(label, plan_c)
+    rr, n_rr = ruin_and_recreate(problem, hint, iterations=3000, time_limit_s=max(0.3, 0.15 * limit))
+    consider(hint_from + " + ruin-and-recreate", rr)
+    lag = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.1 * limit))
+    consider("price-guided insertion", insertion_plan(problem, lag.order, lag.preferred, dense_tables(problem)[1]))
     timings["model"] = time.perf_counter() - t0
     say(f"greedy objective {(g_sci + g_stab) / VALUE_SCALE:.3f}; solving")
 
@@ -285,7 +294,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
         "requests": len(reqs), "in_model": len(problem.requests), "executions": len(problem.execs),
         "arcs": outcome.n_arcs if outcome else 0, "buckets": outcome.n_buckets if outcome else 0,
         "hint": hint_from, "hint_objective": hint_obj / VALUE_SCALE, "lagrangian_bound": lag.bound / VALUE_SCALE,
-        "lagrangian_iterations": lag.iterations, "greedy_entries": len(greedy), "entries": len(entries), "now_step": now_step,
+        "lagrangian_iterations": lag.iterations, "randomized_runs": n_rnd, "ruin_recreate_iterations": n_rr, "greedy_entries": len(greedy), "entries": len(entries), "now_step": now_step,
         "time_limit_s": limit, "solver_time_limit_s": budget, "gap_tolerance": tol,
     }
     return PlanResult(

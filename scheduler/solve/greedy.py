@@ -41,22 +41,29 @@ def dense_tables(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
     return nxt, coef
 
 
-def greedy_plan(problem: Problem, wait_exponent: float = 1.0) -> list[Placement]:
+def greedy_plan(problem: Problem, wait_exponent: float = 1.0, noise: float = 0.0, seed: int = 0,
+                tables: tuple[np.ndarray, np.ndarray] | None = None,
+                keep: Sequence[Placement] = ()) -> list[Placement]:
+    """The dispatch described above. noise > 0 multiplies each score by a random factor in
+    [1 - noise, 1 + noise] (seeded): used to try perturbed dispatches and keep the best.
+    keep: placements held like kept entries (the dispatch fills around them)."""
     P = problem
     n_t = P.n_t
     execs = P.execs
     if not execs:
         return []
-    nxt, coef = dense_tables(P)
+    nxt, coef = tables if tables is not None else dense_tables(P)
+    rng = np.random.default_rng(seed) if noise > 0 else None
     req = np.array([ex.req for ex in execs], dtype=np.int64)
     dur = np.array([ex.duration for ex in execs], dtype=np.int64)
     kk = np.array([ex.k for ex in execs], dtype=np.int64)
 
     placed: list[Placement] = []
-    blocks = sorted((e for e, ex in enumerate(execs) if ex.fixed_start is not None),
-                    key=lambda e: execs[e].fixed_start)
+    bstart = {e: int(ex.fixed_start) for e, ex in enumerate(execs) if ex.fixed_start is not None}
+    bstart.update({p.exec_index: int(p.start) for p in keep})
+    blocks = sorted(bstart, key=lambda e: bstart[e])
     for b in blocks:
-        placed.append(Placement(b, int(execs[b].fixed_start)))
+        placed.append(Placement(b, bstart[b]))
     taken = np.zeros(len(execs), dtype=bool)
     taken[blocks] = True
     # per request: start of its last placed execution (spacing), count placed
@@ -64,14 +71,14 @@ def greedy_plan(problem: Problem, wait_exponent: float = 1.0) -> list[Placement]
     last_dur = np.zeros(len(P.requests), dtype=np.int64)
     for b in blocks:
         r = execs[b].req
-        if execs[b].fixed_start > last_start[r]:
-            last_start[r], last_dur[r] = execs[b].fixed_start, execs[b].duration
+        if bstart[b] > last_start[r]:
+            last_start[r], last_dur[r] = bstart[b], execs[b].duration
     # The telescope is free from now, or from the end of the entry in progress.
     cur = P.now_step
     last = None
     bi = 0
-    while bi < len(blocks) and execs[blocks[bi]].fixed_start < cur:
-        cur = max(cur, execs[blocks[bi]].fixed_start + execs[blocks[bi]].duration)
+    while bi < len(blocks) and bstart[blocks[bi]] < cur:
+        cur = max(cur, bstart[blocks[bi]] + execs[blocks[bi]].duration)
         last = blocks[bi]
         bi += 1
     free = ~taken
@@ -97,12 +104,14 @@ def greedy_plan(problem: Problem, wait_exponent: float = 1.0) -> list[Placement]
             ok = s < n_t
             end = s + dur[cand]
             if nb is not None:
-                ok &= end + P.T[req[cand], execs[nb].req] <= execs[nb].fixed_start
+                ok &= end + P.T[req[cand], execs[nb].req] <= bstart[nb]
             if ok.any():
                 cost = np.maximum(end - cur, 1).astype(np.float64)
                 if wait_exponent != 1.0:
                     cost = cost ** wait_exponent
                 sc = np.where(ok, coef[cand, np.minimum(s, n_t - 1)] / cost, -1.0)
+                if rng is not None:
+                    sc = sc * rng.uniform(1.0 - noise, 1.0 + noise, sc.size)
                 j = int(np.argmax(sc))
                 e = int(cand[j])
                 placed.append(Placement(e, int(s[j])))
@@ -115,7 +124,7 @@ def greedy_plan(problem: Problem, wait_exponent: float = 1.0) -> list[Placement]
         if nb is None:
             break
         # nothing fits before the next kept entry: jump past it
-        cur = max(cur, execs[nb].fixed_start + execs[nb].duration)
+        cur = max(cur, bstart[nb] + execs[nb].duration)
         last = nb
         bi += 1
     placed.sort(key=lambda p: p.start)
@@ -197,3 +206,64 @@ def insertion_plan(problem: Problem, order: Sequence[int], preferred: dict[int, 
             break
         pending = left
     return seq
+
+
+def randomized_dispatch(problem: Problem, runs: int = 400, time_limit_s: float = 2.0,
+                        seed: int = 0) -> tuple[list[Placement], int]:
+    """Best of many perturbed greedy dispatches (scores times U[1 - noise, 1 + noise], noise and
+    the wait exponent drawn per run from a seeded generator). Returns (plan, runs done).
+
+    The plain greedy is myopic: it takes the best value per minute now even when that blocks a
+    better request later. Perturbed runs explore other first choices cheaply (a run is a few ms
+    for 500 requests) and give CP-SAT a much better starting point.
+    """
+    import time
+
+    from .problem import objective_of
+
+    t0 = time.perf_counter()
+    tables = dense_tables(problem)
+    rng = np.random.default_rng(seed)
+    best = greedy_plan(problem, tables=tables)
+    best_v = sum(objective_of(problem, best))
+    k = 0
+    for k in range(1, runs + 1):
+        if time.perf_counter() - t0 > time_limit_s:
+            break
+        plan = greedy_plan(problem, wait_exponent=float(rng.uniform(0.7, 1.3)), noise=float(rng.uniform(0.1, 0.8)),
+                           seed=int(rng.integers(2**31)), tables=tables)
+        v = sum(objective_of(problem, plan))
+        if v > best_v:
+            best, best_v = plan, v
+    return best, k
+
+
+def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: int = 600,
+                      time_limit_s: float = 2.0, seed: int = 0) -> tuple[list[Placement], int]:
+    """Local search on a plan: drop a few consecutive entries, let a perturbed dispatch refill
+    the night around the rest, keep the result if it is at least as good (and model-feasible).
+    Returns (plan, iterations done)."""
+    import time
+
+    from .problem import check_model_feasible, objective_of
+
+    t0 = time.perf_counter()
+    tables = dense_tables(problem)
+    rng = np.random.default_rng(seed)
+    best = sorted(plan, key=lambda p: p.start)
+    best_v = sum(objective_of(problem, best))
+    free = [p for p in best if problem.execs[p.exec_index].fixed_start is None]
+    it = 0
+    for it in range(1, iterations + 1):
+        if time.perf_counter() - t0 > time_limit_s or not free:
+            break
+        n_drop = int(rng.integers(1, min(4, len(free)) + 1))
+        i = int(rng.integers(0, len(free) - n_drop + 1))
+        keep = free[:i] + free[i + n_drop:]
+        cand = greedy_plan(problem, wait_exponent=float(rng.uniform(0.8, 1.2)), noise=float(rng.uniform(0.0, 0.5)),
+                           seed=int(rng.integers(2**31)), tables=tables, keep=keep)
+        v = sum(objective_of(problem, cand))
+        if v >= best_v and not check_model_feasible(problem, cand):
+            best, best_v = cand, v
+            free = [p for p in best if problem.execs[p.exec_index].fixed_start is None]
+    return best, it
