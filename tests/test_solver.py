@@ -317,3 +317,18 @@ def test_model_is_hinted_by_a_feasible_greedy_plan():
     out = cpsat.solve_problem(P, time_limit_s=2, hint=g, num_workers=2)
     assert out.status in ("OPTIMAL", "FEASIBLE")
     assert round(out.objective * VALUE_SCALE) >= sci
+
+
+def test_randomized_dispatch_and_ruin_and_recreate_only_improve():
+    from scheduler.solve.greedy import randomized_dispatch, ruin_and_recreate
+    night, sky, cond, reqs, w = random_scene(41, 30, 300)
+    P, _ = problem_for(night, sky, cond, reqs, w)
+    g = greedy_plan(P)
+    r, n = randomized_dispatch(P, runs=50, time_limit_s=5)
+    assert n == 50
+    assert not check_model_feasible(P, r) and sum(objective_of(P, r)) >= sum(objective_of(P, g))
+    rr, it = ruin_and_recreate(P, r, iterations=100, time_limit_s=5)
+    assert it == 100
+    assert not check_model_feasible(P, rr) and sum(objective_of(P, rr)) >= sum(objective_of(P, r))
+    # same seed, same result (deterministic for a fixed number of runs)
+    assert randomized_dispatch(P, runs=50, time_limit_s=5)[0] == r
