@@ -216,7 +216,8 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
 
     for label, plan_c in candidates:
         consider(label, plan_c)
-    rr, n_rr = ruin_and_recreate(problem, hint, iterations=3000, time_limit_s=max(0.3, 0.15 * limit))
+    rr, n_rr = ruin_and_recreate(problem, hint, iterations=10**6,
+                                 time_limit_s=max(0.3, 0.45 * (limit - (time.perf_counter() - t_start))))
     consider(hint_from + " + ruin-and-recreate", rr)
     lag = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.1 * limit))
     consider("price-guided insertion", insertion_plan(problem, lag.order, lag.preferred, dense_tables(problem)[1]))
@@ -224,7 +225,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     say(f"greedy objective {(g_sci + g_stab) / VALUE_SCALE:.3f}; solving")
 
     # CP-SAT overruns its limit by a few hundred ms on big models (loading, response): keep a margin
-    budget = max(1.0, 0.92 * (limit - (time.perf_counter() - t_start)) - 0.2)
+    budget = max(1.0, 0.9 * (limit - (time.perf_counter() - t_start)) - 0.3)
     model_s = [0.0]
     outcome = None
     if problem.execs:

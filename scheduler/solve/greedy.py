@@ -239,10 +239,13 @@ def randomized_dispatch(problem: Problem, runs: int = 400, time_limit_s: float =
 
 
 def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: int = 600,
-                      time_limit_s: float = 2.0, seed: int = 0) -> tuple[list[Placement], int]:
-    """Local search on a plan: drop a few consecutive entries, let a perturbed dispatch refill
-    the night around the rest, keep the result if it is at least as good (and model-feasible).
-    Returns (plan, iterations done)."""
+                      time_limit_s: float = 2.0, seed: int = 0, threshold: float = 0.02,
+                      max_drop: int = 5) -> tuple[list[Placement], int]:
+    """Local search on a plan: drop 1..max_drop consecutive entries, let a perturbed dispatch refill
+    the night around the rest, and move to the result if it is model-feasible and worth at least
+    (1 - tau) times the current plan, tau falling linearly from ``threshold`` to 0 over the time
+    limit (threshold accepting: small steps back let the search leave local optima). Returns
+    (best plan seen, iterations done)."""
     import time
 
     from .problem import check_model_feasible, objective_of
@@ -250,20 +253,24 @@ def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: i
     t0 = time.perf_counter()
     tables = dense_tables(problem)
     rng = np.random.default_rng(seed)
-    best = sorted(plan, key=lambda p: p.start)
-    best_v = sum(objective_of(problem, best))
-    free = [p for p in best if problem.execs[p.exec_index].fixed_start is None]
+    cur = sorted(plan, key=lambda p: p.start)
+    cur_v = sum(objective_of(problem, cur))
+    best, best_v = cur, cur_v
     it = 0
     for it in range(1, iterations + 1):
-        if time.perf_counter() - t0 > time_limit_s or not free:
+        elapsed = time.perf_counter() - t0
+        free = [p for p in cur if problem.execs[p.exec_index].fixed_start is None]
+        if elapsed > time_limit_s or not free:
             break
-        n_drop = int(rng.integers(1, min(4, len(free)) + 1))
+        tau = threshold * max(0.0, 1.0 - elapsed / time_limit_s)
+        n_drop = int(rng.integers(1, min(max_drop, len(free)) + 1))
         i = int(rng.integers(0, len(free) - n_drop + 1))
         keep = free[:i] + free[i + n_drop:]
         cand = greedy_plan(problem, wait_exponent=float(rng.uniform(0.8, 1.2)), noise=float(rng.uniform(0.0, 0.5)),
                            seed=int(rng.integers(2**31)), tables=tables, keep=keep)
         v = sum(objective_of(problem, cand))
-        if v >= best_v and not check_model_feasible(problem, cand):
-            best, best_v = cand, v
-            free = [p for p in best if problem.execs[p.exec_index].fixed_start is None]
+        if v >= cur_v * (1.0 - tau) and not check_model_feasible(problem, cand):
+            cur, cur_v = cand, v
+            if v > best_v:
+                best, best_v = cand, v
     return best, it
