@@ -216,10 +216,14 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
 
     for label, plan_c in candidates:
         consider(label, plan_c)
+    lag = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.05 * limit))
     rr, n_rr = ruin_and_recreate(problem, hint, iterations=10**6,
-                                 time_limit_s=max(0.3, 0.45 * (limit - (time.perf_counter() - t_start))))
+                                 time_limit_s=max(0.3, 0.45 * (limit - (time.perf_counter() - t_start))),
+                                 stop_at=(1.0 - tol) * lag.bound)
     consider(hint_from + " + ruin-and-recreate", rr)
-    lag = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.1 * limit))
+    lag2 = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.05 * limit))  # better target, better steps
+    if lag2.bound < lag.bound:
+        lag = lag2
     consider("price-guided insertion", insertion_plan(problem, lag.order, lag.preferred, dense_tables(problem)[1]))
     timings["model"] = time.perf_counter() - t0
     say(f"greedy objective {(g_sci + g_stab) / VALUE_SCALE:.3f}; solving")

@@ -240,12 +240,12 @@ def randomized_dispatch(problem: Problem, runs: int = 400, time_limit_s: float =
 
 def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: int = 600,
                       time_limit_s: float = 2.0, seed: int = 0, threshold: float = 0.02,
-                      max_drop: int = 5) -> tuple[list[Placement], int]:
+                      max_drop: int = 5, stop_at: float | None = None) -> tuple[list[Placement], int]:
     """Local search on a plan: drop 1..max_drop consecutive entries, let a perturbed dispatch refill
     the night around the rest, and move to the result if it is model-feasible and worth at least
     (1 - tau) times the current plan, tau falling linearly from ``threshold`` to 0 over the time
     limit (threshold accepting: small steps back let the search leave local optima). Returns
-    (best plan seen, iterations done)."""
+    (best plan seen, iterations done). Stops early once the best reaches ``stop_at``."""
     import time
 
     from .problem import check_model_feasible, objective_of
@@ -260,7 +260,7 @@ def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: i
     for it in range(1, iterations + 1):
         elapsed = time.perf_counter() - t0
         free = [p for p in cur if problem.execs[p.exec_index].fixed_start is None]
-        if elapsed > time_limit_s or not free:
+        if elapsed > time_limit_s or not free or (stop_at is not None and best_v >= stop_at):
             break
         tau = threshold * max(0.0, 1.0 - elapsed / time_limit_s)
         n_drop = int(rng.integers(1, min(max_drop, len(free)) + 1))
