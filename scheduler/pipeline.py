@@ -23,7 +23,7 @@ from .request_spec import ACTIVE_STATUSES, RequestSpec
 from .sky.ephemeris import SkyGrid
 from .sky.night import Night
 from .solve.checker import check_plan, true_transition_s
-from .solve.cpsat import lagrangian_bound, solve_problem
+from .solve.cpsat import lagrangian_bound, sequence_bound, solve_problem
 from .solve.greedy import dense_tables, greedy_plan, insertion_plan, randomized_dispatch, ruin_and_recreate
 from .solve.problem import (VALUE_SCALE, Placement, PlanEntry, PlanResult, Problem, build_problem,
                             check_model_feasible, objective_of)
@@ -227,6 +227,13 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     lag2 = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.05 * limit))  # better target, better steps
     if lag2.bound < lag.bound:
         lag = lag2
+    seq_bound, seq_its = sequence_bound(problem, hint_obj, mu0=lag.reduced, sectors=16, iterations=60,
+                                        time_limit_s=max(0.3, 0.12 * limit))
+    upper = min(lag.bound, seq_bound)
+    bound_warning = None
+    if upper < hint_obj:  # a bound below a plan we hold would be a bug: fall back, and say so
+        bound_warning = f"bound {upper / VALUE_SCALE:.3f} below plan {hint_obj / VALUE_SCALE:.3f}; ignored"
+        upper = max(lag.bound, hint_obj)
     consider("price-guided insertion", insertion_plan(problem, lag.order, lag.preferred, dense_tables(problem)[1]))
     search_s = time.perf_counter() - t0
     say(f"greedy objective {(g_sci + g_stab) / VALUE_SCALE:.3f}; solving")
@@ -237,7 +244,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     outcome = None
     if problem.execs:
         outcome = solve_problem(problem, time_limit_s=budget, gap_tolerance=tol, hint=hint, k_best=k_best_arcs,
-                                upper_bound=max(lag.bound, hint_obj),
+                                upper_bound=max(upper, hint_obj),
                                 num_workers=num_workers, progress=progress,
                                 model_timer=lambda s: model_s.__setitem__(0, s))
         timings["model"] += model_s[0]
@@ -255,7 +262,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
             bound, gap = objective, 0.0
             message = "nothing to optimise"
         else:
-            bound = max(min(outcome.bound, lag.bound / VALUE_SCALE), objective)
+            bound = max(min(outcome.bound, upper / VALUE_SCALE), objective)
             gap = (bound - objective) / max(abs(bound), 1e-9)
             message = (f"CP-SAT returned {outcome.status} with objective {outcome.objective:.3f} below the greedy "
                        f"{greedy_obj:.3f}: greedy plan kept" if outcome.status in ("OPTIMAL", "FEASIBLE")
@@ -302,6 +309,8 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
         "requests": len(reqs), "in_model": len(problem.requests), "executions": len(problem.execs),
         "arcs": outcome.n_arcs if outcome else 0, "buckets": outcome.n_buckets if outcome else 0,
         "hint": hint_from, "hint_objective": hint_obj / VALUE_SCALE, "lagrangian_bound": lag.bound / VALUE_SCALE,
+        "sequence_bound": seq_bound / VALUE_SCALE if seq_its else None, "sequence_bound_iterations": seq_its,
+        **({"bound_warning": bound_warning} if bound_warning else {}),
         "lagrangian_iterations": lag.iterations, "hint_search_s": search_s, "randomized_runs": n_rnd, "ruin_recreate_iterations": n_rr, "greedy_entries": len(greedy), "entries": len(entries), "now_step": now_step,
         "time_limit_s": limit, "solver_time_limit_s": budget, "gap_tolerance": tol,
     }

@@ -97,6 +97,8 @@ def assert_clean(res):
     assert res.violations == ()
     assert "checker removed" not in res.message
     assert "failed the checker" not in res.message
+    assert "bound_warning" not in res.stats
+    assert res.bound >= res.objective - 1e-9
 
 
 def problem_for(night, sky, cond, reqs, weights, **kw):
@@ -332,3 +334,17 @@ def test_randomized_dispatch_and_ruin_and_recreate_only_improve():
     assert not check_model_feasible(P, rr) and sum(objective_of(P, rr)) >= sum(objective_of(P, r))
     # same seed, same result (deterministic for a fixed number of runs)
     assert randomized_dispatch(P, runs=50, time_limit_s=5)[0] == r
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3, 8])
+def test_sequence_bound_is_a_valid_bound(seed):
+    """The DP bound (order and class transitions kept, once-per-execution priced) never falls
+    below the brute-force optimum, and is no weaker than taking every request at its best."""
+    night, sky, cond, reqs, w = random_scene(seed, 6, 150)
+    P, _ = problem_for(night, sky, cond, reqs, w, bucket_steps=1)
+    bf = brute_force(P)
+    for sectors in (1, 4, 16):
+        b, its = cpsat.sequence_bound(P, bf, sectors=sectors, iterations=80, time_limit_s=10)
+        assert its > 0 and b >= bf
+    trivial = sum(int(x.bucket_coef.max()) for x in P.execs)
+    assert b <= trivial

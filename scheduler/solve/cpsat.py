@@ -347,6 +347,7 @@ class LagrangianResult:
     order: list[int]  # executions by decreasing reduced value at the best prices
     preferred: dict[int, int]  # each execution's best start at the best prices
     iterations: int
+    reduced: np.ndarray | None = None  # each execution's best reduced value at the best prices (>= 0)
 
 
 def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300, time_limit_s: float = 2.0) -> LagrangianResult:
@@ -434,4 +435,144 @@ def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300, tim
     ch = idx[first]
     preferred = {int(E[i]): int(S[i]) for i in ch}
     order = [int(e) for e in np.argsort(-segmax, kind="stable")]
-    return LagrangianResult(int(math.floor(best[0] + 1e-6)), order, preferred, it)
+    return LagrangianResult(int(math.floor(best[0] + 1e-6)), order, preferred, it, np.maximum(segmax, 0.0))
+
+
+# --------------------------------------------------------------------------- sequence bound
+
+def _classes(problem: Problem, sectors: int) -> tuple[np.ndarray, np.ndarray]:
+    """Class of each request (instrument, band, azimuth sector of its mean position) and the
+    smallest transition bound between any two requests of two classes (grid steps)."""
+    P = problem
+    n = len(P.requests)
+    key = {}
+    cls = np.empty(n, dtype=np.int64)
+    for r in range(n):
+        sec = int(P.mean_az[r] // (360.0 / sectors)) % sectors if sectors > 1 else 0
+        cls[r] = key.setdefault((P.instruments[r], P.bands[r], sec), len(key))
+    K = len(key)
+    Tm = P.T.astype(np.int64).copy()
+    n_exec_of = np.bincount([ex.req for ex in P.execs], minlength=n)
+    single = np.flatnonzero(n_exec_of <= 1)
+    Tm[single, single] = np.iinfo(np.int64).max // 4  # a single execution cannot follow itself
+    Lc = np.full((K, K), np.iinfo(np.int64).max // 4, dtype=np.int64)
+    np.minimum.at(Lc, (cls[:, None].repeat(n, 1), cls[None, :].repeat(n, 0)), Tm)
+    return cls, Lc
+
+
+def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = None, sectors: int = 8,
+                   iterations: int = 200, time_limit_s: float = 2.0) -> tuple[int, int]:
+    """Upper bound that keeps the order of the night and the transitions between classes.
+
+    Relaxation: a plan is a sequence in time of (execution, start) with no overlap and gaps of at
+    least Lc[class(prev), class(next)] steps, Lc being the smallest model transition bound between
+    any two requests of the two classes (class = instrument, band, azimuth sector), so every
+    model-feasible plan is such a sequence. Only "each execution at most once" is dropped, priced
+    by mu >= 0 (Lagrange): for any mu,
+
+        B(mu) = sum_e mu_e + max over sequences of sum (c_e(s) - mu_e)
+
+    bounds the model's optimum; the max is a dynamic programme over (time, last class). Subgradient
+    steps on mu (Polyak, toward ``lower``). Returns (bound, iterations). Not used when entries are
+    kept from a previous plan (the Lagrangian time-indexed bound covers that case).
+    """
+    P = problem
+    execs = P.execs
+    n_t = P.n_t
+    NEG = -1e18
+    if not execs or any(ex.fixed_start is not None for ex in execs):
+        return np.iinfo(np.int64).max, 0
+    t_start = time.perf_counter()
+    cls_r, Lc = _classes(P, sectors)
+    K = Lc.shape[0]
+    # candidates grouped by start step
+    E, S, C = [], [], []
+    for e, ex in enumerate(execs):
+        b = np.searchsorted(ex.bucket_lo, ex.starts, side="right") - 1
+        c = ex.bucket_coef[b].astype(np.float64)
+        sc = P.stability_coef(e)
+        if sc and ex.prev_start is not None:
+            c = c + sc * (np.abs(ex.starts - ex.prev_start) <= P.stability_window)
+        E.append(np.full(ex.starts.size, e)), S.append(ex.starts), C.append(c)
+    E, S, C = np.concatenate(E), np.concatenate(S), np.concatenate(C)
+    order = np.argsort(S, kind="stable")
+    E, S, C = E[order], S[order], C[order]
+    dur = np.array([ex.duration for ex in execs], dtype=np.int64)
+    ecls = cls_r[np.array([ex.req for ex in execs], dtype=np.int64)]
+    END, CL = S + dur[E], ecls[E]
+    bounds = np.searchsorted(S, np.arange(n_t + 1), side="left")
+    lag_idx = np.arange(K)[:, None]
+    mu = np.zeros(len(execs)) if mu0 is None else np.asarray(mu0, dtype=np.float64).copy()
+    best = math.inf
+    theta, stall = 1.0, 0
+    it = 0
+    for it in range(1, iterations + 1):
+        F = np.full((n_t + 1, K), NEG)  # best value, telescope free from t, last class k
+        R = np.full((n_t + 1, K), NEG)  # running max of F over times <= t
+        RT = np.zeros((n_t + 1, K), dtype=np.int64)  # where that max was reached
+        bp = np.full((n_t + 1, K), -1, dtype=np.int64)  # candidate index that set F[t, k]
+        bpk = np.full((n_t + 1, K), -1, dtype=np.int64)  # its predecessor class (-1: first entry)
+        val = C - mu[E]
+        for s in range(P.now_step, n_t + 1):
+            if s > 0:
+                better = F[s] > R[s - 1]
+                R[s] = np.where(better, F[s], R[s - 1])
+                RT[s] = np.where(better, s, RT[s - 1])
+            else:
+                R[s], RT[s] = F[s], 0
+            lo, hi = bounds[s], bounds[s + 1] if s < n_t else len(S)
+            if lo >= hi:
+                continue
+            # best predecessor for a start of class k2 at s: max_k R[s - Lc[k, k2], k], or none (0)
+            tt = s - Lc  # [K, K]
+            ok = tt >= P.now_step
+            got = np.where(ok, R[np.clip(tt, 0, n_t), lag_idx], NEG)
+            pk = np.argmax(got, axis=0)
+            pv = got[pk, np.arange(K)]
+            first = pv < 0.0
+            pv = np.where(first, 0.0, pv)
+            pk = np.where(first, -1, pk)
+            idx = np.arange(lo, hi)
+            cand = pv[CL[idx]] + val[idx]
+            # keep the best candidate per (end, class), then compare with F
+            key = END[idx] * K + CL[idx]
+            o = np.lexsort((cand, key))
+            last = np.ones(o.size, dtype=bool)
+            last[:-1] = key[o][1:] != key[o][:-1]
+            w = o[last]
+            ends, cl, cv = END[idx][w], CL[idx][w], cand[w]
+            upd = cv > F[ends, cl]
+            ends, cl, cv, wi = ends[upd], cl[upd], cv[upd], idx[w][upd]
+            F[ends, cl] = cv
+            bp[ends, cl] = wi
+            bpk[ends, cl] = pk[cl]
+        # the bound at these prices
+        R_end = R[n_t]
+        kbest = int(np.argmax(R_end))
+        seq_val = max(0.0, float(R_end[kbest]))
+        bound = float(mu.sum()) + seq_val
+        if bound < best - 1e-9:
+            best, stall = bound, 0
+        else:
+            stall += 1
+            if stall >= 5:
+                theta, stall = theta / 2, 0
+        # the optimal sequence: walk the back-pointers
+        count = np.zeros(len(execs))
+        if seq_val > 0:
+            t, k = int(RT[n_t, kbest]), kbest
+            while t >= 0 and bp[t, k] >= 0:
+                c = int(bp[t, k])
+                count[E[c]] += 1
+                pk_ = int(bpk[t, k])
+                if pk_ < 0:
+                    break
+                s = int(S[c])
+                t, k = int(RT[s - Lc[pk_, k], pk_]), pk_
+        g = 1.0 - count
+        g[(mu <= 0) & (g > 0)] = 0.0  # projected: mu cannot go below 0
+        nrm = float(g @ g)
+        if nrm == 0 or theta < 1e-3 or time.perf_counter() - t_start > time_limit_s:
+            break
+        mu = np.maximum(0.0, mu - theta * max(best - lower, 1e-6) / nrm * g)
+    return int(math.floor(best + 1e-6)), it

@@ -137,6 +137,7 @@ class Problem:
     T: np.ndarray  # [n_req, n_req] transition bound in steps (see transitions.pair_transition_steps)
     tmax: np.ndarray  # [n_req] transition bound into a request from anything
     execs: list[Execution]
+    mean_az: np.ndarray  # [n_req] circular mean azimuth over the feasible starts (classes for bounds)
     stability_weight: float
     stability_window: int  # steps: an execution "stays" if it starts within this of its old start
     unscheduled: dict[int, str]  # request_id -> reason, for requests that are not in the model
@@ -329,12 +330,16 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
     T, tmax = pair_transition_steps(config, step_s, alt[rows] if n else alt[:0], az[rows] if n else az[:0],
                                     insts, bands, end_ok, start_ok, bucket_steps=transition_bucket_steps)
     _release_clashing_fixed(execs, T)
+    mean_az = np.zeros(n)
+    for r in range(n):
+        a = np.radians(az[rows[r]][start_ok[r]]) if start_ok[r].any() else np.radians(az[rows[r]])
+        mean_az[r] = np.degrees(np.arctan2(np.sin(a).mean(), np.cos(a).mean())) % 360.0 if a.size else 0.0
     return Problem(
         config=config, step_s=step_s, n_t=n_t, now_step=now_step, requests=reqs,
         request_ids=np.array([int(feas.request_ids[r]) if requests[r].id is None else int(requests[r].id)
                               for r in keep], dtype=np.int64),
         feas_rows=rows, base_value=base, instruments=insts, bands=bands, spacing_steps=spacing,
-        T=T, tmax=tmax, execs=execs, stability_weight=stability_weight if previous else 0.0,
+        T=T, tmax=tmax, execs=execs, mean_az=mean_az, stability_weight=stability_weight if previous else 0.0,
         stability_window=stability_window, unscheduled=unscheduled, dropped_fixed=dropped_fixed,
     )
 
