@@ -348,3 +348,19 @@ def test_sequence_bound_is_a_valid_bound(seed):
         assert its > 0 and b >= bf
     trivial = sum(int(x.bucket_coef.max()) for x in P.execs)
     assert b <= trivial
+
+
+def test_bounds_hold_with_kept_entries():
+    """Re-planning: with an entry in progress and a frozen one, both bounds stay above the optimum."""
+    night, sky, cond, reqs, w = random_scene(12, 7, 200)
+    first = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    assert len(first.entries) >= 3
+    now_step = first.entries[0].start_step + 2
+    P, _ = problem_for(night, sky, cond, reqs, w, now_step=now_step, previous=list(first.entries),
+                       freeze_steps=first.entries[1].start_step - now_step + 1, bucket_steps=1)
+    assert sum(1 for x in P.execs if x.fixed_start is not None) == 2
+    out = cpsat.solve_problem(P, time_limit_s=20, gap_tolerance=0.0, hint=greedy_plan(P), k_best=50, num_workers=2)
+    assert out.status == "OPTIMAL"
+    opt = round(out.objective * VALUE_SCALE)
+    assert cpsat.sequence_bound(P, opt, sectors=16, iterations=60, time_limit_s=10)[0] >= opt
+    assert cpsat.lagrangian_bound(P, opt).bound >= opt

@@ -335,7 +335,9 @@ def solve_problem(problem: Problem, *, time_limit_s: float = 10.0, gap_tolerance
     sci, stab = objective_of(problem, plan)
     assert abs((sci + stab) - obj) < 0.5, "model objective and plan value disagree"
     bound = max(min(solver.BestObjectiveBound(), upper_bound if upper_bound is not None else math.inf), obj)
-    gap = 0.0 if status == cp_model.OPTIMAL else (bound - obj) / max(abs(bound), 1e-9)
+    # CP-SAT says OPTIMAL also when it stops at the relative gap limit: report what is proven
+    name = "OPTIMAL" if bound - obj < 1.0 else "FEASIBLE"
+    gap = 0.0 if name == "OPTIMAL" else (bound - obj) / max(abs(bound), 1e-9)
     return SolveOutcome(plan, name, obj / VALUE_SCALE, bound / VALUE_SCALE, gap, runtime, len(arcs), n_buckets)
 
 
@@ -473,27 +475,31 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         B(mu) = sum_e mu_e + max over sequences of sum (c_e(s) - mu_e)
 
     bounds the model's optimum; the max is a dynamic programme over (time, last class). Subgradient
-    steps on mu (Polyak, toward ``lower``). Returns (bound, iterations). Not used when entries are
-    kept from a previous plan (the Lagrangian time-indexed bound covers that case).
+    steps on mu (Polyak, toward ``lower``). Returns (bound, iterations).
     """
     P = problem
     execs = P.execs
     n_t = P.n_t
     NEG = -1e18
-    if not execs or any(ex.fixed_start is not None for ex in execs):
-        return np.iinfo(np.int64).max, 0
+    if not execs:
+        return 0, 0
     t_start = time.perf_counter()
     cls_r, Lc = _classes(P, sectors)
     K = Lc.shape[0]
     # candidates grouped by start step
+    # Kept entries (in progress, frozen) are in every plan: a bonus M on them changes no plan's
+    # ranking, and M * (number kept) is taken off the bound again.
+    forced = np.array([ex.fixed_start is not None for ex in execs])
+    M = 10.0 * float(sum(int(ex.bucket_coef.max()) for ex in execs)) + 1.0
     E, S, C = [], [], []
     for e, ex in enumerate(execs):
-        b = np.searchsorted(ex.bucket_lo, ex.starts, side="right") - 1
-        c = ex.bucket_coef[b].astype(np.float64)
+        st = ex.starts if ex.fixed_start is None else np.array([ex.fixed_start], dtype=np.int64)
+        b = np.searchsorted(ex.bucket_lo, st, side="right") - 1
+        c = ex.bucket_coef[b].astype(np.float64) + (M if forced[e] else 0.0)
         sc = P.stability_coef(e)
         if sc and ex.prev_start is not None:
-            c = c + sc * (np.abs(ex.starts - ex.prev_start) <= P.stability_window)
-        E.append(np.full(ex.starts.size, e)), S.append(ex.starts), C.append(c)
+            c = c + sc * (np.abs(st - ex.prev_start) <= P.stability_window)
+        E.append(np.full(st.size, e)), S.append(st), C.append(c)
     E, S, C = np.concatenate(E), np.concatenate(S), np.concatenate(C)
     order = np.argsort(S, kind="stable")
     E, S, C = E[order], S[order], C[order]
@@ -501,6 +507,7 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     ecls = cls_r[np.array([ex.req for ex in execs], dtype=np.int64)]
     END, CL = S + dur[E], ecls[E]
     bounds = np.searchsorted(S, np.arange(n_t + 1), side="left")
+    t0 = int(min(P.now_step, S.min()))  # an entry in progress started before now
     lag_idx = np.arange(K)[:, None]
     mu = np.zeros(len(execs)) if mu0 is None else np.asarray(mu0, dtype=np.float64).copy()
     best = math.inf
@@ -513,7 +520,7 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         bp = np.full((n_t + 1, K), -1, dtype=np.int64)  # candidate index that set F[t, k]
         bpk = np.full((n_t + 1, K), -1, dtype=np.int64)  # its predecessor class (-1: first entry)
         val = C - mu[E]
-        for s in range(P.now_step, n_t + 1):
+        for s in range(t0, n_t + 1):
             if s > 0:
                 better = F[s] > R[s - 1]
                 R[s] = np.where(better, F[s], R[s - 1])
@@ -525,7 +532,7 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
                 continue
             # best predecessor for a start of class k2 at s: max_k R[s - Lc[k, k2], k], or none (0)
             tt = s - Lc  # [K, K]
-            ok = tt >= P.now_step
+            ok = tt >= t0
             got = np.where(ok, R[np.clip(tt, 0, n_t), lag_idx], NEG)
             pk = np.argmax(got, axis=0)
             pv = got[pk, np.arange(K)]
@@ -550,7 +557,7 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         R_end = R[n_t]
         kbest = int(np.argmax(R_end))
         seq_val = max(0.0, float(R_end[kbest]))
-        bound = float(mu.sum()) + seq_val
+        bound = float(mu.sum()) + seq_val - M * int(forced.sum())
         if bound < best - 1e-9:
             best, stall = bound, 0
         else:
@@ -571,6 +578,7 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
                 t, k = int(RT[s - Lc[pk_, k], pk_]), pk_
         g = 1.0 - count
         g[(mu <= 0) & (g > 0)] = 0.0  # projected: mu cannot go below 0
+        g[forced] = 0.0
         nrm = float(g @ g)
         if nrm == 0 or theta < 1e-3 or time.perf_counter() - t_start > time_limit_s:
             break
