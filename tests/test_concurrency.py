@@ -1,16 +1,25 @@
-"""Several PIs at once: concurrent CLI processes submitting, importing and withdrawing.
+"""Several PIs at once: concurrent CLI processes submitting, importing and withdrawing while
+the real service re-plans (orders from the PIs' sessions, new requests, its heartbeat).
 
-Nothing lost, nothing duplicated, no "database is locked" reaching a user.
+Nothing lost, nothing duplicated, no "database is locked" reaching a user, and no plan built
+from a half-written import.
 """
 
 from __future__ import annotations
 
 import os
+import signal
 import subprocess
 import sys
+import time
 from pathlib import Path
 
+from sqlalchemy import select
+
 from conftest import ROOT, cli_json
+from scheduler.db import plans
+from scheduler.db.models import Plan
+from scheduler.db.session import open_db
 
 SUBMITTERS = 4
 ADDS_EACH = 4
@@ -34,14 +43,33 @@ def _script(k: int, folder: Path) -> str:
              f"--ra {(k * 37 + i * 11) % 360} --dec -20 --band R --exposure 200 >> out{k}.txt 2>> err{k}.txt"
              for i in range(ADDS_EACH)]
     lines.insert(2, f"{sys.executable} -m scheduler request import {imp} >> log{k}.txt 2>> err{k}.txt")
+    lines.insert(4, f"{sys.executable} -m scheduler replan --reason 'order from PI {k}' >> log{k}.txt 2>> err{k}.txt")
     lines.append(f"{sys.executable} -m scheduler request withdraw $(head -n 1 out{k}.txt) >> log{k}.txt 2>> err{k}.txt")
     return "set -e\n" + "\n".join(lines) + "\n"
 
 
 def test_concurrent_submitters_lose_nothing(workdir):
-    procs = [subprocess.Popen(["bash", "-c", _script(k, workdir)], cwd=workdir, env=_env())
-             for k in range(SUBMITTERS)]
-    codes = [p.wait(timeout=600) for p in procs]
+    cfg = workdir / "observatory.toml"
+    cfg.write_text(cfg.read_text().replace("time_limit_s = 10", "time_limit_s = 1"))
+    (workdir / "forecast.csv").write_text(
+        "time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome\n"
+        "2026-12-16T22:00:00Z,0.8,2.0,0,5,30,open\n2026-12-17T10:00:00Z,0.9,3.0,0,5,30,open\n")
+    subprocess.run([sys.executable, "-m", "scheduler", "conditions", "load", "forecast.csv"], cwd=workdir,
+                   env=_env(), check=True, capture_output=True)
+    service_log = open(workdir / "service.log", "w")
+    service = subprocess.Popen([sys.executable, "-m", "scheduler", "serve", "--poll", "0.3",
+                                "--clock", "2026-12-17T02:00:00Z"], cwd=workdir, env=_env(),
+                               stdout=service_log, stderr=subprocess.STDOUT)
+    try:
+        procs = [subprocess.Popen(["bash", "-c", _script(k, workdir)], cwd=workdir, env=_env())
+                 for k in range(SUBMITTERS)]
+        codes = [p.wait(timeout=600) for p in procs]
+        time.sleep(1.0)
+        assert service.poll() is None, (workdir / "service.log").read_text()[-3000:]
+    finally:
+        service.send_signal(signal.SIGTERM)
+        service.wait(60)
+        service_log.close()
     errors = "".join((workdir / f"err{k}.txt").read_text() for k in range(SUBMITTERS))
     assert codes == [0] * SUBMITTERS, errors
     assert "locked" not in errors.lower() and "Traceback" not in errors
@@ -55,3 +83,16 @@ def test_concurrent_submitters_lose_nothing(workdir):
     assert withdrawn == {f"pi{k}-add0" for k in range(SUBMITTERS)}
     ids = [r["id"] for r in rows]
     assert len(ids) == len(set(ids))
+    # The service really re-planned during the submissions, and every plan it stored saw each
+    # import whole or not at all (entries + unscheduled = the queue the plan was built from).
+    imports = {k: {r["id"] for r in rows if r["target"].startswith(f"pi{k}-imp")} for k in range(SUBMITTERS)}
+    db = open_db(str(workdir / "nightplan.sqlite"), create_file=False)
+    with db.session() as s:
+        stored = list(s.scalars(select(Plan)))
+        assert len(stored) >= 2, (workdir / "service.log").read_text()[-3000:]
+        for plan in stored:
+            seen = {e.request_id for e in plan.entries} | \
+                {u["request_id"] for u in plans.plan_summary(plan)["unscheduled"]}
+            for k, batch in imports.items():
+                assert len(seen & batch) in (0, IMPORT_ROWS), f"plan {plan.id} saw part of import {k}"
+    db.dispose()
