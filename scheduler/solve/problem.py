@@ -220,6 +220,14 @@ def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step:
     return "never feasible: " + " + ".join(lab for _, lab in top)
 
 
+def failing_constraint(reasons: np.ndarray) -> str:
+    """The constraint that fails most often over these steps (its label)."""
+    r = np.asarray(reasons).astype(np.int64)
+    counts = [(int(np.count_nonzero(r & bit)), lab) for bit, lab in _REASON_LABELS.items() if bit != 1 << 12]
+    n, lab = max(counts)
+    return lab if n else "unknown"
+
+
 def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], program_weights: dict[str, float],
                   feas, alt: np.ndarray, az: np.ndarray, *, step_s: int, now_step: int = 0,
                   previous: Sequence[PlanEntry] | None = None, freeze_steps: int = 0,
@@ -267,8 +275,7 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
             if feas.ok[r, now_step:p.end_step].all():
                 execs_r.append((p.end_step - p.start_step, np.array([p.start_step]), p.start_step, True, p.start_step))
             else:
-                bad = never_feasible_reason(feas.reasons[r], feas.ok[r], now_step, p.end_step - now_step, step_s)
-                dropped_fixed.append((rid, "interrupted: " + bad.split(": ", 1)[1]))
+                dropped_fixed.append((rid, "interrupted: " + failing_constraint(feas.reasons[r, now_step:p.end_step])))
         n_left = max(0, n_rep - len(execs_r))
         for k in range(n_left):
             d = d0 if (k == 0 and not execs_r) else d_full
