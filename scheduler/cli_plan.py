@@ -6,7 +6,6 @@ from __future__ import annotations
 import sys
 import time
 from datetime import date, datetime, timedelta, timezone
-from pathlib import Path
 
 import click
 
@@ -239,14 +238,14 @@ def plan_check(c: Ctx, version: int | None) -> None:
 def _plan_samples(c: Ctx, doc) -> list:
     """The conditions samples a plan was built on (empty: defaults were assumed)."""
     from .db.models import ConditionsReport
-    from .planner import _sample_of
+    from .planner import sample_of
 
     rid = doc["plan"]["conditions"]["report_id"]
     if rid is None:
         return []
     with c.db().session() as s:
         rep = s.get(ConditionsReport, rid)
-        return [_sample_of(x) for x in rep.samples] if rep is not None else []
+        return [sample_of(x) for x in rep.samples] if rep is not None else []
 
 
 @plan.command("why")

@@ -27,21 +27,11 @@ def conditions_load(c: Ctx, file: str, source: str | None, fmt: str | None) -> N
     Columns: time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome (time ISO-8601 UTC;
     the rest optional; dome is open or closed). Seeing is at 500 nm at zenith.
     """
-    from .conditions.ingest import MAX_BYTES, parse_conditions
+    from .conditions.files import read_conditions_file
     from .db import store
 
     p = Path(file)
-    if not p.is_file():
-        raise InputError("file", f"{file} not found")
-    if p.stat().st_size > MAX_BYTES:
-        raise InputError("file", f"{file} is larger than the limit of {MAX_BYTES} bytes")
-    try:
-        text = p.read_text(encoding="utf-8-sig")
-    except UnicodeDecodeError:
-        raise InputError("file", f"{file} is not UTF-8 text") from None
-    report = parse_conditions(text, fmt, source_name=p.name)
-    if len(report) == 0:
-        raise InputError("file", f"{file} holds no samples")
+    report = read_conditions_file(p, fmt)
     src = source or report.source or p.name
     db = c.db()
     rep_id = db.retrying(lambda s: store.store_conditions(s, list(report), src, report.issued).id)

@@ -44,7 +44,7 @@ class BuiltPlan:
     conditions: ConditionsGrid
 
 
-def _sample_of(row) -> Sample:
+def sample_of(row) -> Sample:
     return Sample(time=row.time, seeing_arcsec=row.seeing_arcsec, pwv_mm=row.pwv_mm, cloud_mag=row.cloud_mag,
                   wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open)
 
@@ -78,7 +78,7 @@ class Planner:
             specs = store.active_specs(s)
             weights = store.program_weights(s)
             rep = store.latest_conditions(s)
-            samples = [_sample_of(r) for r in rep.samples] if rep is not None else []
+            samples = [sample_of(r) for r in rep.samples] if rep is not None else []
             prev = plans.active_plan(s, night_date)
             previous = plans.entries_as_planned(prev)
             return PlanInputs(specs, weights, samples, rep.id if rep else None, previous, prev.id if prev else None)
@@ -150,7 +150,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
             from .db.models import ConditionsReport
 
             rep = s.get(ConditionsReport, plan.conditions_report_id)
-            samples = [_sample_of(r) for r in rep.samples]
+            samples = [sample_of(r) for r in rep.samples]
         night_date, planned_from, report_id = plan.night, plan.planned_from, plan.conditions_report_id
     night = planner.night(night_date)
     entries = _with_steps(stored, night)

@@ -15,13 +15,13 @@ from pathlib import Path
 from sqlalchemy import func, select
 from sqlalchemy.exc import SQLAlchemyError
 
-from ..conditions.ingest import MAX_BYTES, parse_conditions
+from ..conditions.files import read_conditions_file
 from ..config import ObservatoryConfig
 from ..db import plans, store
 from ..db.models import ConditionsReport, Outcome, Plan, ReplanOrder, Request, utcnow
 from ..db.session import Database
 from ..errors import InputError
-from ..planner import Planner, _sample_of
+from ..planner import Planner, sample_of
 from ..request_spec import ACTIVE_STATUSES, iso
 from .clock import Clock
 from .log import EventLog
@@ -156,15 +156,7 @@ class Jobs:
         return res
 
     def _ingest_file(self, p: Path, size: int) -> tuple[int, int, str]:
-        if size > MAX_BYTES:
-            raise InputError("file", f"{p.name} is larger than the limit of {MAX_BYTES} bytes")
-        try:
-            text = p.read_text(encoding="utf-8-sig")
-        except UnicodeDecodeError:
-            raise InputError("file", f"{p.name} is not UTF-8 text") from None
-        report = parse_conditions(text, None, source_name=p.name)
-        if len(report) == 0:
-            raise InputError("file", f"{p.name} holds no samples")
+        report = read_conditions_file(p)
         src = report.source or p.name
         rep_id = self.db.retrying(lambda s: store.store_conditions(s, list(report), src, report.issued).id)
         return rep_id, len(report), src
@@ -266,11 +258,11 @@ class Jobs:
         specs = {rid: store.to_spec(r) for rid, r in rows.items()}
 
         latest = store.latest_conditions(s)
-        latest_samples = [_sample_of(x) for x in latest.samples] if latest is not None else []
+        latest_samples = [sample_of(x) for x in latest.samples] if latest is not None else []
         cond = self.planner.conditions(night, latest_samples, latest.id if latest else None)
         if latest is not None and latest.id != plan.conditions_report_id:
             old_rep = s.get(ConditionsReport, plan.conditions_report_id) if plan.conditions_report_id else None
-            old = self.planner.conditions(night, [_sample_of(x) for x in old_rep.samples] if old_rep else [],
+            old = self.planner.conditions(night, [sample_of(x) for x in old_rep.samples] if old_rep else [],
                                           plan.conditions_report_id)
             changes = conditions_changes(cfg, night, old, cond, now)
             if changes:
