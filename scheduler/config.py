@@ -145,6 +145,17 @@ class ObservatoryConfig:
 RAD_TO_ARCSEC = 180.0 / math.pi * 3600.0
 
 
+def site_dict(config: ObservatoryConfig) -> dict[str, Any]:
+    return {"name": config.site.name, "lat_deg": config.site.latitude_deg, "lon_deg": config.site.longitude_deg,
+            "elevation_m": config.site.elevation_m, "timezone": config.site.timezone}
+
+
+def telescope_dict(config: ObservatoryConfig) -> dict[str, Any]:
+    tel = config.telescope
+    return {"name": tel.name, "aperture_m": tel.aperture_m, "slew_rate_az_deg_s": tel.slew_rate_az_deg_s,
+            "slew_rate_alt_deg_s": tel.slew_rate_alt_deg_s, "settle_s": tel.settle_s}
+
+
 # --------------------------------------------------------------------------- validation
 
 class _Table:

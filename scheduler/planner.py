@@ -14,7 +14,7 @@ from typing import Callable
 
 from .conditions.grid import ConditionsGrid, conditions_on_grid
 from .conditions.ingest import Sample
-from .config import ObservatoryConfig
+from .config import ObservatoryConfig, site_dict, telescope_dict
 from .db import plans, store
 from .db.session import Database
 from .request_spec import RequestSpec
@@ -121,7 +121,8 @@ class Planner:
                 s, result, night=night_date, reason=reason, planned_from=planned_from, specs=spec_by_id,
                 conditions_report_id=inputs.report_id,
                 extra_summary={"conditions_covered_fraction": float(cond.covered.mean()) if cond.covered.size else 0.0,
-                               "queue_size": len(inputs.specs)},
+                               "queue_size": len(inputs.specs),
+                               "site": site_dict(self.config), "telescope": telescope_dict(self.config)},
             ).id
 
         version = db.retrying(write)

@@ -16,8 +16,9 @@ offset). One entry is one execution of the request's full exposure (or, for the 
 execution after a partial outcome, of the exposure still owed: ``exposure_s`` says which).
 ``plan show --json`` prints this same document, so the two always agree.
 
-Site and telescope come from the observatory.toml in use when the document is made (a plan
-row stores neither); the night's times are recomputed from the site for the plan's date.
+Site and telescope are those the plan was built for (stored in the plan's summary); plans
+stored without them fall back to the observatory.toml in use. The night's times are
+recomputed from the site for the plan's date.
 """
 
 from __future__ import annotations
@@ -34,7 +35,7 @@ from zoneinfo import ZoneInfo
 
 from sqlalchemy import select
 
-from ..config import ObservatoryConfig
+from ..config import ObservatoryConfig, site_dict, telescope_dict
 from ..request_spec import iso
 from ..sky.night import Night
 
@@ -142,12 +143,9 @@ def plan_document(s, plan, config: ObservatoryConfig, night: Night) -> dict[str,
     return {
         "format": "nightplan-plan/1",
         "caution": CAUTION,
-        "site": {"name": config.site.name, "lat_deg": config.site.latitude_deg, "lon_deg": config.site.longitude_deg,
-                 "elevation_m": config.site.elevation_m, "timezone": config.site.timezone},
-        "telescope": {"name": config.telescope.name, "aperture_m": config.telescope.aperture_m,
-                      "slew_rate_az_deg_s": config.telescope.slew_rate_az_deg_s,
-                      "slew_rate_alt_deg_s": config.telescope.slew_rate_alt_deg_s,
-                      "settle_s": config.telescope.settle_s},
+        # the site and telescope the plan was built for (stored with it), else the current config
+        "site": summary.get("site") or site_dict(config),
+        "telescope": summary.get("telescope") or telescope_dict(config),
         "night": {"date": plan.night.isoformat(), "start": iso(night.start), "end": iso(night.end),
                   "start_local": _local(night.start, tz), "end_local": _local(night.end, tz),
                   "astronomical_dusk": iso(dusk), "astronomical_dawn": iso(dawn), "dark_hours": round(dark_h, 3)},
