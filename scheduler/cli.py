@@ -226,8 +226,12 @@ def request_add(c: Ctx, **opts: Any) -> None:
     click.echo(rid)
 
 
-def read_table_file(path: str, *, what: str) -> tuple[list[dict[str, Any]], str]:
-    """Rows of a CSV (header row) or JSON list file, with a size limit. Returns (rows, format)."""
+def read_table_file(path: str, *, what: str) -> tuple[list[tuple[int, dict[str, Any]]], str]:
+    """(row number, row) of a CSV (header row) or JSON list file, with a size limit; and the format.
+
+    Row numbers are what a user finds in the file: for CSV the line (the header is line 1), for
+    JSON the position in the list (from 1), as in conditions files.
+    """
     p = Path(path)
     if not p.is_file():
         raise InputError("file", f"{path} not found")
@@ -245,15 +249,15 @@ def read_table_file(path: str, *, what: str) -> tuple[list[dict[str, Any]], str]
             raise InputError("file", f"{path} is not valid JSON: {e.msg} at line {e.lineno}") from None
         if not isinstance(data, list) or not all(isinstance(r, dict) for r in data):
             raise InputError("file", f"{path}: JSON must be a list of objects, one per {what[:-1]}")
-        return data, "json"
+        return list(enumerate(data, start=1)), "json"
     reader = csv.DictReader(io.StringIO(text))
     if not reader.fieldnames:
         raise InputError("file", f"{path} is empty; expected a CSV header row")
     rows = []
-    for i, row in enumerate(reader, start=1):
+    for row in reader:
         if None in row:
-            raise InputError("columns", "more values than header columns", row=i, source=path)
-        rows.append({k.strip(): (v.strip() if isinstance(v, str) else v) for k, v in row.items()})
+            raise InputError("columns", "more values than header columns", row=reader.line_num, source=path)
+        rows.append((reader.line_num, {k.strip(): (v.strip() if isinstance(v, str) else v) for k, v in row.items()}))
     return rows, "csv"
 
 
@@ -282,7 +286,7 @@ def request_import(c: Ctx, file: str) -> None:
     def work(s):
         codes = store.program_codes(s)
         specs = []
-        for i, raw in enumerate(rows, start=1):
+        for i, raw in rows:
             try:
                 specs.append(validate_request(raw, config, codes))
             except InputError as e:
@@ -429,6 +433,14 @@ def main(argv: list[str] | None = None) -> None:
     except click.exceptions.Abort:
         click.echo("nightplan: aborted", err=True)
         sys.exit(130)
+    except click.exceptions.UsageError as e:
+        if type(e).__name__ == "NoArgsIsHelpError":  # a bare group: show its help
+            e.show()
+            sys.exit(2)
+        # one line like every other input error (the option and what it allows are in the message)
+        where = f" (see `{e.ctx.command_path} --help`)" if e.ctx is not None else ""
+        click.echo(f"nightplan: error: {e.format_message()}{where}", err=True)
+        sys.exit(2)
     except click.exceptions.ClickException as e:
         e.show()
         sys.exit(2 if e.exit_code in (1, 2) else e.exit_code)

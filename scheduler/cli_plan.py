@@ -89,6 +89,12 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
     db = c.db()
     planner = Planner(config)
     night_date = parse_night(night) if night else default_night(planner, now)
+    the_night = planner.night(night_date)
+    if now >= the_night.end:
+        if now_text:
+            raise InputError("now", f"{iso(now)} is after the night of {night_date} ended ({iso(the_night.end)}); "
+                                    f"allowed up to {iso(the_night.end)}")
+        warn(f"the night of {night_date} ended at {iso(the_night.end)}: planning it whole, as a rehearsal")
     t0 = time.perf_counter()
 
     def progress(msg: str) -> None:
@@ -291,15 +297,19 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
     from .db import plans
     from .report.export import plan_document
     from .report.next import what_next
+    from .planner import Planner
     from .report.table import entry_line, hm
-    from .sky.night import night_date_for
 
     at = _now(at_text, "at")
     config = c.config()
+    night_d = default_night(Planner(config), at)
     with c.db().session() as s:
-        plan_row = plans.active_plan(s, night_date_for(config.site, at)) or plans.active_plan(s)
+        plan_row = plans.active_plan(s, night_d)
         if plan_row is None:
-            raise NotFoundError("no plan yet; build one with `nightplan plan build`")
+            others = sorted({p.night.isoformat() for p in plans.active_plans(s)})
+            have = f"; active plans exist for the nights of {', '.join(others)} (use --at)" if others else \
+                "; build one with `nightplan plan build`"
+            raise NotFoundError(f"no plan for the night of {night_d} (the night of {iso(at)}){have}")
         night = night_of(config, plan_row.night)
         doc = plan_document(s, plan_row, config, night)
     res = what_next(doc, at)
@@ -339,13 +349,14 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
     now = datetime.now(timezone.utc)
 
     def work(s):
-        active = plans.active_plan(s)
         entry_id = None
-        if active is not None:
-            mine = [e for e in active.entries if e.request_id == request_id]
-            if mine:  # the entry in progress or the latest one started, else the first planned
-                started = [e for e in mine if e.start <= now]
-                entry_id = (started[-1] if started else mine[0]).id
+        # this request's entries in the active plans (any night): the one in progress or the
+        # latest started, else the first still to come
+        mine = sorted((e for p in plans.active_plans(s) for e in p.entries if e.request_id == request_id),
+                      key=lambda e: e.start)
+        if mine:
+            started = [e for e in mine if e.start <= now]
+            entry_id = (started[-1] if started else mine[0]).id
         out = store.record_outcome(s, request_id, result, exposure, note, entry_id)
         row = store.get_request(s, request_id)
         return out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s

@@ -134,7 +134,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
     """Re-run the independent checker on a stored plan, against the conditions report it used.
 
     Returns (version, violations). Used by `nightplan plan check` and the crash-safety tests.
-    Requests are checked as they are now (an outcome recorded since can shorten an exposure).
+    Requests are checked as they were when the plan was made (later outcomes are undone).
     """
     from .pipeline import _now_step, _with_steps, target_rows_for
     from .solve.checker import check_plan
@@ -146,6 +146,18 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
         stored = plans.entries_as_planned(plan)
         ids = {e.request_id for e in stored}
         specs = {r.id: store.to_spec(r) for r in store.list_requests(s) if r.id in ids}
+        # Outcomes recorded after the plan was made are undone, so a plan is checked against the
+        # queue it was built from (a request observed since is not a violation).
+        from .db.models import Outcome
+        from sqlalchemy import select
+
+        since = s.scalars(select(Outcome).where(Outcome.request_id.in_(ids), Outcome.recorded_at > plan.created_at))
+        for o in since:
+            sp = specs[o.request_id]
+            if o.result == "done":
+                specs[o.request_id] = sp.with_(completed_repeats=max(sp.completed_repeats - 1, 0), partial_exposure_s=0.0)
+            elif o.result == "partial" and o.exposure_s:
+                specs[o.request_id] = sp.with_(partial_exposure_s=max(sp.partial_exposure_s - o.exposure_s, 0.0))
         samples: list[Sample] = []
         if plan.conditions_report_id is not None:
             from .db.models import ConditionsReport

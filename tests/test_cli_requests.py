@@ -97,7 +97,7 @@ def test_import_csv_all_or_nothing(workdir):
                    "STAR-1,Field D,10.5,-30,V,300,,,-2,,,,,,,\n")
     proc = run_cli("request", "import", str(bad), cwd=workdir)
     assert proc.returncode == 2
-    assert "row 2" in proc.stderr and "max_pwv_mm" in proc.stderr
+    assert "row 3" in proc.stderr and "max_pwv_mm" in proc.stderr  # line 3 of the file
     assert cli_json("request", "list", cwd=workdir) == []
     proc = run_cli("request", "import", str(good), cwd=workdir)
     assert proc.returncode == 0, proc.stderr

@@ -155,5 +155,5 @@ def test_cli_import_fuzz_sample_is_refused_cleanly(workdir, case):
     proc = run_cli("request", "import", str(f), cwd=workdir)
     assert proc.returncode == 2, proc.stdout + proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1 and "Traceback" not in proc.stderr
-    assert "row 2" in proc.stderr
+    assert "row 3" in proc.stderr  # the bad row is line 3 of the file
     assert cli_json("request", "list", cwd=workdir) == []

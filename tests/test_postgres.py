@@ -34,7 +34,7 @@ def test_cli_queue_on_postgres(pg_url, tmp_path):
     bad = tmp_path / "bad.csv"
     bad.write_text("program,target,ra,dec,band,exposure_s\nPG-1,c,10,-30,V,300\nPG-1,d,10,-30,V,-1\n")
     proc = run_cli("request", "import", str(bad), cwd=tmp_path, env=env)
-    assert proc.returncode == 2 and "row 2" in proc.stderr
+    assert proc.returncode == 2 and "row 3" in proc.stderr
     rows = cli_json("request", "list", cwd=tmp_path, env=env)
     assert [r["target"] for r in rows] == ["a", "b"] and rows[1]["max_pwv_mm"] == 2.5
     run_cli("request", "withdraw", str(rows[0]["id"]), cwd=tmp_path, env=env, check=True)

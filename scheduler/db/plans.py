@@ -7,7 +7,7 @@ the same transaction, so readers always see exactly one complete active plan per
 from __future__ import annotations
 
 import json
-from datetime import date, datetime, timedelta
+from datetime import date, datetime
 from typing import Any
 
 from sqlalchemy import select
@@ -53,6 +53,11 @@ def active_plan(s: Session, night: date | None = None) -> Plan | None:
     if night is not None:
         q = q.where(Plan.night == night)
     return s.scalar(q.order_by(Plan.id.desc()).limit(1))
+
+
+def active_plans(s: Session) -> list[Plan]:
+    """The active plan of every night, newest night first."""
+    return list(s.scalars(select(Plan).where(Plan.active.is_(True)).order_by(Plan.night.desc(), Plan.id.desc())))
 
 
 def get_plan(s: Session, version: int | None = None) -> Plan:
@@ -189,8 +194,3 @@ def finish_order(order: ReplanOrder, result: str, plan_id: int | None) -> None:
 def order_dict(o: ReplanOrder) -> dict[str, Any]:
     return {"id": o.id, "reason": o.reason, "requested_by": o.requested_by, "requested_at": iso(o.requested_at),
             "taken_at": iso(o.taken_at), "done_at": iso(o.done_at), "result": o.result, "plan_version": o.plan_id}
-
-
-def entry_at(plan: Plan, when: datetime, horizon: timedelta = timedelta(0)) -> list[PlanEntry]:
-    """Entries in progress at ``when`` or starting within ``horizon`` after it."""
-    return [e for e in plan.entries if e.end > when and e.start <= when + horizon]

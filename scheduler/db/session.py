@@ -109,10 +109,14 @@ def open_db(url: str | None = None, *, create_file: bool = True) -> Database:
         kwargs["connect_args"] = {"timeout": 30}
     else:
         kwargs["pool_pre_ping"] = True
+    shown = u.render_as_string(hide_password=True)  # never print a password
     try:
         engine = create_engine(u, **kwargs)
-    except Exception as e:  # unknown dialect, missing driver
-        raise InputError("db", f"cannot open {url!r}: {e}") from None
+    except ModuleNotFoundError as e:
+        raise InputError("db", f"cannot open {shown}: its driver is not installed ({e.name}); for PostgreSQL "
+                               "use postgresql+psycopg2://... with `pip install psycopg2-binary`") from None
+    except Exception as e:  # unknown dialect
+        raise InputError("db", f"cannot open {shown}: {e}") from None
     if path is not None:
         event.listen(engine, "connect", _sqlite_pragmas)
     return Database(url=url, engine=engine, sessions=sessionmaker(engine, expire_on_commit=False))

@@ -10,7 +10,7 @@ import re
 from datetime import datetime
 from typing import Any, Iterable
 
-from sqlalchemy import func, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from ..errors import InputError, NotFoundError
@@ -156,10 +156,6 @@ def withdraw_request(s: Session, request_id: int) -> Request:
     row.status = "withdrawn"
     row.updated_at = utcnow()
     return row
-
-
-def count_requests(s: Session) -> int:
-    return int(s.scalar(select(func.count()).select_from(Request)) or 0)
 
 
 def expire_requests(s: Session, now: datetime) -> list[int]:
