@@ -36,13 +36,23 @@ def almanac_for(config: ObservatoryConfig, night_date: date) -> dict[str, Any]:
         t: datetime | None = getattr(night, key)
         out[key] = iso(t)
         out["local"][key] = t.astimezone(tz).strftime("%Y-%m-%d %H:%M %Z") if t else None
+    # compute_night gives a noon-to-noon grid when the Sun never rises (polar night)
+    polar_night = night.n_times * night.step_s >= 23.5 * 3600
+    if polar_night:  # the grid runs noon to noon: there is no sunset or sunrise to show
+        out["sunset"] = out["sunrise"] = None
+        out["local"]["sunset"] = out["local"]["sunrise"] = None
     out["night_hours"] = round(night.n_times * step_h, 3)
-    out["dark_hours"] = round(float(dark.sum()) * step_h, 3)
+    if night.astronomical_dusk and night.astronomical_dawn:  # the same figure `plan show` gives
+        out["dark_hours"] = round((night.astronomical_dawn - night.astronomical_dusk).total_seconds() / 3600.0, 3)
+    else:
+        out["dark_hours"] = round(float(dark.sum()) * step_h, 3)
     out["moon_illumination"] = round(float(sky.moon_illum[mid]), 4) if night.n_times else None
     out["moon_phase_angle_deg"] = round(float(sky.moon_phase_angle_deg[mid]), 2) if night.n_times else None
     out["moon_up_hours"] = round(float(moon_up.sum()) * step_h, 3)
     out["moon_up_dark_hours"] = round(float((moon_up & dark).sum()) * step_h, 3)
     out["grid"] = {"start": iso(night.start), "end": iso(night.end), "step_s": night.step_s, "n_times": night.n_times}
-    if night.astronomical_dusk is None:
+    if polar_night:
+        out["warning"] = "polar night: the Sun does not rise; the night runs from local noon to local noon"
+    elif night.astronomical_dusk is None:
         out["warning"] = "the Sun does not reach -18 deg tonight: no astronomical darkness"
     return out

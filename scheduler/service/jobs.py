@@ -37,8 +37,13 @@ MAX_LISTED = 5  # outcomes or requests named in one reason
 
 def describe_built(built) -> str:
     r = built.result
-    return (f"plan version {built.version} from {iso(built.planned_from)}: {len(r.entries)} entries, "
-            f"solver {r.solver_status}, gap {r.gap:.3f}, built in {sum(r.timings.values()):.1f} s")
+    covered = float(built.conditions.covered.mean()) if built.conditions.covered.size else 0.0
+    text = (f"plan version {built.version} for the night of {built.night.date} from {iso(built.planned_from)}: "
+            f"{len(r.entries)} entries, solver {r.solver_status}, gap {100 * r.gap:.1f} %, "
+            f"built in {sum(r.timings.values()):.1f} s")
+    if covered == 0.0:
+        text += "; no conditions report covers this night: the configuration's defaults were assumed"
+    return text
 
 
 def target_night(planner: Planner, now: datetime) -> date:
