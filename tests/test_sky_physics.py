@@ -111,7 +111,8 @@ def test_transmission_combines_extinction_cloud_and_water():
     v, q = CFG.band("V"), CFG.band("Q")
     # 0.13 mag/airmass at X = 1.5 plus 0.5 mag of cloud: 10^(-0.4 * 0.695).
     assert ph.transmission(v, 5.0, 1.5, 0.5) == pytest.approx(10 ** (-0.4 * (0.13 * 1.5 + 0.5)), rel=1e-12)
-    # Q band is strongly water sensitive, V barely (physics.md: orders of magnitude apart).
+    # Fact of the trade: the 20 um (Q) window is set by water vapour, the visible hardly at all
+    # (from memory). Our thresholds: Q loses > 60 % from 1 to 5 mm PWV, V is unchanged.
     tq = ph.transmission(q, np.array([1.0, 5.0]), 1.2, 0.0)
     tv = ph.transmission(v, np.array([1.0, 5.0]), 1.2, 0.0)
     assert tq[1] / tq[0] < 0.4 and tv[1] == pytest.approx(tv[0])
@@ -127,14 +128,14 @@ def test_nl_mag_conversion_from_photometric_units():
     lux = 1e-9 * 1e4 / math.pi * (math.radians(1 / 3600)) ** 2
     v_of_1nl = -2.5 * math.log10(lux / 2.54e-6)
     assert ph.nl_to_mag(1.0) == pytest.approx(v_of_1nl, abs=0.02)
-    # Krisciunas & Schaefer (1991): their dark zenith sky V = 21.587 is 79.0 nL (from memory).
+    # Krisciunas & Schaefer 1991 (PASP 103, 1033): their dark zenith sky V = 21.587 is 79.0 nL (from memory).
     assert ph.mag_to_nl(21.587) == pytest.approx(79.0, rel=0.002)
     m = np.array([15.0, 20.0, 22.5])
     np.testing.assert_allclose(ph.nl_to_mag(ph.mag_to_nl(m)), m, rtol=1e-12)
 
 
 def test_moon_phase_term_is_moon_magnitude_law():
-    # The I* term of K&S 1991 follows the Moon's V magnitude vs phase angle,
+    # The I* term of Krisciunas & Schaefer 1991 (PASP 103, 1033) follows the Moon's V magnitude vs phase angle,
     # m = -12.73 + 0.026|a| + 4e-9 a^4 (Allen's Astrophysical Quantities, from memory):
     # at fixed geometry, brightness ratios between phases must match that law.
     a = np.array([0.0, 60.0, 90.0, 120.0])
@@ -144,7 +145,7 @@ def test_moon_phase_term_is_moon_magnitude_law():
 
 
 def test_moon_scattering_shape():
-    # K&S 1991 f(rho): strong forward (Mie) peak, Rayleigh minimum near 90 deg, rising again.
+    # Krisciunas & Schaefer 1991 (PASP 103, 1033) f(rho): strong forward (Mie) peak, Rayleigh minimum near 90 deg, rising again.
     rho = np.array([5.0, 15.0, 30.0, 60.0, 90.0, 120.0, 150.0])
     b = ph.moon_sky_nl(0.0, rho, 45.0, 45.0, 0.172)
     assert b[0] > b[1] > b[2] > b[3] > b[4]
