@@ -193,7 +193,7 @@ def main() -> None:
         w = csv.DictWriter(f, list(first[0]), lineterminator="\n")
         w.writeheader()
         w.writerows(first)
-    update = {"issued": "2026-12-16T21:00:00Z", "source": "demo forecast desk, update 2 (invented)",
+    update = {"issued": "2026-12-17T00:45:00Z", "source": "demo forecast desk, update 2 (invented)",
               "samples": forecast(rng, changed=True)}
     (HERE / "forecast_update.json").write_text(json.dumps(update, indent=1) + "\n", encoding="utf-8")
     (HERE / "scenario.json").write_text(json.dumps({

@@ -22,7 +22,7 @@ from .errors import InputError
 
 DATA_DIR = Path(__file__).resolve().parents[1] / "demo_queue"
 BEFORE_NIGHT = "T18:00:00Z"  # the first build "happens" the afternoon before, so the whole night is planned
-UPDATE_AT = "T21:30:00Z"  # the forecast update arrives in the evening, still before sunset
+UPDATE_AT = "01:00:00Z"  # the forecast update arrives mid-night, the next UTC day: re-plan from then on
 
 
 def _data_dir() -> Path:
@@ -119,8 +119,12 @@ def run_demo(out: str | None, time_limit: float) -> dict:
     # The sky changes: a new forecast, a re-plan naming the change, and what moved.
     upd = data / scen["forecast_update"]
     run("conditions", "load", str(upd), show=f"conditions load {rel(upd)}")
-    run("plan", "build", "--night", night, "--time-limit", f"{time_limit:g}", "--now", night + UPDATE_AT,
+    from datetime import date, timedelta
+
+    update_at = f"{(date.fromisoformat(night) + timedelta(days=1)).isoformat()}T{UPDATE_AT}"
+    run("plan", "build", "--night", night, "--time-limit", f"{time_limit:g}", "--now", update_at,
         "--reason", scen["update_reason"])
+    run("next", "--at", update_at)
     chart2, json2 = folder / "plan_v2.png", folder / "plan_v2.json"
     run("plan", "chart", "-o", str(chart2), show=f"plan chart -o {chart2.name}")
     run("plan", "export", "--format", "json", "-o", str(json2), show=f"plan export --format json -o {json2.name}")
@@ -132,6 +136,7 @@ def run_demo(out: str | None, time_limit: float) -> dict:
         names = {r.id: f"{r.target} ({r.program.code}, {r.band})"
                  for r in s.scalars(select(Request).where(Request.id.in_(ids)))} if ids else {}
         v2_id, v2_prev = v2.id, v2.previous_id
+        why_dropped = {u["request_id"]: u["reason"] for u in plans.plan_summary(v2).get("unscheduled", [])}
         n_plans = len(list(s.scalars(select(Plan.id))))
     click.secho(f"\nWhat moved from plan version {v2_prev} to {v2_id} ({scen['update_reason']}):", bold=True)
     for kind in ("added", "dropped", "moved"):
@@ -142,6 +147,9 @@ def run_demo(out: str | None, time_limit: float) -> dict:
             if kind == "moved":
                 click.echo(f"      #{d['request_id']:<4} {name:<28} {d['from'][11:16]} -> {d['to'][11:16]} UTC "
                            f"({d['minutes']:+.0f} min)")
+            elif kind == "dropped":
+                click.echo(f"      #{d['request_id']:<4} {name:<28} {d['start'][11:16]} UTC  "
+                           f"({why_dropped.get(d['request_id'], '?')})")
             else:
                 click.echo(f"      #{d['request_id']:<4} {name:<28} {d['start'][11:16]} UTC")
 

@@ -96,7 +96,9 @@ def store_plan(s: Session, result: PlanResult, *, night: date, reason: str, plan
     if result.violations:
         raise ValueError(f"refusing to store a plan that fails the checker: {result.violations[0]}")
     previous = active_plan(s, night)
-    diff = plan_diff(list(previous.entries) if previous else None, result.entries)
+    # what is already over when re-planning from now is not "dropped": compare what is still to come
+    still_to_come = [e for e in previous.entries if e.end > planned_from] if previous else None
+    diff = plan_diff(still_to_come, result.entries)
     now = utcnow()
     if previous is not None:
         previous.active = False
