@@ -2,7 +2,8 @@
 
 All functions take plain floats or numpy arrays in degrees, broadcast, and return float64 (a numpy scalar
 for scalar input).
-Plain sec z is not offered: it overestimates badly beyond z ~ 70 deg.
+Plain sec z is not offered: near the horizon it ignores the curved atmosphere (at z = 85 deg sec z
+is 11.47 against 10.31 from Kasten & Young 1989, both computed from the formulas).
 """
 
 from __future__ import annotations
