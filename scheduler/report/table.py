@@ -46,7 +46,7 @@ def summary_lines(doc: dict[str, Any]) -> list[str]:
         f"{sm['transition_hours']:.2f} h (slew {sm['slew_hours']:.2f} h); idle {sm['idle_hours']:.2f} h",
         f"  solver {p['solver_status']}: objective {_f(p['objective'], '{:.3f}')}, bound {_f(p['bound'], '{:.3f}')}, "
         f"gap {_pct(p['gap'])}, greedy {_f(p['greedy_objective'], '{:.3f}')}, {_f(p['runtime_s'], '{:.1f}')} s; "
-        f"{sm['unscheduled']} requests unscheduled"
+        f"{sm['unscheduled']} request{'' if sm['unscheduled'] == 1 else 's'} unscheduled"
         + (f" of {sm['queue_size']} in the queue" if sm.get("queue_size") is not None else ""),
     ]
     if c["report_id"] is None:

@@ -295,7 +295,8 @@ class _Progress(cp_model.CpSolverSolutionCallback):
         self.cb, self.t0 = cb, t0
 
     def on_solution_callback(self) -> None:
-        self.cb(f"solve: objective {self.ObjectiveValue() / VALUE_SCALE:.3f} bound "
+        # CP-SAT's own bound so far; the reported bound is the tightest of it and the relaxations
+        self.cb(f"solve: objective {self.ObjectiveValue() / VALUE_SCALE:.3f}, CP-SAT bound "
                 f"{self.BestObjectiveBound() / VALUE_SCALE:.3f} at {time.perf_counter() - self.t0:.1f}s")
 
 
