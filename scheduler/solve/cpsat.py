@@ -332,9 +332,11 @@ def solve_problem(problem: Problem, *, time_limit_s: float = 10.0, gap_tolerance
     plan = [Placement(j, int(solver.Value(v.start[j]))) for j in range(len(problem.execs))
             if solver.Value(v.present[j])]
     plan.sort(key=lambda p: p.start)
-    obj = solver.ObjectiveValue()
     sci, stab = objective_of(problem, plan)
-    assert abs((sci + stab) - obj) < 0.5, "model objective and plan value disagree"
+    # A solution may leave a keeps_previous_start literal false although the start is inside the
+    # window (nothing forces it true): the plan then earns more than the model says. Never less.
+    assert sci + stab >= solver.ObjectiveValue() - 0.5, "plan value below the model objective"
+    obj = float(sci + stab)
     bound = max(min(solver.BestObjectiveBound(), upper_bound if upper_bound is not None else math.inf), obj)
     # CP-SAT says OPTIMAL also when it stops at the relative gap limit: report what is proven
     name = "OPTIMAL" if bound - obj < 1.0 else "FEASIBLE"
