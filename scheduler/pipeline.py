@@ -209,7 +209,9 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     rnd, n_rnd = randomized_dispatch(problem, runs=400, time_limit_s=max(0.2, 0.1 * limit))
     candidates = [("randomized dispatch", rnd)]
     if prev:
-        candidates.append(("previous plan", _previous_hint(problem, prev)))
+        # the previous plan seeds the search: its still-feasible part, with the dispatch filling
+        # what the change left empty (alone it would lose to any full plan and never be improved)
+        candidates.append(("previous plan", greedy_plan(problem, keep=_previous_hint(problem, prev))))
 
     def consider(label, plan_c):
         nonlocal hint, hint_from, hint_obj
@@ -250,23 +252,28 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
         timings["model"] += model_s[0]
     timings["solve"] = search_s + (outcome.runtime_s if outcome else 0.0)
     greedy_obj = (g_sci + g_stab) / VALUE_SCALE
+    # The floor is the best model-feasible plan of the hint search (the greedy or better): on a
+    # re-plan it is the one seeded by the previous plan, so falling back to the plain greedy
+    # would throw the plan's stability away whenever CP-SAT finds nothing in a short budget.
+    fallback, fallback_obj = hint, hint_obj / VALUE_SCALE
+    kept_what = "greedy plan kept" if hint_from == "greedy" else f"best heuristic plan kept ({hint_from})"
     used_greedy = False
     message = ""
-    if outcome is not None and outcome.status in ("OPTIMAL", "FEASIBLE") and outcome.objective >= greedy_obj - 1e-9:
+    if outcome is not None and outcome.status in ("OPTIMAL", "FEASIBLE") and outcome.objective >= fallback_obj - 1e-9:
         plan, status = outcome.placements, outcome.status
         objective, bound, gap = outcome.objective, outcome.bound, outcome.gap
     else:
-        plan, status, used_greedy = greedy, "GREEDY", True
-        objective = greedy_obj
+        plan, status, used_greedy = fallback, "GREEDY", True
+        objective = fallback_obj
         if outcome is None:
             bound, gap = objective, 0.0
             message = "nothing to optimise"
         else:
             bound = max(min(outcome.bound, upper / VALUE_SCALE), objective)
             gap = (bound - objective) / max(abs(bound), 1e-9)
-            message = (f"CP-SAT returned {outcome.status} with objective {outcome.objective:.3f} below the greedy "
-                       f"{greedy_obj:.3f}: greedy plan kept" if outcome.status in ("OPTIMAL", "FEASIBLE")
-                       else f"CP-SAT returned {outcome.status}: greedy plan kept")
+            message = (f"CP-SAT returned {outcome.status} with objective {outcome.objective:.3f} below "
+                       f"{fallback_obj:.3f}: {kept_what}" if outcome.status in ("OPTIMAL", "FEASIBLE")
+                       else f"CP-SAT returned {outcome.status}: {kept_what}")
     if not problem.execs:
         status = "EMPTY"
 
@@ -277,10 +284,11 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     violations = check_plan(entries, spec_by_id, row_by_id, sky_grid, cond, config, now_step=now_step)
     dropped: list[tuple[int, str]] = []
     if violations and not used_greedy:
-        g_entries = _entries(problem, greedy, feas, sky_grid, rows, cond, config, night)
+        g_entries = _entries(problem, fallback, feas, sky_grid, rows, cond, config, night)
         g_viol = check_plan(g_entries, spec_by_id, row_by_id, sky_grid, cond, config, now_step=now_step)
-        message = f"CP-SAT plan failed the checker ({violations[0]}); greedy plan kept"
-        entries, violations, used_greedy, status, objective = g_entries, g_viol, True, "GREEDY", greedy_obj
+        message = f"CP-SAT plan failed the checker ({violations[0]}); {kept_what}"
+        entries, violations, used_greedy, status, objective = g_entries, g_viol, True, "GREEDY", fallback_obj
+        plan = fallback
     if violations:
         entries, violations, dropped = _drop_failing(entries, violations, spec_by_id, row_by_id, sky_grid, cond,
                                                      config, now_step)

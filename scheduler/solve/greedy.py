@@ -24,7 +24,8 @@ from .problem import Placement, Problem
 
 def dense_tables(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
     """(next_start [n_exec, n_t + 1], coef [n_exec, n_t]): first feasible start >= t (n_t: none)
-    and the objective coefficient of starting at t."""
+    and the objective coefficient of starting at t, stability bonus included (re-planning: a
+    start within the stability window of the previous plan's start earns it, as in the model)."""
     n_t = problem.n_t
     n_e = len(problem.execs)
     nxt = np.full((n_e, n_t + 1), n_t, dtype=np.int64)
@@ -38,6 +39,12 @@ def dense_tables(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
             nxt[e] = np.where(idx < st.size, st[np.minimum(idx, st.size - 1)], n_t)
         for lo, hi, c in zip(ex.bucket_lo, ex.bucket_hi, ex.bucket_coef):
             coef[e, max(lo, 0):hi + 1] = c
+        sc = problem.stability_coef(e)
+        if sc > 0:
+            w = problem.stability_window
+            lo, hi = max(ex.prev_start - w, 0), min(ex.prev_start + w + 1, n_t)
+            if hi > lo:
+                coef[e, lo:hi] += np.where(coef[e, lo:hi] > 0, sc, 0)
     return nxt, coef
 
 

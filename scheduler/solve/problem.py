@@ -78,7 +78,7 @@ class PlanResult:
 
     entries: tuple[PlanEntry, ...]
     unscheduled: tuple[tuple[int, str], ...]  # (request_id, short reason)
-    solver_status: str  # OPTIMAL, FEASIBLE, or GREEDY (greedy plan kept), or EMPTY
+    solver_status: str  # OPTIMAL, FEASIBLE, or GREEDY (best heuristic plan kept, greedy or better), or EMPTY
     objective: float
     bound: float
     gap: float
