@@ -3,8 +3,9 @@ unscheduled requests, greedy fallback, sky reuse, and one run on the real sky.""
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
-from datetime import timedelta
+from datetime import datetime, timedelta, timezone
 
 import numpy as np
 import pytest
@@ -12,6 +13,7 @@ import pytest
 import scheduler.pipeline as pipeline
 from scheduler.pipeline import build_plan
 from scheduler.solve.cpsat import SolveOutcome
+from scheduler.solve.problem import VALUE_SCALE
 
 from test_solver import CFG, T0, assert_clean, make_cond, make_night, make_sky, random_scene, req
 
@@ -59,11 +61,15 @@ def test_replan_with_unchanged_conditions_keeps_the_plan(base):
     assert res2.science_value == pytest.approx(res2.objective - res2.stability_bonus)
 
 
-def test_frozen_entries_stay_and_storage_form_without_steps_is_accepted(base):
+@pytest.mark.parametrize("seeing_up", [0.0, 0.2])
+def test_frozen_entries_stay_and_storage_form_without_steps_is_accepted(base, seeing_up):
+    """An entry starting within the freeze horizon keeps its start exactly, also after a small
+    conditions change that leaves it feasible (the requests here have no seeing limit)."""
     night, sky, cond, reqs, w, res = base
     e0, e1 = res.entries[0], res.entries[1]
     now = e1.start - timedelta(minutes=5)  # e1 starts inside the 15-minute freeze horizon
     stored = [replace(e, start_step=-1, end_step=-1) for e in res.entries]  # storage keeps times only
+    cond = replace(cond, seeing_arcsec=cond.seeing_arcsec + seeing_up)
     res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, now=now, previous_entries=stored, time_limit_s=2)
     assert_clean(res2)
     same = [e for e in res2.entries if (e.request_id, e.execution) == (e1.request_id, e1.execution)]
@@ -111,8 +117,10 @@ def test_greedy_plan_kept_when_cp_sat_finds_nothing(base, monkeypatch):
     res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
     assert_clean(res)
     assert res.used_greedy and res.solver_status == "GREEDY"
-    assert "greedy plan kept" in res.message
-    assert res.objective == pytest.approx(res.greedy_objective) and res.entries
+    assert "plan kept" in res.message
+    # the floor is the best plan of the hint search: the greedy or better
+    assert res.objective == pytest.approx(res.stats["hint_objective"]) and res.entries
+    assert res.objective >= res.greedy_objective - 1e-9
     assert res.bound >= res.objective and np.isfinite(res.gap)
 
 
@@ -225,6 +233,10 @@ def test_last_resort_drops_the_entries_the_checker_names(base, monkeypatch):
     night, sky, cond, reqs, w, _ = base
     real_greedy = pipeline.greedy_plan
     monkeypatch.setattr(pipeline, "greedy_plan", lambda problem: _overlapping(problem, real_greedy(problem)))
+    # the hint search finds nothing better, so the (bad) greedy plan is the floor
+    monkeypatch.setattr(pipeline, "randomized_dispatch", lambda problem, **kw: ([], 0))
+    monkeypatch.setattr(pipeline, "ruin_and_recreate", lambda problem, plan, **kw: (list(plan), 0))
+    monkeypatch.setattr(pipeline, "insertion_plan", lambda *a, **kw: [])
     monkeypatch.setattr(pipeline, "solve_problem",
                         lambda problem, **kw: SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.0, 0, 0))
     res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
@@ -232,3 +244,92 @@ def test_last_resort_drops_the_entries_the_checker_names(base, monkeypatch):
     assert "checker removed 1 entries" in res.message
     assert any(why.startswith("dropped: failed the plan check") for _, why in res.unscheduled)
     assert all(a.end_step <= b.start_step for a, b in zip(res.entries, res.entries[1:]))
+
+
+
+@pytest.fixture(scope="module")
+def generated():
+    """A generated queue on the benchmark night, planned; then the benchmark's conditions change
+    (seeing and PWV up by 0.3) and a re-plan time 3 h after dusk (the benchmark's re-plan, smaller)."""
+    from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
+    from scheduler.conditions.grid import conditions_on_grid
+    from scheduler.feasibility import evaluate
+    from scheduler.sky.ephemeris import compute_sky
+    from scheduler.sky.night import compute_night
+
+    night = compute_night(CFG.site, BENCH_DATE, 60)
+    reqs, w = generate_queue(CFG, 60, 2, night)
+    ra, dec, rows = pipeline.target_rows_for(reqs)
+    sky = compute_sky(CFG.site, night, ra, dec)
+    cond = conditions_on_grid(generate_forecast(night, 2), night.times_unix, CFG.defaults)
+    first = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    assert_clean(first)
+    cond2 = conditions_on_grid(generate_forecast(night, 2, shift=0.3), night.times_unix, CFG.defaults)
+    now = datetime.fromtimestamp(float(night.times_unix[0]) + 3 * 3600 + 20, tz=timezone.utc)
+    return dict(night=night, sky=sky, cond=cond, cond2=cond2, reqs=reqs, w=w, rows=rows, first=first, now=now,
+                feas2=evaluate(reqs, rows, sky, cond2, CFG))
+
+
+def _kept(first, res, still=None):
+    """Previous entries after now (or those in ``still``) that start within 2 min of where they were."""
+    ahead = still if still is not None else [e for e in first.entries if e.start_step >= res.now_step]
+    new = {(e.request_id, e.execution): e.start_step for e in res.entries}
+    return ahead, [e for e in ahead if abs(new.get((e.request_id, e.execution), -99) - e.start_step) <= 2]
+
+
+def _still_feasible(g, now_step):
+    """Previous entries after now whose whole span is still feasible under the changed conditions."""
+    idx = {r.id: i for i, r in enumerate(g["reqs"])}
+    return [e for e in g["first"].entries if e.start_step >= now_step
+            and g["feas2"].ok[idx[e.request_id], e.start_step:e.end_step].all()]
+
+
+def test_generated_replan_with_unchanged_conditions_keeps_every_entry(generated):
+    g = generated
+    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond"], sky=g["sky"], now=g["now"],
+                     previous_entries=list(g["first"].entries), time_limit_s=2)
+    assert_clean(res)
+    ahead, kept = _kept(g["first"], res)
+    assert len(ahead) >= 5 and len(kept) >= len(ahead) - 1
+
+
+def test_replan_after_a_small_change_is_worth_at_least_keeping_what_still_fits(generated):
+    """Keeping every previous entry still feasible where it stands and dispatching around them is
+    a valid plan of the same model (each kept entry earns 0.2 x its value): the re-plan may only
+    differ from it by being worth more."""
+    from scheduler.solve.greedy import greedy_plan
+    from scheduler.solve.problem import build_problem, objective_of
+
+    g = generated
+    first = g["first"]
+    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond2"], sky=g["sky"], now=g["now"],
+                     previous_entries=list(first.entries), time_limit_s=2)
+    assert_clean(res)
+    assert len(_still_feasible(g, res.now_step)) >= 4  # the change leaves something worth keeping
+    assert res.stability_bonus > 0
+    P = build_problem(CFG, g["reqs"], g["w"], g["feas2"], g["sky"].alt_deg[g["rows"]], g["sky"].az_deg[g["rows"]],
+                      step_s=g["night"].step_s, now_step=res.now_step, previous=list(first.entries),
+                      freeze_steps=math.ceil(CFG.planning.freeze_horizon_min * 60 / g["night"].step_s))
+    kept_all = greedy_plan(P, keep=pipeline._previous_hint(P, list(first.entries)))
+    assert res.objective >= sum(objective_of(P, kept_all)) / VALUE_SCALE - 1e-6
+
+
+def test_replan_floor_is_the_previous_plan_filled_around(generated, monkeypatch):
+    """With the searches finding nothing better and CP-SAT returning nothing, a re-plan must still
+    keep every previous entry that remains feasible where it stands (the previous plan seeds the
+    search and is part of the floor), not fall back to a from-scratch dispatch."""
+    g = generated
+    first = g["first"]
+    monkeypatch.setattr(pipeline, "randomized_dispatch", lambda problem, **kw: (pipeline.greedy_plan(problem), 0))
+    monkeypatch.setattr(pipeline, "ruin_and_recreate", lambda problem, plan, **kw: (list(plan), 0))
+    monkeypatch.setattr(pipeline, "insertion_plan", lambda *a, **kw: [])
+    monkeypatch.setattr(pipeline, "solve_problem",
+                        lambda problem, **kw: SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.0, 0, 0))
+    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond2"], sky=g["sky"], now=g["now"],
+                     previous_entries=list(first.entries), time_limit_s=2)
+    assert_clean(res)
+    still = _still_feasible(g, res.now_step)
+    _, kept = _kept(first, res, still)
+    assert len(still) >= 4 and len(kept) == len(still)
+    assert res.used_greedy and "previous plan" in res.message
+    assert res.objective >= res.greedy_objective - 1e-9

@@ -364,3 +364,58 @@ def test_bounds_hold_with_kept_entries():
     opt = round(out.objective * VALUE_SCALE)
     assert cpsat.sequence_bound(P, opt, sectors=16, iterations=60, time_limit_s=10)[0] >= opt
     assert cpsat.lagrangian_bound(P, opt).bound >= opt
+
+
+def _replan_problem():
+    """A re-plan problem with unchanged conditions: every previous entry after now is still feasible."""
+    night, sky, cond, reqs, w = random_scene(12, 7, 200)
+    first = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    assert len(first.entries) >= 3
+    now_step = first.entries[0].start_step + 2
+    P, _ = problem_for(night, sky, cond, reqs, w, now_step=now_step, previous=list(first.entries))
+    movable = [j for j in range(len(P.execs)) if P.stability_coef(j) > 0]
+    assert movable
+    return P, first, movable
+
+
+def test_dispatch_counts_the_stability_bonus_and_refills_around_the_previous_plan():
+    """The heuristics score the model's objective: a start within the stability window of the
+    previous start carries the bonus; the previous plan filled around by the dispatch keeps it all."""
+    from scheduler.pipeline import _previous_hint
+    from scheduler.solve.greedy import dense_tables
+    P, first, movable = _replan_problem()
+    _, coef = dense_tables(P)
+    for j in movable:
+        ex = P.execs[j]
+        for s in ex.starts[np.abs(ex.starts - ex.prev_start) <= P.stability_window]:
+            assert coef[j, s] == ex.coef_at(int(s)) + P.stability_coef(j)
+        far = ex.starts[np.abs(ex.starts - ex.prev_start) > P.stability_window]
+        if far.size:
+            assert coef[j, far[0]] == ex.coef_at(int(far[0]))
+    seed = greedy_plan(P, keep=_previous_hint(P, list(first.entries)))
+    assert not check_model_feasible(P, seed)
+    at = {p.exec_index: p.start for p in seed}
+    assert all(at.get(j) == P.execs[j].prev_start for j in movable)
+    assert objective_of(P, seed)[1] == sum(P.stability_coef(j) for j in movable)
+
+
+def test_reported_objective_is_the_plan_value_when_a_keep_literal_is_left_false(monkeypatch):
+    """Nothing forces a keeps_previous_start literal true when the start is in the window, so a
+    CP-SAT solution may under-count; the outcome reports what the plan earns (and does not fail)."""
+    P, _, movable = _replan_problem()
+    j = movable[0]
+    real = cpsat.build_model
+
+    def leave_it_false(problem, arcs, upper_bound=None):
+        m, v = real(problem, arcs, upper_bound)
+        m.Add(v.keep[j] == 0)
+        m.Add(v.start[j] == problem.execs[j].prev_start)
+        return m, v
+
+    monkeypatch.setattr(cpsat, "build_model", leave_it_false)
+    out = cpsat.solve_problem(P, time_limit_s=2, num_workers=2)
+    assert out.status in ("OPTIMAL", "FEASIBLE")
+    sci, stab = objective_of(P, out.placements)
+    assert stab >= P.stability_coef(j)
+    assert out.objective == pytest.approx((sci + stab) / VALUE_SCALE)
+    assert out.bound >= out.objective
