@@ -174,14 +174,26 @@ def run_replan(config, night, base, *, time_limit_s: float) -> dict:
     r2 = build_plan(config, reqs, weights, night, cond2, sky=sky, now=now, previous_entries=list(res.entries),
                     time_limit_s=time_limit_s)
     total = time.perf_counter() - t0
-    keep = {(e.request_id, e.execution, e.start_step) for e in res.entries}
+    # Stability against the plan in force: its entries still ahead at the re-plan time, which of
+    # them the new conditions leave feasible where they stand, and which the new plan keeps
+    # within the stability window (2 min, the model's "stays") or at exactly the same minute.
+    from .feasibility import evaluate
+    from .pipeline import target_rows_for
+    feas2 = evaluate(reqs, target_rows_for(reqs)[2], sky, cond2, config)
+    row_of = {r.id: i for i, r in enumerate(reqs)}
+    ahead = [e for e in res.entries if e.start_step >= r2.now_step]
+    still = [e for e in ahead if feas2.ok[row_of[e.request_id], e.start_step:e.end_step].all()]
+    new_start = {(e.request_id, e.execution): e.start_step for e in r2.entries}
+    moved = [abs(new_start.get((e.request_id, e.execution), -10**6) - e.start_step) for e in ahead]
     later = [e for e in r2.entries if e.start_step >= r2.now_step]
     return {
         "requests": len(reqs), "total_s": total, "timings": r2.timings, "status": r2.solver_status,
         "objective": r2.objective, "bound": r2.bound, "gap": r2.gap, "greedy_objective": r2.greedy_objective,
+        "science_value": r2.science_value, "stability_bonus": r2.stability_bonus,
         "used_greedy": r2.used_greedy, "violations": len(r2.violations), "entries": len(r2.entries),
-        "unchanged_entries": sum(1 for e in later if (e.request_id, e.execution, e.start_step) in keep),
-        "entries_after_now": len(later), "message": r2.message,
+        "entries_after_now": len(later), "previous_after_now": len(ahead), "previous_still_feasible": len(still),
+        "unchanged_entries": sum(1 for d in moved if d <= 2), "unchanged_exact": sum(1 for d in moved if d == 0),
+        "hint": r2.stats.get("hint"), "message": r2.message,
     }
 
 
@@ -269,11 +281,16 @@ def write_docs(out: Path, data: dict) -> None:
     rp = data.get("replan")
     if rp:
         lines += ["", "Re-plan after a conditions change (seeing and PWV up by 0.3), sky grid reused, from 3 h after dusk:",
-                  "", "| requests | total s | feasibility | model | solve | status | objective | bound | gap | greedy | entries after now | unchanged |",
-                  "|---|---|---|---|---|---|---|---|---|---|---|---|",
+                  "", "previous ahead = entries of the plan in force starting after now; still feasible = of those, feasible",
+                  "where they stand under the new conditions; kept = of those, in the new plan within 2 min of their start",
+                  "(the stability window; exact minute in brackets); objective = science value + stability bonus.", "",
+                  "| requests | total s | feasibility | model | solve | status | objective | bonus | bound | gap | greedy | entries after now | previous ahead | still feasible | kept |",
+                  "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
                   f"| {rp['requests']} | {_fmt(rp['total_s'])} | {_fmt(rp['timings']['feasibility'])} | {_fmt(rp['timings']['model'])} | "
-                  f"{_fmt(rp['timings']['solve'])} | {rp['status']} | {_fmt(rp['objective'], 3)} | {_fmt(rp['bound'], 3)} | "
-                  f"{100 * rp['gap']:.1f} % | {_fmt(rp['greedy_objective'], 3)} | {rp['entries_after_now']} | {rp['unchanged_entries']} |"]
+                  f"{_fmt(rp['timings']['solve'])} | {rp['status']} | {_fmt(rp['objective'], 3)} | {_fmt(rp.get('stability_bonus'), 3)} | "
+                  f"{_fmt(rp['bound'], 3)} | {100 * rp['gap']:.1f} % | {_fmt(rp['greedy_objective'], 3)} | {rp['entries_after_now']} | "
+                  f"{rp.get('previous_after_now', '-')} | {rp.get('previous_still_feasible', '-')} | "
+                  f"{rp['unchanged_entries']} ({rp.get('unchanged_exact', '-')}) |"]
     sk = data.get("sky")
     if sk:
         lines += ["", "Sky and feasibility stages alone:", "",
@@ -293,6 +310,10 @@ def write_docs(out: Path, data: dict) -> None:
               "  one grid step per transition where real plans spend 3-4. The 100-request queue and the 5-second",
               "  re-plan keep larger gaps: fewer bound iterations, and on a re-plan the bound must allow for every",
               "  stability bonus.",
+              "- **Re-plan stability.** Entries of the plan in force that the change makes infeasible where they stand",
+              "  cannot stay (the in-progress one is then interrupted); each of the others earns 0.2 x its value for",
+              "  starting within 2 min of its old start, and the old plan, filled around by the dispatch, seeds the",
+              "  search and is part of the floor, so an entry moves only when that gains more than its bonus.",
               "- **Time.** The solver gets what is left of the 10 s / 60 s budget after the sky, feasibility, model",
               "  and hint search; the bench counts the sky inside the budget; the re-plan runs with a 4.5 s budget.",
               "- The queue is never shrunk to meet a target: every generated request enters feasibility, and every",
