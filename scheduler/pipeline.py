@@ -334,16 +334,14 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
 
 def _drop_failing(entries, violations, spec_by_id, row_by_id, sky, cond, config, now_step):
     """Last resort: remove the entries the checker names until the plan passes."""
-    import re
     entries = list(entries)
     dropped: list[tuple[int, str]] = []
     for _ in range(len(entries) + 1):
         if not violations:
             break
-        m = re.search(r"request (-?\d+) x(\d+)", violations[0])
-        if not m:
+        rid, k = getattr(violations[0], "request_id", None), getattr(violations[0], "execution", None)
+        if rid is None or k is None:
             break
-        rid, k = int(m.group(1)), int(m.group(2))
         keep = [e for e in entries if not (e.request_id == rid and e.execution == k)]
         if len(keep) == len(entries):
             break

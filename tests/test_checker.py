@@ -60,6 +60,9 @@ def test_overlap_fails(scene):
     broken = [a, move(b, night, a.start_step + 2)] + list(res.entries[2:])
     v = check(scene, broken)
     assert any("overlap" in x for x in v)
+    # the violation names the entry it blames (the later one), for callers that act on it
+    ov = next(x for x in v if "overlap" in x)
+    assert (ov.request_id, ov.execution) == (b.request_id, b.execution)
 
 
 def test_gap_shorter_than_the_true_transition_fails(scene):

@@ -35,6 +35,19 @@ except ImportError:  # pragma: no cover - feasibility always defines it
 _TOL_S = 1e-6  # float slack when comparing seconds
 
 
+class Violation(str):
+    """A violation's text, carrying the entry it is blamed on (request id, execution), so that
+    callers act on it without parsing the words."""
+
+    request_id: int | None
+    execution: int | None
+
+    def __new__(cls, text: str, request_id: int | None = None, execution: int | None = None):
+        obj = super().__new__(cls, text)
+        obj.request_id, obj.execution = request_id, execution
+        return obj
+
+
 def _steps_failing(name: str, bad: np.ndarray, steps: np.ndarray) -> str | None:
     if not np.any(bad):
         return None
@@ -111,7 +124,7 @@ def _entry_constraints(e: PlanEntry, spec: RequestSpec, row: int, sky: SkyGrid, 
             inside = (ph >= lo_ph) & (ph <= hi_ph) if lo_ph <= hi_ph else (ph >= lo_ph) | (ph <= hi_ph)
             bad |= ~inside
         out.append(_steps_failing("outside the periodic window", bad, steps))
-    return [f"request {e.request_id} x{e.execution}: {msg}" for msg in out if msg]
+    return [Violation(f"request {e.request_id} x{e.execution}: {msg}", e.request_id, e.execution) for msg in out if msg]
 
 
 def _position(sky: SkyGrid, row: int, step: int) -> tuple[float, float]:
@@ -155,26 +168,31 @@ def check_plan(entries: Sequence[PlanEntry], requests: Mapping[int, RequestSpec]
         tag = f"request {e.request_id} x{e.execution}"
         spec = requests.get(e.request_id)
         if spec is None or e.request_id not in target_rows:
-            v.append(f"{tag}: unknown request")
+            v.append(Violation(f"{tag}: unknown request", e.request_id, e.execution))
             continue
         if not (0 <= e.start_step < e.end_step <= n_t):
-            v.append(f"{tag}: steps [{e.start_step}, {e.end_step}) outside the night grid [0, {n_t})")
+            v.append(Violation(f"{tag}: steps [{e.start_step}, {e.end_step}) outside the night grid [0, {n_t})",
+                               e.request_id, e.execution))
             continue
         if abs(e.start.timestamp() - float(times[e.start_step])) > 1e-3 or \
                 abs(e.end.timestamp() - (float(times[e.start_step]) + (e.end_step - e.start_step) * step_s)) > 1e-3:
-            v.append(f"{tag}: start/end times do not match steps {e.start_step}..{e.end_step}")
+            v.append(Violation(f"{tag}: start/end times do not match steps {e.start_step}..{e.end_step}",
+                               e.request_id, e.execution))
         inst = config.instrument_for(spec.band, spec.instrument)
         exposure = spec.next_exposure_s if e.execution == 0 else spec.exposure_s
         need = math.ceil((inst.setup_s + exposure) / step_s - 1e-9)
         if e.end_step - e.start_step < need:
-            v.append(f"{tag}: {e.end_step - e.start_step} steps is shorter than setup + exposure ({need} steps)")
+            v.append(Violation(f"{tag}: {e.end_step - e.start_step} steps is shorter than setup + exposure "
+                               f"({need} steps)", e.request_id, e.execution))
         if e.start_step < now_step and not e.fixed:
-            v.append(f"{tag}: starts at step {e.start_step}, before now (step {now_step})")
+            v.append(Violation(f"{tag}: starts at step {e.start_step}, before now (step {now_step})",
+                               e.request_id, e.execution))
         v.extend(_entry_constraints(e, spec, target_rows[e.request_id], sky, cond, config,
                                     max(e.start_step, now_step)))
     for a, b in zip(ordered, ordered[1:]):
         if b.start_step < a.end_step:
-            v.append(f"request {a.request_id} x{a.execution} and request {b.request_id} x{b.execution} overlap")
+            v.append(Violation(f"request {a.request_id} x{a.execution} and request {b.request_id} x{b.execution} "
+                               "overlap", b.request_id, b.execution))
             continue
         sa, sb = requests.get(a.request_id), requests.get(b.request_id)
         if sa is None or sb is None or a.request_id not in target_rows or b.request_id not in target_rows:
@@ -182,8 +200,9 @@ def check_plan(entries: Sequence[PlanEntry], requests: Mapping[int, RequestSpec]
         need_s = true_transition_s(config, sky, a, sa, target_rows[a.request_id], b, sb, target_rows[b.request_id])
         gap_s = (b.start_step - a.end_step) * step_s
         if gap_s + _TOL_S < need_s:
-            v.append(f"gap of {gap_s:.0f} s before request {b.request_id} x{b.execution} is shorter than the "
-                     f"transition {need_s:.0f} s from request {a.request_id} x{a.execution}")
+            v.append(Violation(f"gap of {gap_s:.0f} s before request {b.request_id} x{b.execution} is shorter "
+                               f"than the transition {need_s:.0f} s from request {a.request_id} x{a.execution}",
+                               b.request_id, b.execution))
     by_req: dict[int, list[PlanEntry]] = {}
     for e in ordered:
         by_req.setdefault(e.request_id, []).append(e)
@@ -193,10 +212,11 @@ def check_plan(entries: Sequence[PlanEntry], requests: Mapping[int, RequestSpec]
             continue
         in_progress = sum(1 for e in lst if e.start_step < now_step)
         if len(lst) > max(spec.remaining_repeats, in_progress):
-            v.append(f"request {rid}: {len(lst)} executions planned, {spec.remaining_repeats} remain")
+            v.append(Violation(f"request {rid}: {len(lst)} executions planned, {spec.remaining_repeats} remain",
+                               rid, lst[-1].execution))
         if spec.min_spacing_s:
             for a, b in zip(lst, lst[1:]):
                 if (b.start_step - a.start_step) * step_s + _TOL_S < spec.min_spacing_s:
-                    v.append(f"request {rid}: executions {a.execution} and {b.execution} closer than "
-                             f"min_spacing_s {spec.min_spacing_s:g}")
+                    v.append(Violation(f"request {rid}: executions {a.execution} and {b.execution} closer than "
+                                       f"min_spacing_s {spec.min_spacing_s:g}", rid, b.execution))
     return v
