@@ -232,15 +232,10 @@ def read_table_file(path: str, *, what: str) -> tuple[list[tuple[int, dict[str, 
     Row numbers are what a user finds in the file: for CSV the line (the header is line 1), for
     JSON the position in the list (from 1), as in conditions files.
     """
+    from .textfile import read_text_file
+
     p = Path(path)
-    if not p.is_file():
-        raise InputError("file", f"{path} not found")
-    if p.stat().st_size > MAX_IMPORT_BYTES:
-        raise InputError("file", f"{path} is larger than the {MAX_IMPORT_BYTES} byte limit for {what}")
-    try:
-        text = p.read_text(encoding="utf-8-sig")
-    except UnicodeDecodeError:
-        raise InputError("file", f"{path} is not UTF-8 text") from None
+    text = read_text_file(p, MAX_IMPORT_BYTES)
     stripped = text.lstrip()
     if p.suffix.lower() == ".json" or stripped.startswith(("[", "{")):
         try:
