@@ -59,3 +59,59 @@ def test_copy_sqlite_queue_to_postgres(pg_url, workdir):
     # copying again into a non-empty database is refused, nothing changed
     proc = run_cli("db", "copy", "--to", pg_url, cwd=workdir)
     assert proc.returncode == 2 and "not empty" in proc.stderr
+
+
+def test_service_on_postgres(pg_url, workdir):
+    """The real service, unchanged, on PostgreSQL: first plan, an operator order, status, SIGTERM."""
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from conftest import ROOT
+
+    env = {"NIGHTPLAN_DB": pg_url}
+    cfg = workdir / "observatory.toml"
+    cfg.write_text(cfg.read_text().replace("time_limit_s = 10", "time_limit_s = 1.5"))
+    run_cli("init", cwd=workdir, env=env, check=True)
+    run_cli("program", "add", "PG-1", "--pi", "Dr. Post Gres", cwd=workdir, env=env, check=True)
+    csv = workdir / "r.csv"
+    csv.write_text("program,target,ra,dec,band,exposure_s\n" +
+                   "".join(f"PG-1,t{i},{20 + 8 * i},-{30 + 3 * i},{'VRIJK'[i % 5]},600\n" for i in range(8)))
+    run_cli("request", "import", str(csv), cwd=workdir, env=env, check=True)
+    (workdir / "f.csv").write_text("time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome\n"
+                                   "2026-12-16T22:00:00Z,0.8,2,0,5,30,open\n2026-12-17T10:00:00Z,0.9,3,0,5,30,open\n")
+    run_cli("conditions", "load", "f.csv", cwd=workdir, env=env, check=True)
+    full_env = dict(os.environ, NIGHTPLAN_DB=pg_url, PYTHONPATH=str(ROOT))
+    full_env.pop("NIGHTPLAN_CONFIG", None)
+    log = open(workdir / "service.log", "w")
+    proc = subprocess.Popen([sys.executable, "-m", "scheduler", "serve", "--poll", "0.5", "--clock",
+                             "2026-12-17T02:00:00Z"], cwd=workdir, env=full_env, stdout=log, stderr=subprocess.STDOUT)
+
+    def wait_for(pred, what):
+        end = time.monotonic() + 90
+        while time.monotonic() < end:
+            got = pred()
+            if got:
+                return got
+            assert proc.poll() is None, (workdir / "service.log").read_text()
+            time.sleep(0.3)
+        raise AssertionError(f"timed out waiting for {what}: {(workdir / 'service.log').read_text()[-2000:]}")
+
+    def active_reason():
+        st = cli_json("status", cwd=workdir, env=env)
+        return st["service"]["alive"] and (st.get("plan") or {}).get("reason")
+
+    try:
+        wait_for(active_reason, "the first plan")
+        run_cli("replan", "--reason", "operator order on postgres", cwd=workdir, env=env, check=True)
+        wait_for(lambda: active_reason() == "operator order on postgres", "the ordered plan")
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(60) == 0
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        log.close()
+    assert cli_json("status", cwd=workdir, env=env)["service"]["alive"] is False
+    assert run_cli("plan", "check", cwd=workdir, env=env).returncode == 0
