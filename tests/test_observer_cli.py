@@ -50,7 +50,7 @@ def test_observer_errors_are_one_line_and_write_nothing(workdir):
     none = run_cli("plan", "show", cwd=workdir)
     assert none.returncode == 2 and "no plan yet" in none.stderr and "Traceback" not in none.stderr
     nxt = run_cli("next", cwd=workdir)
-    assert nxt.returncode == 2 and "no plan yet" in nxt.stderr
+    assert nxt.returncode == 2 and "no plan for the night of" in nxt.stderr
 
     bad = run_cli("plan", "build", "--night", NIGHT, "--time-limit", "0", "--now", BEFORE, cwd=workdir)
     assert bad.returncode == 2 and "time-limit" in bad.stderr and "0.1 to 3600" in bad.stderr
