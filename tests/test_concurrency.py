@@ -64,7 +64,15 @@ def test_concurrent_submitters_lose_nothing(workdir):
         procs = [subprocess.Popen(["bash", "-c", _script(k, workdir)], cwd=workdir, env=_env())
                  for k in range(SUBMITTERS)]
         codes = [p.wait(timeout=600) for p in procs]
-        time.sleep(1.0)
+        # let the service serve the PIs' orders (bounded) before stopping it
+        db = open_db(str(workdir / "nightplan.sqlite"), create_file=False)
+        deadline = time.monotonic() + 90
+        while time.monotonic() < deadline and service.poll() is None:
+            with db.session() as s:
+                if not plans.pending_orders(s):
+                    break
+            time.sleep(0.3)
+        db.dispose()
         assert service.poll() is None, (workdir / "service.log").read_text()[-3000:]
     finally:
         service.send_signal(signal.SIGTERM)
