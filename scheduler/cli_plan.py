@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import sys
 import time
-from datetime import date, datetime, timedelta, timezone
+from datetime import date, datetime, timezone
 
 import click
 
@@ -18,14 +18,6 @@ from .request_spec import iso, parse_time
 
 def _now(text: str | None, field: str) -> datetime:
     return parse_time(text, field) if text else datetime.now(timezone.utc)
-
-
-def default_night(planner, now: datetime) -> date:
-    """The night containing ``now``, or, once that night is over (morning), the coming one."""
-    d = planner.night_date(now)
-    if now >= planner.night(d).end:
-        d = d + timedelta(days=1)
-    return d
 
 
 def _version(version: int | None) -> int | None:
@@ -88,7 +80,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
     config = c.config()
     db = c.db()
     planner = Planner(config)
-    night_date = parse_night(night) if night else default_night(planner, now)
+    night_date = parse_night(night) if night else planner.coming_night(now)
     the_night = planner.night(night_date)
     if now >= the_night.end:
         if now_text:
@@ -302,7 +294,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
 
     at = _now(at_text, "at")
     config = c.config()
-    night_d = default_night(Planner(config), at)
+    night_d = Planner(config).coming_night(at)
     with c.db().session() as s:
         plan_row = plans.active_plan(s, night_d)
         if plan_row is None:

@@ -144,7 +144,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
         return
 
     from .planner import Planner
-    from .service.jobs import describe_built, target_night
+    from .service.jobs import describe_built
 
     config = c.config()
     click.echo(f"no service is alive ({stale}); re-planning inline")
@@ -158,7 +158,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
     planner = Planner(config)
     now = clock.now()
     try:
-        built = planner.build_and_store(db, night_date=target_night(planner, now), reason=reason, now=now)
+        built = planner.build_and_store(db, night_date=planner.coming_night(now), reason=reason, now=now)
         result = ("inline: " + describe_built(built)) if built.version is not None else \
             f"failed: the plan checker refused the plan ({built.result.violations[0]})"
     except Exception as e:  # noqa: BLE001 - recorded on the order, then shown by the CLI

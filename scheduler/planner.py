@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import threading
 from dataclasses import dataclass
-from datetime import date, datetime, timezone
+from datetime import date, datetime, timedelta, timezone
 from typing import Callable
 
 from .conditions.grid import ConditionsGrid, conditions_on_grid
@@ -67,6 +67,13 @@ class Planner:
 
     def night_date(self, when: datetime | None = None) -> date:
         return night_date_for(self.config.site, when or datetime.now(timezone.utc))
+
+    def coming_night(self, now: datetime) -> date:
+        """The night ``now`` belongs to; once that night is over (after sunrise), the coming one."""
+        d = self.night_date(now)
+        if now >= self.night(d).end:
+            d += timedelta(days=1)
+        return d
 
     def conditions(self, night: Night, samples: list[Sample], report_id: int | None) -> ConditionsGrid:
         return conditions_on_grid(samples, night.times_unix, self.config.defaults, report_id)

@@ -9,7 +9,7 @@ from __future__ import annotations
 import os
 import time
 from dataclasses import dataclass
-from datetime import date, datetime, timedelta
+from datetime import date, datetime
 from pathlib import Path
 
 from sqlalchemy import func, select
@@ -46,14 +46,6 @@ def describe_built(built) -> str:
     return text
 
 
-def target_night(planner: Planner, now: datetime) -> date:
-    """The night ``now`` belongs to; once that night is over (after sunrise), the coming one."""
-    d = planner.night_date(now)
-    if now >= planner.night(d).end:
-        d += timedelta(days=1)
-    return d
-
-
 @dataclass
 class FeedResult:
     stored: int = 0
@@ -77,7 +69,7 @@ class Jobs:
     # ------------------------------------------------------------------ helpers
 
     def target_night(self, now: datetime) -> date:
-        return target_night(self.planner, now)
+        return self.planner.coming_night(now)
 
     def replan(self, reason: str, *, trigger: str):
         """Build from now and store a new version. Returns the BuiltPlan (version None if refused)."""
