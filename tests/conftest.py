@@ -75,3 +75,18 @@ def pg_url():
         conn.execute(text(f"SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE datname = '{name}'"))
         conn.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
     admin.dispose()
+
+
+def wait_while_running(pred, proc, log_path: Path, what: str, timeout: float = 90.0, poll: float = 0.2):
+    """Poll ``pred`` until truthy (returned), failing if the service process exits or time runs out."""
+    import time
+
+    end = time.monotonic() + timeout
+    while True:
+        got = pred()
+        if got:
+            return got
+        tail = log_path.read_text()[-3000:] if log_path.exists() else ""
+        assert proc.poll() is None, f"service exited ({proc.returncode}) waiting for {what}:\n{tail}"
+        assert time.monotonic() < end, f"timed out after {timeout:g} s waiting for {what}:\n{tail}"
+        time.sleep(poll)

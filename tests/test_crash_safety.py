@@ -18,7 +18,7 @@ from pathlib import Path
 import pytest
 from sqlalchemy import func, select, text
 
-from conftest import ROOT, run_cli
+from conftest import ROOT, run_cli, wait_while_running
 from scheduler.config import load_config
 from scheduler.db import plans, store
 from scheduler.db.models import Plan
@@ -75,12 +75,8 @@ def _log(folder: Path) -> str:
     return (folder / "service.log").read_text()
 
 
-def _wait(pred, proc, folder: Path, what: str, timeout: float = 90.0) -> None:
-    end = time.monotonic() + timeout
-    while not pred():
-        assert proc.poll() is None, f"service exited waiting for {what}:\n{_log(folder)[-3000:]}"
-        assert time.monotonic() < end, f"timed out waiting for {what}"
-        time.sleep(0.1)
+def _wait(pred, proc, folder: Path, what: str) -> None:
+    wait_while_running(pred, proc, folder / "service.log", what, poll=0.1)
 
 
 def _state(db):

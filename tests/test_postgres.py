@@ -67,9 +67,8 @@ def test_service_on_postgres(pg_url, workdir):
     import signal
     import subprocess
     import sys
-    import time
 
-    from conftest import ROOT
+    from conftest import ROOT, wait_while_running
 
     env = {"NIGHTPLAN_DB": pg_url}
     cfg = workdir / "observatory.toml"
@@ -90,14 +89,7 @@ def test_service_on_postgres(pg_url, workdir):
                              "2026-12-17T02:00:00Z"], cwd=workdir, env=full_env, stdout=log, stderr=subprocess.STDOUT)
 
     def wait_for(pred, what):
-        end = time.monotonic() + 90
-        while time.monotonic() < end:
-            got = pred()
-            if got:
-                return got
-            assert proc.poll() is None, (workdir / "service.log").read_text()
-            time.sleep(0.3)
-        raise AssertionError(f"timed out waiting for {what}: {(workdir / 'service.log').read_text()[-2000:]}")
+        return wait_while_running(pred, proc, workdir / "service.log", what, poll=0.3)
 
     def active_reason():
         st = cli_json("status", cwd=workdir, env=env)
