@@ -1,5 +1,5 @@
 """`python -m scheduler` is the `nightplan` command."""
 
-from scheduler.cli import main
+from scheduler.cli.main import main
 
 main()

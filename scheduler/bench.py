@@ -22,8 +22,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import ObservatoryConfig, starter_config
-from .request_spec import RequestSpec
+from scheduler.model.config import ObservatoryConfig, starter_config
+from scheduler.model.request import RequestSpec
 
 BENCH_DATE = date(2026, 12, 5)  # a short southern summer night (about 10 h) at the starter site
 SEED = 20260620
@@ -86,7 +86,7 @@ def generate_queue(config: ObservatoryConfig, n: int, seed: int = SEED, night=No
 
 def generate_forecast(night, seed: int = SEED, *, wet_early: bool = True, shift: float = 0.0):
     """Samples every 30 min: seeing random walk, PWV wet early / dry late, thin cloud, open dome."""
-    from .conditions.ingest import Sample
+    from scheduler.conditions.ingest import Sample
     rng = np.random.default_rng(seed + 1)
     t0, t1 = float(night.times_unix[0]), float(night.times_unix[-1]) + night.step_s
     ts = np.arange(t0 - 1800, t1 + 1800, 1800.0)
@@ -123,9 +123,9 @@ def _dark_steps(sky) -> int:
 
 def run_size(config, night, n: int, *, time_limit_s: float, seed: int = SEED) -> dict:
     """One end-to-end build of an n-request queue (sky computed here, inside the time budget)."""
-    from .conditions.grid import conditions_on_grid
-    from .pipeline import build_plan, target_rows_for
-    from .sky.ephemeris import compute_sky
+    from scheduler.conditions.grid import conditions_on_grid
+    from scheduler.planning.pipeline import build_plan, target_rows_for
+    from scheduler.sky.ephemeris import compute_sky
 
     reqs, weights = generate_queue(config, n, seed, night)
     cond = conditions_on_grid(generate_forecast(night, seed), night.times_unix, config.defaults)
@@ -153,7 +153,7 @@ def run_size(config, night, n: int, *, time_limit_s: float, seed: int = SEED) ->
 def _child(n: int, time_limit_s: float, replan_limit_s: float | None) -> dict:
     """Run one size in a fresh process so its peak RSS is its own."""
     config = starter_config()
-    from .sky.night import compute_night
+    from scheduler.sky.night import compute_night
     night = compute_night(config.site, BENCH_DATE, 60)
     row, base = run_size(config, night, n, time_limit_s=time_limit_s)
     out = {"row": row, "dark_steps": _dark_steps(base[2])}
@@ -164,8 +164,8 @@ def _child(n: int, time_limit_s: float, replan_limit_s: float | None) -> dict:
 
 def run_replan(config, night, base, *, time_limit_s: float) -> dict:
     """Conditions change mid-night: re-plan from 3 h after dusk, sky grid reused, previous plan kept stable."""
-    from .conditions.grid import conditions_on_grid
-    from .pipeline import build_plan
+    from scheduler.conditions.grid import conditions_on_grid
+    from scheduler.planning.pipeline import build_plan
 
     reqs, weights, sky, _cond, res = base
     now = datetime.fromtimestamp(float(night.times_unix[0]) + 3 * 3600 + 20, tz=timezone.utc)
@@ -177,8 +177,8 @@ def run_replan(config, night, base, *, time_limit_s: float) -> dict:
     # Stability against the plan in force: its entries still ahead at the re-plan time, which of
     # them the new conditions leave feasible where they stand, and which the new plan keeps
     # within the stability window (2 min, the model's "stays") or at exactly the same minute.
-    from .feasibility import evaluate
-    from .pipeline import target_rows_for
+    from scheduler.constraints.feasibility import evaluate
+    from scheduler.planning.pipeline import target_rows_for
     feas2 = evaluate(reqs, target_rows_for(reqs)[2], sky, cond2, config)
     row_of = {r.id: i for i, r in enumerate(reqs)}
     ahead = [e for e in res.entries if e.start_step >= r2.now_step]
@@ -198,10 +198,10 @@ def run_replan(config, night, base, *, time_limit_s: float) -> dict:
 
 
 def run_sky_section(config, night, quick: bool) -> dict:
-    from .conditions.grid import conditions_on_grid
-    from .feasibility import evaluate, static_layer
-    from .pipeline import target_rows_for
-    from .sky.ephemeris import compute_sky
+    from scheduler.conditions.grid import conditions_on_grid
+    from scheduler.constraints.feasibility import evaluate, static_layer
+    from scheduler.planning.pipeline import target_rows_for
+    from scheduler.sky.ephemeris import compute_sky
 
     n_tg = 2000  # x the night's one-minute grid (about 600 times)
     rng = np.random.default_rng(SEED + 7)
@@ -329,7 +329,7 @@ def main(argv=None) -> int:
     ap.add_argument("--no-write", action="store_true")
     a = ap.parse_args(argv)
     config = starter_config()
-    from .sky.night import compute_night
+    from scheduler.sky.night import compute_night
     night = compute_night(config.site, BENCH_DATE, 60)
     sizes = [int(s) for s in a.sizes.split(",") if s.strip()]
     if a.quick:

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import click
 
-from .errors import InputError
+from scheduler.model.errors import InputError
 
 DATA_DIR = Path(__file__).resolve().parents[1] / "demo_queue"
 BEFORE_NIGHT = "T18:00:00Z"  # the first build "happens" the afternoon before, so the whole night is planned
@@ -48,10 +48,10 @@ def _out_dir(out: str | None) -> Path:
 def run_demo(out: str | None, time_limit: float) -> dict:
     from sqlalchemy import select
 
-    from .cli import cli
-    from .db import plans
-    from .db.models import Plan, Request
-    from .db.session import open_db
+    from scheduler.cli.main import cli
+    from scheduler.db import plans
+    from scheduler.db.models import Plan, Request
+    from scheduler.db.session import open_db
 
     data = _data_dir()
     scen = json.loads((data / "scenario.json").read_text(encoding="utf-8"))
@@ -112,7 +112,7 @@ def run_demo(out: str | None, time_limit: float) -> dict:
     if at is not None:
         from datetime import datetime, timezone
 
-        from .request_spec import iso
+        from scheduler.model.request import iso
 
         run("next", "--at", iso(datetime.fromtimestamp(at, tz=timezone.utc)))
 

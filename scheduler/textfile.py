@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .errors import InputError
+from scheduler.model.errors import InputError
 
 
 def read_text_file(path: str | Path, max_bytes: int) -> str:

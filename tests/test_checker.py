@@ -9,7 +9,7 @@ from datetime import timedelta
 import numpy as np
 import pytest
 
-from scheduler.pipeline import build_plan
+from scheduler.planning.pipeline import build_plan
 from scheduler.solve.checker import check_plan
 
 from test_solver import CFG, T0, make_cond, make_night, make_sky, req

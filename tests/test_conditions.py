@@ -11,8 +11,8 @@ import pytest
 from scheduler.conditions.change import compare
 from scheduler.conditions.grid import ConditionsGrid, conditions_on_grid, default_conditions
 from scheduler.conditions.ingest import MAX_BYTES, MAX_ROWS, Sample, parse_conditions, samples_to_csv
-from scheduler.config import ConditionDefaults, Safety
-from scheduler.errors import InputError
+from scheduler.model.config import ConditionDefaults, Safety
+from scheduler.model.errors import InputError
 
 HEADER = "time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome"
 DEFAULTS = ConditionDefaults(seeing_arcsec=1.5, pwv_mm=8.0, cloud_mag=0.3, wind_ms=5.0, humidity_pct=50.0,

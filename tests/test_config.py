@@ -6,8 +6,8 @@ import tomllib
 
 import pytest
 
-from scheduler.config import parse_config, starter_config, starter_config_text
-from scheduler.errors import ConfigError
+from scheduler.model.config import parse_config, starter_config, starter_config_text
+from scheduler.model.errors import ConfigError
 
 
 def _starter() -> dict:

@@ -19,12 +19,12 @@ import pytest
 from sqlalchemy import func, select, text
 
 from conftest import ROOT, run_cli, wait_while_running
-from scheduler.config import load_config
+from scheduler.model.config import load_config
 from scheduler.db import plans, store
 from scheduler.db.models import Plan
 from scheduler.db.session import open_db
-from scheduler.planner import Planner, verify_stored_plan
-from scheduler.request_spec import validate_request
+from scheduler.planning.planner import Planner, verify_stored_plan
+from scheduler.model.request import validate_request
 
 pytestmark = pytest.mark.slow
 

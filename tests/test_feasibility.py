@@ -9,11 +9,11 @@ import numpy as np
 import pytest
 
 from scheduler.conditions.grid import ConditionsGrid
-from scheduler.config import starter_config
-from scheduler.feasibility import (
+from scheduler.model.config import starter_config
+from scheduler.constraints.feasibility import (
     TRANSMISSION_FLOOR, Reason, evaluate, reason_names, start_windows, static_layer,
 )
-from scheduler.request_spec import RequestSpec
+from scheduler.model.request import RequestSpec
 from scheduler.sky.airmass import kasten_young_1989
 from scheduler.sky.ephemeris import SkyGrid
 from scheduler.sky.night import Night

@@ -18,9 +18,9 @@ from hypothesis import strategies as st
 
 from conftest import cli_json, run_cli
 from scheduler.conditions.ingest import parse_conditions
-from scheduler.config import parse_config, starter_config, starter_config_text
-from scheduler.errors import InputError
-from scheduler.request_spec import ALL_COLUMNS, IMPORT_COLUMNS, RequestSpec, validate_request
+from scheduler.model.config import parse_config, starter_config, starter_config_text
+from scheduler.model.errors import InputError
+from scheduler.model.request import ALL_COLUMNS, IMPORT_COLUMNS, RequestSpec, validate_request
 
 CONFIG = starter_config()
 FUZZ_CASES = {"requests": 400, "conditions": 300, "config": 300}  # reported in docs/reliability.md

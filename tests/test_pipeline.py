@@ -10,8 +10,8 @@ from datetime import datetime, timedelta, timezone
 import numpy as np
 import pytest
 
-import scheduler.pipeline as pipeline
-from scheduler.pipeline import build_plan
+import scheduler.planning.pipeline as pipeline
+from scheduler.planning.pipeline import build_plan
 from scheduler.solve.cpsat import SolveOutcome
 from scheduler.solve.problem import VALUE_SCALE
 
@@ -253,7 +253,7 @@ def generated():
     (seeing and PWV up by 0.3) and a re-plan time 3 h after dusk (the benchmark's re-plan, smaller)."""
     from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
     from scheduler.conditions.grid import conditions_on_grid
-    from scheduler.feasibility import evaluate
+    from scheduler.constraints.feasibility import evaluate
     from scheduler.sky.ephemeris import compute_sky
     from scheduler.sky.night import compute_night
 
@@ -288,7 +288,7 @@ def test_generated_replan_with_unchanged_conditions_keeps_the_plan_unless_worth_
     """Unchanged conditions: the previous plan still holds. The re-plan is worth at least keeping
     all of it (with the stability bonus), and keeps most of it: the time-limited search may find a
     plan that pays for moving an entry or two (the first plan had only 2 s), never a worse one."""
-    from scheduler.feasibility import evaluate
+    from scheduler.constraints.feasibility import evaluate
     from scheduler.solve.greedy import greedy_plan
     from scheduler.solve.problem import build_problem, objective_of
 

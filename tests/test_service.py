@@ -23,11 +23,11 @@ from sqlalchemy import select
 
 from conftest import ROOT, run_cli
 from scheduler.conditions.ingest import parse_conditions
-from scheduler.config import load_config
+from scheduler.model.config import load_config
 from scheduler.db import plans, store
 from scheduler.db.models import Plan, ReplanOrder
 from scheduler.db.session import open_db
-from scheduler.request_spec import validate_request
+from scheduler.model.request import validate_request
 
 pytestmark = pytest.mark.slow
 
@@ -282,7 +282,7 @@ class _Records(logging.Handler):
 
 @pytest.fixture
 def jobs(night):
-    from scheduler.planner import Planner
+    from scheduler.planning.planner import Planner
     from scheduler.service.clock import Clock
     from scheduler.service.jobs import Jobs
     from scheduler.service.log import EventLog
@@ -403,7 +403,7 @@ def test_heartbeat_and_expiry(jobs):
 
 
 def test_clock_option(monkeypatch):
-    from scheduler.errors import InputError
+    from scheduler.model.errors import InputError
     from scheduler.service.clock import CLOCK_ENV, Clock
 
     c = Clock.from_option(CLOCK)

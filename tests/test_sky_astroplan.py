@@ -16,7 +16,7 @@ from datetime import date
 import numpy as np
 import pytest
 
-from scheduler.config import Site
+from scheduler.model.config import Site
 from scheduler.sky.offline import configure_offline
 
 configure_offline()  # before astroplan touches astropy's IERS tables: no download, stale table accepted

@@ -10,8 +10,8 @@ import ephem
 import numpy as np
 import pytest
 
-from scheduler.config import Site
-from scheduler.errors import InputError
+from scheduler.model.config import Site
+from scheduler.model.errors import InputError
 from scheduler.sky import ephemeris as eph_mod
 from scheduler.sky.airmass import kasten_young_1989
 from scheduler.sky.ephemeris import SkyCache, compute_sky

@@ -12,8 +12,8 @@ import ephem
 import numpy as np
 import pytest
 
-from scheduler.config import Site
-from scheduler.errors import InputError
+from scheduler.model.config import Site
+from scheduler.model.errors import InputError
 from scheduler.sky.night import compute_night, night_date_for, sun_alt_deg
 from scheduler.sky.offline import configure_offline, iers_table_end_mjd
 

@@ -5,7 +5,7 @@ import math
 import numpy as np
 import pytest
 
-from scheduler.config import Band, Instrument, starter_config
+from scheduler.model.config import Band, Instrument, starter_config
 from scheduler.sky import physics as ph
 
 CFG = starter_config()

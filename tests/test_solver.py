@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 
 from scheduler.conditions.grid import ConditionsGrid
-from scheduler.config import starter_config
-from scheduler.feasibility import evaluate
-from scheduler.pipeline import build_plan
-from scheduler.request_spec import RequestSpec
+from scheduler.model.config import starter_config
+from scheduler.constraints.feasibility import evaluate
+from scheduler.planning.pipeline import build_plan
+from scheduler.model.request import RequestSpec
 from scheduler.sky.airmass import kasten_young_1989
 from scheduler.sky.ephemeris import SkyGrid
 from scheduler.sky.night import Night
@@ -381,7 +381,7 @@ def _replan_problem():
 def test_dispatch_counts_the_stability_bonus_and_refills_around_the_previous_plan():
     """The heuristics score the model's objective: a start within the stability window of the
     previous start carries the bonus; the previous plan filled around by the dispatch keeps it all."""
-    from scheduler.pipeline import _previous_hint
+    from scheduler.planning.pipeline import _previous_hint
     from scheduler.solve.greedy import dense_tables
     P, first, movable = _replan_problem()
     _, coef = dense_tables(P)

@@ -20,8 +20,8 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from ..config import Safety
-from .grid import ConditionsGrid
+from scheduler.model.config import Safety
+from scheduler.conditions.grid import ConditionsGrid
 
 
 def _runs(mask: np.ndarray) -> list[tuple[int, int]]:

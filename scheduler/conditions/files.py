@@ -4,9 +4,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..errors import InputError
-from ..textfile import read_text_file
-from .ingest import MAX_BYTES, ParsedReport, parse_conditions
+from scheduler.model.errors import InputError
+from scheduler.textfile import read_text_file
+from scheduler.conditions.ingest import MAX_BYTES, ParsedReport, parse_conditions
 
 
 def read_conditions_file(path: str | Path, fmt: str | None = None) -> ParsedReport:

@@ -26,7 +26,7 @@ from typing import Iterable
 
 import numpy as np
 
-from ..config import ConditionDefaults
+from scheduler.model.config import ConditionDefaults
 
 
 @dataclass(frozen=True)

@@ -9,7 +9,7 @@ from alembic.config import Config
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
 
-from .session import Database
+from scheduler.db.session import Database
 
 MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
 

@@ -13,10 +13,10 @@ from typing import Any
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from ..errors import InputError, NotFoundError
-from ..request_spec import RequestSpec, iso
-from ..solve.problem import PlanEntry as PlannedEntry, PlanResult
-from .models import Plan, PlanEntry, ReplanOrder, Request, utcnow
+from scheduler.model.errors import InputError, NotFoundError
+from scheduler.model.request import RequestSpec, iso
+from scheduler.model.plan import PlanEntry as PlannedEntry, PlanResult
+from scheduler.db.models import Plan, PlanEntry, ReplanOrder, Request, utcnow
 
 
 def plan_diff(old: list[PlanEntry] | None, new: tuple[PlannedEntry, ...], moved_tolerance_s: float = 60.0) -> dict[str, list]:

@@ -19,7 +19,7 @@ from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import ArgumentError, OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
-from ..errors import InputError
+from scheduler.model.errors import InputError
 
 DEFAULT_DB_FILE = "nightplan.sqlite"
 T = TypeVar("T")

@@ -13,9 +13,9 @@ from typing import Any, Iterable
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from ..errors import InputError, NotFoundError
-from ..request_spec import ACTIVE_STATUSES, RequestSpec, iso
-from .models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
+from scheduler.model.errors import InputError, NotFoundError
+from scheduler.model.request import ACTIVE_STATUSES, RequestSpec, iso
+from scheduler.db.models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
 
 PROGRAM_CODE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 

@@ -5,10 +5,10 @@ from __future__ import annotations
 
 from sqlalchemy import func, insert, select
 
-from ..errors import InputError
-from . import migrate
-from .models import Base
-from .session import Database
+from scheduler.model.errors import InputError
+from scheduler.db import migrate
+from scheduler.db.models import Base
+from scheduler.db.session import Database
 
 BATCH = 1000
 

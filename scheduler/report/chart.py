@@ -19,9 +19,9 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from ..conditions.grid import conditions_on_grid
-from ..config import ObservatoryConfig
-from ..sky.night import Night
+from scheduler.conditions.grid import conditions_on_grid
+from scheduler.model.config import ObservatoryConfig
+from scheduler.sky.night import Night
 
 WIDTH_IN, HEIGHT_IN, DPI = 16.0, 9.0, 110  # 1760 x 990 px: a console screen, no scrolling
 
@@ -64,7 +64,7 @@ def render_chart(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
     from matplotlib.figure import Figure
     from matplotlib.patches import Patch
 
-    from ..sky.ephemeris import compute_sky
+    from scheduler.sky.ephemeris import compute_sky
 
     tz = ZoneInfo(config.site.timezone)
     entries = doc["entries"]

@@ -35,9 +35,9 @@ from zoneinfo import ZoneInfo
 
 from sqlalchemy import select
 
-from ..config import ObservatoryConfig, site_dict, telescope_dict
-from ..request_spec import iso
-from ..sky.night import Night
+from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
+from scheduler.model.request import iso
+from scheduler.sky.night import Night
 
 CAUTION = ("Advisory plan only: the observatory's interlocks and its licensed operators decide what the "
            "telescope does, and local safety rules prevail.")
@@ -74,8 +74,8 @@ def _hours_overlap(a0: datetime, a1: datetime, b0: datetime | None, b1: datetime
 
 def plan_document(s, plan, config: ObservatoryConfig, night: Night) -> dict[str, Any]:
     """The document of one stored plan (``plan`` is a db.models.Plan read in session ``s``)."""
-    from ..db import plans
-    from ..db.models import ConditionsReport, Request
+    from scheduler.db import plans
+    from scheduler.db.models import ConditionsReport, Request
 
     tz = ZoneInfo(config.site.timezone)
     summary = plans.plan_summary(plan)

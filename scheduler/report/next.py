@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from ..request_spec import iso
+from scheduler.model.request import iso
 
 
 def _t(s: str) -> datetime:

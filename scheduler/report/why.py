@@ -28,13 +28,13 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from ..conditions.grid import ConditionsGrid
-from ..config import ObservatoryConfig
-from ..feasibility import TRANSMISSION_FLOOR, Reason, evaluate, reason_names, start_windows
-from ..request_spec import RequestSpec, iso
-from ..sky.ephemeris import SkyGrid
-from ..sky.night import Night
-from ..windows import DESCRIPTION, runs
+from scheduler.conditions.grid import ConditionsGrid
+from scheduler.model.config import ObservatoryConfig
+from scheduler.constraints.feasibility import TRANSMISSION_FLOOR, Reason, evaluate, reason_names, start_windows
+from scheduler.model.request import RequestSpec, iso
+from scheduler.sky.ephemeris import SkyGrid
+from scheduler.sky.night import Night
+from scheduler.constraints.windows import DESCRIPTION, runs
 
 _NIGHT_END = int(Reason.NIGHT_END)
 
@@ -48,7 +48,7 @@ def _t(s: str) -> datetime:
 
 
 def base_value(spec: RequestSpec, weights: dict[str, float]) -> float:
-    from ..solve.problem import science_base_value
+    from scheduler.solve.problem import science_base_value
 
     return float(science_base_value(spec, weights))
 

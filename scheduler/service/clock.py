@@ -10,8 +10,8 @@ import os
 import time
 from datetime import datetime, timedelta, timezone
 
-from ..errors import InputError
-from ..request_spec import iso, parse_time
+from scheduler.model.errors import InputError
+from scheduler.model.request import iso, parse_time
 
 CLOCK_ENV = "NIGHTPLAN_CLOCK"
 

@@ -21,13 +21,13 @@ from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Callable
 
-from ..config import ObservatoryConfig
-from ..db.session import Database
-from ..planner import Planner
-from .clock import Clock
-from .jobs import Jobs
-from .lock import REFRESH_S, DatabaseLock, LockLost
-from .log import EventLog
+from scheduler.model.config import ObservatoryConfig
+from scheduler.db.session import Database
+from scheduler.planning.planner import Planner
+from scheduler.service.clock import Clock
+from scheduler.service.jobs import Jobs
+from scheduler.service.lock import REFRESH_S, DatabaseLock, LockLost
+from scheduler.service.log import EventLog
 
 MAINTENANCE_S = 60.0
 

@@ -15,17 +15,17 @@ from pathlib import Path
 from sqlalchemy import func, select
 from sqlalchemy.exc import SQLAlchemyError
 
-from ..conditions.files import read_conditions_file
-from ..config import ObservatoryConfig
-from ..db import plans, store
-from ..db.models import ConditionsReport, Outcome, Plan, ReplanOrder, Request, utcnow
-from ..db.session import Database
-from ..errors import InputError
-from ..planner import Planner, sample_of
-from ..request_spec import ACTIVE_STATUSES, iso
-from .clock import Clock
-from .log import EventLog
-from .validity import Planned, conditions_changes, entry_failures, outranking_requests
+from scheduler.conditions.files import read_conditions_file
+from scheduler.model.config import ObservatoryConfig
+from scheduler.db import plans, store
+from scheduler.db.models import ConditionsReport, Outcome, Plan, ReplanOrder, Request, utcnow
+from scheduler.db.session import Database
+from scheduler.model.errors import InputError
+from scheduler.planning.planner import Planner, sample_of
+from scheduler.model.request import ACTIVE_STATUSES, iso
+from scheduler.service.clock import Clock
+from scheduler.service.log import EventLog
+from scheduler.service.validity import Planned, conditions_changes, entry_failures, outranking_requests
 
 FEED_SUFFIXES = (".csv", ".json")
 DONE_DIR = "done"

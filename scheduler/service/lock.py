@@ -17,9 +17,9 @@ from datetime import datetime
 from sqlalchemy import delete, update
 from sqlalchemy.exc import IntegrityError
 
-from ..db.models import ServiceLock, utcnow
-from ..db.session import Database
-from ..request_spec import iso
+from scheduler.db.models import ServiceLock, utcnow
+from scheduler.db.session import Database
+from scheduler.model.request import iso
 
 LOCK_NAME = "service"
 REFRESH_S = 5.0  # heartbeat period

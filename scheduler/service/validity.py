@@ -22,14 +22,14 @@ from typing import Sequence
 
 import numpy as np
 
-from ..conditions.change import compare
-from ..conditions.grid import ConditionsGrid
-from ..config import ObservatoryConfig
-from ..feasibility import Feasibility, Reason, evaluate, static_layer
-from ..request_spec import RequestSpec
-from ..sky.ephemeris import SkyCache
-from ..sky.night import Night
-from ..solve.problem import science_base_value
+from scheduler.conditions.change import compare
+from scheduler.conditions.grid import ConditionsGrid
+from scheduler.model.config import ObservatoryConfig
+from scheduler.constraints.feasibility import Feasibility, Reason, evaluate, static_layer
+from scheduler.model.request import RequestSpec
+from scheduler.sky.ephemeris import SkyCache
+from scheduler.sky.night import Night
+from scheduler.solve.problem import science_base_value
 
 
 @dataclass(frozen=True)

@@ -25,11 +25,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..config import Site
-from ..errors import InputError
-from .airmass import kasten_young_1989
-from .night import Night, earth_location
-from .offline import configure_offline
+from scheduler.model.config import Site
+from scheduler.model.errors import InputError
+from scheduler.sky.airmass import kasten_young_1989
+from scheduler.sky.night import Night, earth_location
+from scheduler.sky.offline import configure_offline
 
 _CHUNK = 256  # targets per block: bounds the [chunk, n_t, 3] temporaries (~3.7 MB at 600 times)
 

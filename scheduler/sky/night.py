@@ -16,9 +16,9 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from ..config import Site
-from ..errors import InputError
-from .offline import configure_offline
+from scheduler.model.config import Site
+from scheduler.model.errors import InputError
+from scheduler.sky.offline import configure_offline
 
 SUNSET_ALT_DEG = -0.833
 CIVIL_ALT_DEG = -6.0

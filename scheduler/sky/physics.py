@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..config import Band, Instrument
+from scheduler.model.config import Band, Instrument
 
 RAD_TO_ARCSEC = 180.0 / np.pi * 3600.0
 SEEING_REF_WAVELENGTH_UM = 0.5  # sites report seeing at 500 nm, at zenith (trade convention)

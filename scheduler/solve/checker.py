@@ -18,17 +18,17 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from ..conditions.grid import ConditionsGrid
-from ..config import ObservatoryConfig
-from ..request_spec import RequestSpec
-from ..sky import physics
-from ..sky.ephemeris import SkyGrid
-from .problem import PlanEntry
+from scheduler.conditions.grid import ConditionsGrid
+from scheduler.model.config import ObservatoryConfig
+from scheduler.model.request import RequestSpec
+from scheduler.sky import physics
+from scheduler.sky.ephemeris import SkyGrid
+from scheduler.model.plan import PlanEntry
 
 # The policy floor on transmission is the feasibility stage's published constant (a policy
 # number, not logic: the check itself is re-implemented below).
 try:
-    from ..feasibility import TRANSMISSION_FLOOR
+    from scheduler.constraints.feasibility import TRANSMISSION_FLOOR
 except ImportError:  # pragma: no cover - feasibility always defines it
     TRANSMISSION_FLOOR = 0.1
 

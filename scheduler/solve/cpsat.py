@@ -34,7 +34,7 @@ from typing import Callable, Sequence
 import numpy as np
 from ortools.sat.python import cp_model
 
-from .problem import Placement, Problem, VALUE_SCALE, objective_of
+from scheduler.solve.problem import Placement, Problem, VALUE_SCALE, objective_of
 
 
 @dataclass

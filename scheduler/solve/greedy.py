@@ -19,7 +19,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .problem import Placement, Problem
+from scheduler.solve.problem import Placement, Problem
 
 
 def dense_tables(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
@@ -226,7 +226,7 @@ def randomized_dispatch(problem: Problem, runs: int = 400, time_limit_s: float =
     """
     import time
 
-    from .problem import objective_of
+    from scheduler.solve.problem import objective_of
 
     t0 = time.perf_counter()
     tables = dense_tables(problem)
@@ -255,7 +255,7 @@ def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: i
     (best plan seen, iterations done). Stops early once the best reaches ``stop_at``."""
     import time
 
-    from .problem import check_model_feasible, objective_of
+    from scheduler.solve.problem import check_model_feasible, objective_of
 
     t0 = time.perf_counter()
     tables = dense_tables(problem)

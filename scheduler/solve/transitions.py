@@ -25,7 +25,7 @@ import math
 
 import numpy as np
 
-from ..config import ObservatoryConfig
+from scheduler.model.config import ObservatoryConfig
 
 # Numerical slack when rounding seconds up to whole grid steps (float noise, not physics).
 _EPS_S = 1e-6

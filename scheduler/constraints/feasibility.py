@@ -66,11 +66,11 @@ from typing import Sequence
 
 import numpy as np
 
-from .conditions.grid import ConditionsGrid
-from .config import Band, Instrument, ObservatoryConfig
-from .request_spec import RequestSpec
-from .sky import physics
-from .sky.ephemeris import SkyGrid
+from scheduler.conditions.grid import ConditionsGrid
+from scheduler.model.config import Band, Instrument, ObservatoryConfig
+from scheduler.model.request import RequestSpec
+from scheduler.sky import physics
+from scheduler.sky.ephemeris import SkyGrid
 
 
 class Reason(IntFlag):

@@ -12,15 +12,15 @@ from dataclasses import dataclass
 from datetime import date, datetime, timedelta, timezone
 from typing import Callable
 
-from .conditions.grid import ConditionsGrid, conditions_on_grid
-from .conditions.ingest import Sample
-from .config import ObservatoryConfig, site_dict, telescope_dict
-from .db import plans, store
-from .db.session import Database
-from .request_spec import RequestSpec
-from .sky.ephemeris import SkyCache
-from .sky.night import Night, compute_night, night_date_for
-from .solve.problem import PlanEntry, PlanResult
+from scheduler.conditions.grid import ConditionsGrid, conditions_on_grid
+from scheduler.conditions.ingest import Sample
+from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
+from scheduler.db import plans, store
+from scheduler.db.session import Database
+from scheduler.model.request import RequestSpec
+from scheduler.sky.ephemeris import SkyCache
+from scheduler.sky.night import Night, compute_night, night_date_for
+from scheduler.model.plan import PlanEntry, PlanResult
 
 
 @dataclass(frozen=True)
@@ -93,7 +93,7 @@ class Planner:
     def build(self, inputs: PlanInputs, night: Night, *, now: datetime | None = None,
               time_limit_s: float | None = None, progress: Callable[[str], None] | None = None,
               use_previous: bool = True) -> tuple[PlanResult, ConditionsGrid]:
-        from .pipeline import build_plan
+        from scheduler.planning.pipeline import build_plan
 
         cond = self.conditions(night, inputs.samples, inputs.report_id)
         result = build_plan(
@@ -143,8 +143,8 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
     Returns (version, violations). Used by `nightplan plan check` and the crash-safety tests.
     Requests are checked as they were when the plan was made (later outcomes are undone).
     """
-    from .pipeline import _now_step, _with_steps, target_rows_for
-    from .solve.checker import check_plan
+    from scheduler.planning.pipeline import _now_step, _with_steps, target_rows_for
+    from scheduler.solve.checker import check_plan
 
     planner = planner or Planner(config)
     with db.session() as s:
@@ -155,7 +155,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
         specs = {r.id: store.to_spec(r) for r in store.list_requests(s) if r.id in ids}
         # Outcomes recorded after the plan was made are undone, so a plan is checked against the
         # queue it was built from (a request observed since is not a violation).
-        from .db.models import Outcome
+        from scheduler.db.models import Outcome
         from sqlalchemy import select
 
         since = s.scalars(select(Outcome).where(Outcome.request_id.in_(ids), Outcome.recorded_at > plan.created_at))
@@ -167,7 +167,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
                 specs[o.request_id] = sp.with_(partial_exposure_s=max(sp.partial_exposure_s - o.exposure_s, 0.0))
         samples: list[Sample] = []
         if plan.conditions_report_id is not None:
-            from .db.models import ConditionsReport
+            from scheduler.db.models import ConditionsReport
 
             rep = s.get(ConditionsReport, plan.conditions_report_id)
             samples = [sample_of(r) for r in rep.samples]

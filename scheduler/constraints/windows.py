@@ -13,12 +13,12 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .conditions.grid import conditions_on_grid
-from .config import ObservatoryConfig
-from .feasibility import Feasibility, Reason, evaluate, reason_names
-from .request_spec import RequestSpec, iso
-from .sky.ephemeris import SkyGrid, compute_sky
-from .sky.night import Night, compute_night
+from scheduler.conditions.grid import conditions_on_grid
+from scheduler.model.config import ObservatoryConfig
+from scheduler.constraints.feasibility import Feasibility, Reason, evaluate, reason_names
+from scheduler.model.request import RequestSpec, iso
+from scheduler.sky.ephemeris import SkyGrid, compute_sky
+from scheduler.sky.night import Night, compute_night
 
 # Human wording of each constraint.
 DESCRIPTION = {

@@ -9,9 +9,9 @@ from datetime import date, datetime, timezone
 
 import click
 
-from .cli import Ctx, console, echo_json, parse_night, pass_ctx, warn
-from .errors import InputError, NotFoundError
-from .request_spec import iso, parse_time
+from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from scheduler.model.errors import InputError, NotFoundError
+from scheduler.model.request import iso, parse_time
 
 
 # --------------------------------------------------------------------------- helpers
@@ -31,7 +31,7 @@ _NIGHTS: dict = {}
 
 def night_of(config, night_date: date):
     """compute_night, remembered for the process (the demo asks for the same night many times)."""
-    from .sky.night import compute_night
+    from scheduler.sky.night import compute_night
 
     key = (config.site, night_date, config.planning.step_s)
     if key not in _NIGHTS:
@@ -41,8 +41,8 @@ def night_of(config, night_date: date):
 
 def load_document(c: Ctx, version: int | None):
     """(document, plan night, config) of a stored plan version (default: the newest active plan)."""
-    from .db import plans
-    from .report.export import plan_document
+    from scheduler.db import plans
+    from scheduler.report.export import plan_document
 
     config = c.config()
     with c.db().session() as s:
@@ -69,7 +69,7 @@ def plan() -> None:
 @pass_ctx
 def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str, now_text: str | None) -> None:
     """Build a plan from the queue and the latest conditions, check it, store it as a new version."""
-    from .planner import Planner
+    from scheduler.planning.planner import Planner
 
     if time_limit is not None and not (0.1 <= time_limit <= 3600):
         raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 3600 seconds")
@@ -93,7 +93,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
         click.echo(f"  [{time.perf_counter() - t0:5.1f}s] {msg}", err=True)
 
     with db.session() as s:
-        from .db import store
+        from scheduler.db import store
 
         n_queue = len(store.active_specs(s))
         has_conditions = store.latest_conditions(s) is not None
@@ -141,7 +141,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
 @pass_ctx
 def plan_show(c: Ctx, version: int | None, show_unscheduled: bool, as_json: bool) -> None:
     """The plan as a table, with the night's summary above it."""
-    from .report.table import print_plan
+    from scheduler.report.table import print_plan
 
     doc, _, _ = load_document(c, version)
     if as_json:
@@ -158,7 +158,7 @@ def plan_list(c: Ctx, night: str | None, as_json: bool) -> None:
     """Stored plan versions, newest first."""
     from sqlalchemy import select
 
-    from .db.models import Plan
+    from scheduler.db.models import Plan
 
     q = select(Plan).order_by(Plan.id.desc())
     if night:
@@ -187,7 +187,7 @@ def plan_list(c: Ctx, night: str | None, as_json: bool) -> None:
 @pass_ctx
 def plan_export(c: Ctx, fmt: str, output: str | None, version: int | None) -> None:
     """Export the plan: JSON (the full document other tools read) or CSV (one row per entry)."""
-    from .report.export import CAUTION, to_csv, to_json, write_atomic
+    from scheduler.report.export import CAUTION, to_csv, to_json, write_atomic
 
     doc, _, _ = load_document(c, version)
     text = to_json(doc) if fmt == "json" else to_csv(doc)
@@ -208,8 +208,8 @@ def plan_chart(c: Ctx, output: str, version: int | None) -> None:
     """Altitude against time of the planned targets, twilight, the Moon, seeing and PWV (PNG)."""
     if not output.lower().endswith(".png"):
         raise InputError("output", f"{output!r}: the chart is written as PNG; give a file name ending in .png")
-    from .report.chart import render_chart
-    from .report.export import write_atomic
+    from scheduler.report.chart import render_chart
+    from scheduler.report.export import write_atomic
 
     doc, night, config = load_document(c, version)
     samples = _plan_samples(c, doc)
@@ -223,7 +223,7 @@ def plan_chart(c: Ctx, output: str, version: int | None) -> None:
 @pass_ctx
 def plan_check(c: Ctx, version: int | None) -> None:
     """Re-verify a stored plan with the independent checker (exit 1 if it fails)."""
-    from .planner import verify_stored_plan
+    from scheduler.planning.planner import verify_stored_plan
 
     v, violations = verify_stored_plan(c.db(), c.config(), _version(version))
     if violations:
@@ -235,8 +235,8 @@ def plan_check(c: Ctx, version: int | None) -> None:
 
 def _plan_samples(c: Ctx, doc) -> list:
     """The conditions samples a plan was built on (empty: defaults were assumed)."""
-    from .db.models import ConditionsReport
-    from .planner import sample_of
+    from scheduler.db.models import ConditionsReport
+    from scheduler.planning.planner import sample_of
 
     rid = doc["plan"]["conditions"]["report_id"]
     if rid is None:
@@ -255,10 +255,10 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
     """Why request ID is in the plan, or which constraint or which entries keep it out."""
     import numpy as np
 
-    from .conditions.grid import conditions_on_grid
-    from .db import store
-    from .report.why import explain
-    from .sky.ephemeris import compute_sky
+    from scheduler.conditions.grid import conditions_on_grid
+    from scheduler.db import store
+    from scheduler.report.why import explain
+    from scheduler.sky.ephemeris import compute_sky
 
     with c.db().session() as s:  # an unknown id fails before any sky work
         spec = store.to_spec(store.get_request(s, request_id))
@@ -286,11 +286,11 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
 @pass_ctx
 def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
     """What to observe now, until when, and the next two entries."""
-    from .db import plans
-    from .report.export import plan_document
-    from .report.next import what_next
-    from .planner import Planner
-    from .report.table import entry_line, hm
+    from scheduler.db import plans
+    from scheduler.report.export import plan_document
+    from scheduler.report.next import what_next
+    from scheduler.planning.planner import Planner
+    from scheduler.report.table import entry_line, hm
 
     at = _now(at_text, "at")
     config = c.config()
@@ -334,7 +334,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
 @pass_ctx
 def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: str | None) -> None:
     """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back."""
-    from .db import plans, store
+    from scheduler.db import plans, store
 
     if result == "partial" and exposure is None:
         raise InputError("exposure", "required with --result partial: the seconds of exposure achieved")
@@ -375,7 +375,7 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
 @click.option("--time-limit", type=float, default=8.0, show_default=True, help="solver time limit per build, seconds")
 def demo(out_dir: str | None, time_limit: float) -> None:
     """The whole job on the invented scenario: queue, forecast, plan, chart, export, re-plan."""
-    from .demo import run_demo
+    from scheduler.demo import run_demo
 
     if not (0.1 <= time_limit <= 600):
         raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 600 seconds")

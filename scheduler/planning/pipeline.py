@@ -17,17 +17,18 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from .conditions.grid import ConditionsGrid
-from .config import ObservatoryConfig
-from .request_spec import ACTIVE_STATUSES, RequestSpec
-from .sky.ephemeris import SkyGrid
-from .sky.night import Night
-from .solve.checker import check_plan, true_transition_s
-from .solve.cpsat import lagrangian_bound, sequence_bound, solve_problem
-from .solve.greedy import dense_tables, greedy_plan, insertion_plan, randomized_dispatch, ruin_and_recreate
-from .solve.problem import (VALUE_SCALE, Placement, PlanEntry, PlanResult, Problem, build_problem,
-                            check_model_feasible, objective_of)
-from .solve.transitions import slew_s as _slew_s
+from scheduler.conditions.grid import ConditionsGrid
+from scheduler.model.config import ObservatoryConfig
+from scheduler.model.request import ACTIVE_STATUSES, RequestSpec
+from scheduler.sky.ephemeris import SkyGrid
+from scheduler.sky.night import Night
+from scheduler.solve.checker import check_plan, true_transition_s
+from scheduler.solve.cpsat import lagrangian_bound, sequence_bound, solve_problem
+from scheduler.solve.greedy import dense_tables, greedy_plan, insertion_plan, randomized_dispatch, ruin_and_recreate
+from scheduler.model.plan import PlanEntry, PlanResult
+from scheduler.solve.problem import (VALUE_SCALE, Placement, Problem, build_problem, check_model_feasible,
+                                     objective_of)
+from scheduler.solve.transitions import slew_s as _slew_s
 
 __all__ = ["build_plan", "PlanEntry", "PlanResult", "target_rows_for"]
 
@@ -50,7 +51,7 @@ def _sky_rows(sky, config: ObservatoryConfig, night: Night, requests: Sequence[R
     """A SkyGrid covering the requests' targets and each request's row in it."""
     ra, dec, rows = target_rows_for(requests)
     if sky is None:
-        from .sky.ephemeris import compute_sky
+        from scheduler.sky.ephemeris import compute_sky
         return compute_sky(config.site, night, ra, dec), rows
     if isinstance(sky, SkyGrid):
         index = {(float(a), float(d)): i for i, (a, d) in enumerate(zip(sky.ra_deg, sky.dec_deg))}
@@ -189,7 +190,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     t0 = time.perf_counter()
     say("feasibility")
     if feasibility is None:
-        from .feasibility import evaluate
+        from scheduler.constraints.feasibility import evaluate
         feasibility = evaluate(reqs, rows, sky_grid, cond, config, static)
     feas = feasibility
     timings["feasibility"] = time.perf_counter() - t0

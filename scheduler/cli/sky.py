@@ -6,9 +6,9 @@ from pathlib import Path
 
 import click
 
-from .cli import Ctx, console, echo_json, parse_night, pass_ctx, warn
-from .errors import InputError
-from .request_spec import iso
+from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from scheduler.model.errors import InputError
+from scheduler.model.request import iso
 
 
 @click.group()
@@ -27,8 +27,8 @@ def conditions_load(c: Ctx, file: str, source: str | None, fmt: str | None) -> N
     Columns: time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome (time ISO-8601 UTC;
     the rest optional; dome is open or closed). Seeing is at 500 nm at zenith.
     """
-    from .conditions.files import read_conditions_file
-    from .db import store
+    from scheduler.conditions.files import read_conditions_file
+    from scheduler.db import store
 
     p = Path(file)
     report = read_conditions_file(p, fmt)
@@ -44,7 +44,7 @@ def conditions_load(c: Ctx, file: str, source: str | None, fmt: str | None) -> N
 @pass_ctx
 def conditions_show(c: Ctx, as_json: bool) -> None:
     """Show the latest conditions report."""
-    from .db import store
+    from scheduler.db import store
 
     with c.db().session() as s:
         rep = store.latest_conditions(s)
@@ -82,8 +82,8 @@ def conditions_show(c: Ctx, as_json: bool) -> None:
 @pass_ctx
 def almanac(c: Ctx, night: str | None, as_json: bool) -> None:
     """Sunset, twilights, sunrise, the Moon and the dark hours for the site."""
-    from .almanac import almanac_for
-    from .sky.night import night_date_for
+    from scheduler.sky.almanac import almanac_for
+    from scheduler.sky.night import night_date_for
 
     config = c.config()
     if night:

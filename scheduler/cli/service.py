@@ -9,9 +9,9 @@ from pathlib import Path
 
 import click
 
-from .cli import Ctx, echo_json, pass_ctx
-from .errors import InputError
-from .request_spec import iso
+from scheduler.cli.main import Ctx, echo_json, pass_ctx
+from scheduler.model.errors import InputError
+from scheduler.model.request import iso
 
 POLL_RANGE = (0.2, 600.0)
 
@@ -26,7 +26,7 @@ def _who() -> str:
         user = getpass.getuser()
     except Exception:  # noqa: BLE001 - no user name in some containers
         user = str(os.getuid())
-    from .service.lock import this_host
+    from scheduler.service.lock import this_host
 
     return f"{user}@{this_host()}"
 
@@ -60,10 +60,10 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
     passed. Logs one event a line. Plans are advisory: the observatory's interlocks and its
     licensed operators decide.
     """
-    from .service.clock import Clock
-    from .service.daemon import Service
-    from .service.lock import STALE_AFTER_S, LockHeld
-    from .service.log import setup_logging
+    from scheduler.service.clock import Clock
+    from scheduler.service.daemon import Service
+    from scheduler.service.lock import STALE_AFTER_S, LockHeld
+    from scheduler.service.log import setup_logging
 
     _use_db(c, db_url)
     lo, hi = POLL_RANGE
@@ -108,11 +108,11 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
 def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None, clock_text: str | None) -> None:
     """Order a re-plan from now. The running service takes it within seconds; if no service is
     alive, the plan is built here (inline) and the command says so."""
-    from .db import plans
-    from .db.models import ReplanOrder, utcnow
-    from .service.clock import Clock
-    from .service.daemon import wait_until
-    from .service.lock import read_lock
+    from scheduler.db import plans
+    from scheduler.db.models import ReplanOrder, utcnow
+    from scheduler.service.clock import Clock
+    from scheduler.service.daemon import wait_until
+    from scheduler.service.lock import read_lock
 
     _use_db(c, db_url)
     if not (1.0 <= timeout_s <= 86400):
@@ -143,8 +143,8 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
             sys.exit(1)
         return
 
-    from .planner import Planner
-    from .service.jobs import describe_built
+    from scheduler.planning.planner import Planner
+    from scheduler.service.jobs import describe_built
 
     config = c.config()
     click.echo(f"no service is alive ({stale}); re-planning inline")
@@ -184,9 +184,9 @@ def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
     conditions report, pending re-plan orders."""
     from sqlalchemy import select
 
-    from .db import plans, store
-    from .db.models import ReplanOrder
-    from .service.lock import read_lock
+    from scheduler.db import plans, store
+    from scheduler.db.models import ReplanOrder
+    from scheduler.service.lock import read_lock
 
     _use_db(c, db_url)
     db = c.db()

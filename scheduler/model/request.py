@@ -12,8 +12,8 @@ from dataclasses import dataclass, fields, replace
 from datetime import datetime, timezone
 from typing import Any, Mapping
 
-from .config import ObservatoryConfig
-from .errors import InputError
+from scheduler.model.config import ObservatoryConfig
+from scheduler.model.errors import InputError
 
 STATUSES = ("queued", "planned", "done", "failed", "withdrawn", "expired")
 # Statuses the planner considers.
@@ -312,7 +312,7 @@ def never_observable_reason(spec: RequestSpec, config: ObservatoryConfig) -> str
 
     The highest altitude a fixed ICRS target reaches is at transit: 90 - |latitude - dec|.
     """
-    from .sky.airmass import kasten_young_1989
+    from scheduler.sky.airmass import kasten_young_1989
 
     lat = config.site.latitude_deg
     best_alt = 90.0 - abs(lat - spec.dec_deg)

@@ -16,8 +16,8 @@ from typing import Any
 
 import click
 
-from .config import ObservatoryConfig, load_config, starter_config_text
-from .errors import InputError, NotFoundError
+from scheduler.model.config import ObservatoryConfig, load_config, starter_config_text
+from scheduler.model.errors import InputError, NotFoundError
 
 CONFIG_FILE = "observatory.toml"
 MAX_IMPORT_BYTES = 10_000_000
@@ -40,7 +40,7 @@ class Ctx:
 
     def db(self, *, must_exist: bool = True):
         if self._db is None:
-            from .db.session import open_db
+            from scheduler.db.session import open_db
 
             self._db = open_db(self.db_url, create_file=not must_exist)
             if must_exist:
@@ -96,7 +96,7 @@ def cli(ctx: click.Context, db_url: str | None, config_path: str | None) -> None
 @pass_ctx
 def init(c: Ctx) -> None:
     """Create or upgrade the database; write a starter observatory.toml if there is none."""
-    from .db import migrate
+    from scheduler.db import migrate
 
     cfg_path = Path(c.config_path)
     if not cfg_path.exists():
@@ -130,7 +130,7 @@ def program() -> None:
 @pass_ctx
 def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float) -> None:
     """Create a program CODE."""
-    from .db import store
+    from scheduler.db import store
 
     prog = c.db().retrying(lambda s: store.program_dict(store.add_program(s, code, pi, hours, weight)))
     click.echo(f"program {prog['code']} added (PI {prog['pi']}, {prog['hours']:g} h, weight {prog['weight']:g})")
@@ -141,7 +141,7 @@ def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float) -> None
 @pass_ctx
 def program_list(c: Ctx, as_json: bool) -> None:
     """List programs."""
-    from .db import store
+    from scheduler.db import store
 
     with c.db().session() as s:
         rows = [store.program_dict(p) for p in store.list_programs(s)]
@@ -164,7 +164,7 @@ def request() -> None:
 
 
 def _visibility_warnings(config: ObservatoryConfig, specs) -> None:
-    from .request_spec import never_observable_reason
+    from scheduler.model.request import never_observable_reason
 
     for i, spec in enumerate(specs):
         why = never_observable_reason(spec, config)
@@ -207,8 +207,8 @@ def request_add(c: Ctx, **opts: Any) -> None:
     --resolution is the delivered image FWHM the science needs in the request's band at the
     target's airmass (seeing scaled by wavelength^-1/5 airmass^3/5, combined with diffraction).
     """
-    from .db import store
-    from .request_spec import validate_request
+    from scheduler.db import store
+    from scheduler.model.request import validate_request
 
     names = {"exposure": "exposure_s", "resolution": "resolution_arcsec", "max_seeing": "max_seeing_arcsec",
              "max_pwv": "max_pwv_mm", "min_moon_sep": "min_moon_sep_deg", "max_cloud": "max_cloud_mag",
@@ -232,7 +232,7 @@ def read_table_file(path: str, *, what: str) -> tuple[list[tuple[int, dict[str, 
     Row numbers are what a user finds in the file: for CSV the line (the header is line 1), for
     JSON the position in the list (from 1), as in conditions files.
     """
-    from .textfile import read_text_file
+    from scheduler.textfile import read_text_file
 
     p = Path(path)
     text = read_text_file(p, MAX_IMPORT_BYTES)
@@ -267,8 +267,8 @@ def request_import(c: Ctx, file: str) -> None:
     (optional ones may be absent or empty), plus instrument, min_spacing_s, max_moon_illum,
     min_sky_mag, period_epoch, period_days, phase_min, phase_max, too.
     """
-    from .db import store
-    from .request_spec import validate_request
+    from scheduler.db import store
+    from scheduler.model.request import validate_request
 
     rows, _fmt = read_table_file(file, what="requests")
     if not rows:
@@ -300,7 +300,7 @@ def request_import(c: Ctx, file: str) -> None:
 @pass_ctx
 def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool) -> None:
     """List requests."""
-    from .db import store
+    from scheduler.db import store
 
     with c.db().session() as s:
         rows = [store.request_dict(r) for r in store.list_requests(s, status, program)]
@@ -334,7 +334,7 @@ def _limits_text(r: dict[str, Any]) -> str:
 @pass_ctx
 def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> None:
     """Show one request (and, with --night, when it can be observed)."""
-    from .db import store
+    from scheduler.db import store
 
     with c.db().session() as s:
         row = store.get_request(s, request_id)
@@ -343,7 +343,7 @@ def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> N
         report = store.latest_conditions(s)
         samples = list(report.samples) if report is not None else []
     if night:
-        from .windows import feasible_windows
+        from scheduler.constraints.windows import feasible_windows
 
         d["windows"] = feasible_windows(c.config(), spec, parse_night(night), samples)
     if as_json:
@@ -368,7 +368,7 @@ def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> N
 @pass_ctx
 def request_withdraw(c: Ctx, request_id: int) -> None:
     """Withdraw a request from the queue (kept for the record)."""
-    from .db import store
+    from scheduler.db import store
 
     c.db().retrying(lambda s: store.withdraw_request(s, request_id))
     click.echo(f"request {request_id} withdrawn")
@@ -384,8 +384,8 @@ def db_group() -> None:
 @pass_ctx
 def db_copy(c: Ctx, to_url: str) -> None:
     """Copy this queue, its plans and history to another database (e.g. SQLite to PostgreSQL)."""
-    from .db.session import open_db
-    from .db.transfer import copy_database
+    from scheduler.db.session import open_db
+    from scheduler.db.transfer import copy_database
 
     src = c.db()
     dst = open_db(to_url)
@@ -409,7 +409,7 @@ def _register_optional() -> None:
     """Command groups that live in their own modules."""
     import importlib
 
-    for mod in ("scheduler.cli_sky", "scheduler.cli_plan", "scheduler.cli_service"):
+    for mod in ("scheduler.cli.sky", "scheduler.cli.plan", "scheduler.cli.service"):
         try:
             m = importlib.import_module(mod)
         except ModuleNotFoundError as e:

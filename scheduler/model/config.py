@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from .errors import ConfigError
+from scheduler.model.errors import ConfigError
 
 # Which darkness a band needs: the Sun's centre must be below this altitude (degrees).
 # Civil/nautical/astronomical are the trade's definitions (-6, -12, -18); "day" means the
@@ -368,7 +368,7 @@ def load_config(path: str | Path) -> ObservatoryConfig:
 
 def starter_config_text() -> str:
     """The observatory.toml that `nightplan init` writes (an invented site)."""
-    return (Path(__file__).parent / "data" / "observatory.toml").read_text(encoding="utf-8")
+    return (Path(__file__).resolve().parents[1] / "data" / "observatory.toml").read_text(encoding="utf-8")
 
 
 def starter_config() -> ObservatoryConfig:

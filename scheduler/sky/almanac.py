@@ -8,10 +8,10 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from .config import ObservatoryConfig
-from .request_spec import iso
-from .sky.ephemeris import compute_sky
-from .sky.night import compute_night
+from scheduler.model.config import ObservatoryConfig
+from scheduler.model.request import iso
+from scheduler.sky.ephemeris import compute_sky
+from scheduler.sky.night import compute_night
 
 EVENTS = ("sunset", "civil_dusk", "nautical_dusk", "astronomical_dusk",
           "astronomical_dawn", "nautical_dawn", "civil_dawn", "sunrise")

@@ -1,0 +1,1 @@
+"""The command line: thin (parse, call the core, print)."""

@@ -1,0 +1,1 @@
+"""The physical constraints over the requests x times grid, feasibility and explanations."""

@@ -1,0 +1,71 @@
+"""The plan contract: one planned entry and a built plan. Storage, reports, the service and the
+web page read these types; they never import the solver. Imports nothing of ours."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime
+
+
+@dataclass(frozen=True)
+class PlanEntry:
+    """One planned execution of a request. Times are aware UTC; steps index the night grid.
+
+    The entry occupies grid steps [start_step, end_step): setup (acquisition) then exposure.
+    The transition before it (slew + settle + instrument/filter change from the previous
+    entry) happens in the gap before start_step; ``transition_s`` is that time, ``slew_s``
+    its axis-motion part. Predicted values are at the start step unless named _end.
+    """
+
+    request_id: int
+    execution: int  # 0 = the next execution still owed, 1 = the one after, ...
+    start: datetime
+    end: datetime
+    start_step: int
+    end_step: int
+    slew_s: float  # axis motion from the previous entry's target (0 for the first entry)
+    transition_s: float  # slew + settle + instrument or filter change (0 for the first entry)
+    setup_s: float  # acquisition and set-up on this target, inside [start, end)
+    airmass_start: float
+    airmass_end: float  # at the last step the entry covers
+    predicted_fwhm_arcsec: float
+    predicted_pwv_mm: float
+    transmission: float
+    merit: float  # merit at the start step
+    moon_sep_deg: float
+    value: float  # science value counted in the objective (see module docstring)
+    program: str = ""
+    target: str = ""
+    band: str = ""
+    instrument: str = ""
+    fixed: bool = False  # kept from the previous plan (in progress or inside the freeze horizon)
+
+
+@dataclass(frozen=True)
+class PlanResult:
+    """A built night plan and how it was found. ``violations`` must be empty to store it.
+
+    objective/bound/gap are in science-value units on the model objective: the sum of the
+    entries' values plus ``stability_bonus`` (non-zero only when re-planning against a previous
+    plan). gap = (bound - objective) / max(bound, tiny); 0 when proven optimal.
+    """
+
+    entries: tuple[PlanEntry, ...]
+    unscheduled: tuple[tuple[int, str], ...]  # (request_id, short reason)
+    solver_status: str  # OPTIMAL, FEASIBLE, or GREEDY (best heuristic plan kept, greedy or better), or EMPTY
+    objective: float
+    bound: float
+    gap: float
+    runtime_s: float  # CP-SAT wall time
+    greedy_objective: float
+    used_greedy: bool
+    timings: dict  # seconds: sky, feasibility, model, solve, check
+    violations: tuple[str, ...]
+    stability_bonus: float = 0.0
+    now_step: int = 0
+    message: str = ""
+    stats: dict = field(default_factory=dict)  # model size: requests, executions, arcs, buckets
+
+    @property
+    def science_value(self) -> float:
+        return self.objective - self.stability_bonus

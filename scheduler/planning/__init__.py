@@ -1,0 +1,1 @@
+"""The build pipeline (pure), the planner (storage edge) and the one re-plan action."""
