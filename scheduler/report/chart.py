@@ -60,7 +60,7 @@ def chart_format(path: str) -> str:
 class Style:
     name: str
     background: str  # figure and daylight
-    shades: tuple[str, str, str, str]  # dark night, astronomical, nautical, civil twilight: lighter as the sky brightens
+    shades: tuple[str, str, str, str]  # night, astronomical, nautical, civil twilight: lighter as the sky brightens
     text: str
     muted: str  # secondary text, frames
     grid: str

@@ -44,8 +44,8 @@ POLL_S = 0.5
 KEEPALIVE_S = 15.0
 LOOPBACK_HOSTS = {"localhost", "127.0.0.1", "::1", "[::1]"}
 SECURITY_HEADERS = [
-    (b"content-security-policy", b"default-src 'self'; img-src 'self' data:; style-src 'self'; style-src-attr 'unsafe-inline'; "
-                                 b"script-src 'self'; "
+    (b"content-security-policy", b"default-src 'self'; img-src 'self' data:; style-src 'self'; "
+                                 b"style-src-attr 'unsafe-inline'; script-src 'self'; "
                                  b"connect-src 'self'; font-src 'self'; base-uri 'none'; form-action 'none'; "
                                  b"frame-ancestors 'none'"),
     (b"x-content-type-options", b"nosniff"),
@@ -267,9 +267,10 @@ def create_app(db, config: ObservatoryConfig, *, clock=None, token: str | None =
 
     def fragments(v: dict[str, Any], style: str) -> dict[str, Any]:
         ctx = {"v": v, "style": style, "chart_key": chart_key(v)}
-        return {"top": env.get_template("_top.html").render(ctx), "bottom": env.get_template("_bottom.html").render(ctx),
-                "now": v["now"], "chart_key": ctx["chart_key"], "version": v["doc"]["plan"]["version"] if v["doc"] else None,
-                "key": v["key"]}
+        return {"top": env.get_template("_top.html").render(ctx),
+                "bottom": env.get_template("_bottom.html").render(ctx),
+                "now": v["now"], "chart_key": ctx["chart_key"],
+                "version": v["doc"]["plan"]["version"] if v["doc"] else None, "key": v["key"]}
 
     def chart_key(v: dict[str, Any]) -> str | None:
         if v["doc"] is None:
