@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from datetime import datetime
 from typing import Sequence
 
 import numpy as np
@@ -28,6 +27,7 @@ from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.plan import PlanEntry
 from scheduler.solve.transitions import pair_transition_steps
+from scheduler.model.timegrid import consecutive_runs
 
 VALUE_SCALE = 10_000  # objective units per unit of science value (integer objective for CP-SAT)
 
@@ -98,20 +98,9 @@ def science_base_value(spec: RequestSpec, program_weights: dict[str, float]) -> 
     return w * (spec.priority / 5.0) * (spec.exposure_s / 3600.0)
 
 
-def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
-    """Inclusive (lo, hi) runs of True in a 1-D bool array."""
-    if not mask.any():
-        return []
-    m = np.concatenate([[False], mask, [False]]).astype(np.int8)
-    d = np.diff(m)
-    lo = np.flatnonzero(d == 1)
-    hi = np.flatnonzero(d == -1) - 1
-    return list(zip(lo.tolist(), hi.tolist()))
-
-
 def _buckets(starts_mask: np.ndarray, merit: np.ndarray, base: float, bucket_steps: int):
     lo_l, hi_l, coef_l = [], [], []
-    for lo, hi in _runs(starts_mask):
+    for lo, hi in consecutive_runs(np.flatnonzero(starts_mask)):
         for b0 in range(lo, hi + 1, bucket_steps):
             b1 = min(hi, b0 + bucket_steps - 1)
             m = float(np.min(merit[b0:b1 + 1]))
