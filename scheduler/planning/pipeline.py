@@ -26,8 +26,8 @@ from scheduler.solve.checker import check_plan, true_transition_s
 from scheduler.solve.cpsat import lagrangian_bound, sequence_bound, solve_problem
 from scheduler.solve.greedy import dense_tables, greedy_plan, insertion_plan, randomized_dispatch, ruin_and_recreate
 from scheduler.model.plan import PlanEntry, PlanResult
-from scheduler.solve.problem import (VALUE_SCALE, Placement, Problem, build_problem, check_model_feasible,
-                                     objective_of)
+from scheduler.solve.objective import VALUE_SCALE
+from scheduler.solve.problem import Placement, Problem, build_problem, check_model_feasible, objective_of
 from scheduler.solve.transitions import slew_s as _slew_s
 from scheduler.model.timegrid import utc
 

@@ -46,7 +46,7 @@ def _t(s: str) -> datetime:
 
 
 def base_value(spec: RequestSpec, weights: dict[str, float]) -> float:
-    from scheduler.solve.problem import science_base_value
+    from scheduler.solve.objective import science_base_value
 
     return float(science_base_value(spec, weights))
 

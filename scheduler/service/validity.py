@@ -29,7 +29,7 @@ from scheduler.constraints.feasibility import Feasibility, Reason, evaluate, sta
 from scheduler.model.request import RequestSpec
 from scheduler.sky.ephemeris import SkyCache
 from scheduler.sky.night import Night
-from scheduler.solve.problem import science_base_value
+from scheduler.solve.objective import science_base_value
 
 
 @dataclass(frozen=True)

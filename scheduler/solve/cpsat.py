@@ -34,7 +34,8 @@ from typing import Callable, Sequence
 import numpy as np
 from ortools.sat.python import cp_model
 
-from scheduler.solve.problem import Placement, Problem, VALUE_SCALE, objective_of
+from scheduler.solve.objective import VALUE_SCALE
+from scheduler.solve.problem import Placement, Problem, objective_of
 from scheduler.model.timegrid import consecutive_runs
 
 
