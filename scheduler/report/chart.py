@@ -22,6 +22,7 @@ import numpy as np
 from scheduler.conditions.grid import conditions_on_grid
 from scheduler.model.config import ObservatoryConfig
 from scheduler.sky.night import Night
+from scheduler.model.timegrid import runs
 
 WIDTH_IN, HEIGHT_IN, DPI = 16.0, 9.0, 110  # 1760 x 990 px: a console screen, no scrolling
 
@@ -45,12 +46,6 @@ def band_colours(config: ObservatoryConfig) -> dict[str, Any]:
     cmap = colormaps["turbo"]
     n = max(len(names) - 1, 1)
     return {b: cmap(0.05 + 0.9 * i / n) for i, b in enumerate(names)}
-
-
-def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
-    m = np.concatenate([[False], np.asarray(mask, dtype=bool), [False]]).astype(np.int8)
-    d = np.flatnonzero(np.diff(m))
-    return list(zip(d[0::2].tolist(), d[1::2].tolist()))
 
 
 def render_chart(doc: dict[str, Any], night: Night, config: ObservatoryConfig, samples: Sequence,
@@ -91,7 +86,7 @@ def render_chart(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
               ((-18.0, -12.0), "#d9e0ea", "astronomical twilight")]
     handles = []
     for (lo, hi), colour, label in shades:
-        for a, b in _runs((sun > lo) & (sun <= hi)):
+        for a, b in runs((sun > lo) & (sun <= hi)):
             for axis in (ax, axc):
                 axis.axvspan(x[a], x[min(b, len(x) - 1)] + (step_d if b >= len(x) else 0), color=colour, lw=0,
                              zorder=0)
@@ -125,8 +120,8 @@ def render_chart(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
         alt = np.asarray(sky.alt_deg[r], dtype=np.float64)
         alt = np.where(alt > -1, alt, np.nan)
         ax.plot(x, alt, color=c, lw=0.8, alpha=0.35, zorder=3)
-        i0 = night.index_at(_t(e["start"]))
-        i1 = max(night.index_at(_t(e["end"])), i0 + 1)
+        i0 = min(night.step_of(_t(e["start"])), night.n_times - 1)
+        i1 = max(min(night.step_of(_t(e["end"])), night.n_times - 1), i0 + 1)
         seg = slice(i0, min(i1 + 1, len(x)))
         ax.plot(x[seg], alt[seg], color=c, lw=5.5, solid_capstyle="butt", zorder=5)
         xm = 0.5 * (x[seg.start] + x[seg.stop - 1])
@@ -147,7 +142,7 @@ def render_chart(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
                                                   ec="white", lw=0.6, zorder=5))
     ax.text(x[0], 8.6, " planned entries", fontsize=9, color="#222222", va="bottom", zorder=6)
     closed = ~cond.dome_open | (cond.wind_ms > config.safety.max_wind_ms) | (cond.humidity_pct > config.safety.max_humidity_pct)
-    for a, b in _runs(closed):
+    for a, b in runs(closed):
         ax.axvspan(x[a], x[min(b, len(x) - 1)], ymin=0, ymax=10 / 90, color="#d62728", alpha=0.35, lw=0, zorder=4)
         ax.text(0.5 * (x[a] + x[min(b, len(x) - 1)]), 5.0, "dome\nclosed", fontsize=9, ha="center", va="center",
                 color="#7a0000", zorder=6)
@@ -196,9 +191,9 @@ def render_chart(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
     axp.tick_params(axis="y", colors=pwv_c, labelsize=10)
     pmax = float(np.nanmax(cond.pwv_mm)) if cond.pwv_mm.size else 1.0
     axp.set_ylim(0, max(1.0, pmax * 1.2))
-    for a, b in _runs(~cond.covered):
+    for a, b in runs(~cond.covered):
         axc.axvspan(x[a], x[min(b, len(x) - 1)], facecolor="none", hatch="//", edgecolor="#888888", lw=0, zorder=1)
-    for a, b in _runs(closed):
+    for a, b in runs(closed):
         axc.axvspan(x[a], x[min(b, len(x) - 1)], color="#d62728", alpha=0.25, lw=0, zorder=1)
     c = p["conditions"]
     src = f"report {c['report_id']} ({c['source']})" if c["report_id"] is not None else "no report: defaults"
