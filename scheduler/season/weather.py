@@ -41,7 +41,7 @@ import csv
 import io
 import math
 from dataclasses import dataclass, field
-from datetime import date, datetime, timezone
+from datetime import date
 from pathlib import Path
 from statistics import NormalDist
 from typing import Sequence
@@ -51,6 +51,7 @@ import numpy as np
 from scheduler.conditions.ingest import LIMITS as SAMPLE_LIMITS, Sample
 from scheduler.model.config import Safety
 from scheduler.model.errors import InputError
+from scheduler.model.timegrid import utc
 from scheduler.textfile import read_text_file
 
 MAX_BYTES = 100_000
@@ -355,7 +356,7 @@ class WeatherSeries:
         """As conditions samples: feed them to conditions_on_grid like any report."""
         cols = zip(self.times_unix.tolist(), self.seeing_arcsec.tolist(), self.pwv_mm.tolist(),
                    self.cloud_mag.tolist(), self.wind_ms.tolist(), self.humidity_pct.tolist(), self.dome_open.tolist())
-        return tuple(Sample(datetime.fromtimestamp(t, timezone.utc), s, p, c, w, h, bool(d))
+        return tuple(Sample(utc(t), s, p, c, w, h, bool(d))
                      for t, s, p, c, w, h, d in cols)
 
 
