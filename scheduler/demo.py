@@ -112,7 +112,7 @@ def run_demo(out: str | None, time_limit: float) -> dict:
     if at is not None:
         from datetime import datetime, timezone
 
-        from scheduler.model.request import iso
+        from scheduler.model.timegrid import iso
 
         run("next", "--at", iso(datetime.fromtimestamp(at, tz=timezone.utc)))
 

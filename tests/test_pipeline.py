@@ -13,7 +13,7 @@ import pytest
 import scheduler.planning.pipeline as pipeline
 from scheduler.planning.pipeline import build_plan
 from scheduler.solve.cpsat import SolveOutcome
-from scheduler.solve.problem import VALUE_SCALE
+from scheduler.solve.objective import VALUE_SCALE
 
 from test_solver import CFG, T0, assert_clean, make_cond, make_night, make_sky, random_scene, req
 

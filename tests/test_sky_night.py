@@ -90,7 +90,7 @@ def test_grid_layout():
     assert n.sunset.tzinfo is not None and n.sunset.utcoffset() == timedelta(0)
     # Sun altitude on the grid: below -0.833 throughout, as PyEphem says between the events.
     assert np.all(sun_alt_deg(SOUTH, t) < -0.8)
-    assert n.index_at(n.sunset + timedelta(minutes=17)) == 3
+    assert n.step_of(n.sunset + timedelta(minutes=17)) == 4  # rounds up: 17 min into a 5-min grid is the 4th boundary
     with pytest.raises(InputError):
         compute_night(SOUTH, date(2026, 12, 1), step_s=5)
 

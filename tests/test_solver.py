@@ -26,7 +26,8 @@ from scheduler.sky.night import Night
 from scheduler.solve import cpsat
 from scheduler.solve.checker import check_plan
 from scheduler.solve.greedy import greedy_plan
-from scheduler.solve.problem import VALUE_SCALE, build_problem, check_model_feasible, objective_of
+from scheduler.solve.objective import VALUE_SCALE
+from scheduler.solve.problem import build_problem, check_model_feasible, objective_of
 
 CFG = starter_config()
 T0 = datetime(2026, 12, 5, 1, 0, tzinfo=timezone.utc)

@@ -11,7 +11,7 @@ import click
 
 from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
 from scheduler.model.errors import InputError, NotFoundError
-from scheduler.model.request import iso, parse_time
+from scheduler.model.timegrid import iso, parse_time
 
 
 # --------------------------------------------------------------------------- helpers
@@ -26,17 +26,10 @@ def _version(version: int | None) -> int | None:
     return version
 
 
-_NIGHTS: dict = {}
-
-
 def night_of(config, night_date: date):
-    """compute_night, remembered for the process (the demo asks for the same night many times)."""
-    from scheduler.sky.night import compute_night
+    from scheduler.sky.night import night_for
 
-    key = (config.site, night_date, config.planning.step_s)
-    if key not in _NIGHTS:
-        _NIGHTS[key] = compute_night(config.site, night_date, config.planning.step_s)
-    return _NIGHTS[key]
+    return night_for(config.site, night_date, config.planning.step_s)
 
 
 def load_document(c: Ctx, version: int | None):

@@ -8,7 +8,7 @@ import click
 
 from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
 from scheduler.model.errors import InputError
-from scheduler.model.request import iso
+from scheduler.model.timegrid import iso
 
 
 @click.group()

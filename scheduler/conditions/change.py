@@ -22,15 +22,12 @@ import numpy as np
 
 from scheduler.model.config import Safety
 from scheduler.conditions.grid import ConditionsGrid
+from scheduler.model.timegrid import runs
 
 
-def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
-    """Contiguous True runs as (first, last) indices."""
-    m = np.concatenate(([False], mask.astype(bool), [False]))
-    d = np.diff(m.astype(np.int8))
-    starts = np.flatnonzero(d == 1)
-    ends = np.flatnonzero(d == -1) - 1
-    return list(zip(starts.tolist(), ends.tolist()))
+def _inclusive(mask: np.ndarray) -> list[tuple[int, int]]:
+    """Runs as (first, last) indices, the form the change wording uses."""
+    return [(a, b - 1) for a, b in runs(mask)]
 
 
 class _Clock:
@@ -56,10 +53,10 @@ def _state_change(old_bad: np.ndarray, new_bad: np.ndarray, clock: _Clock, now_b
                   now_good: str) -> list[str]:
     n = old_bad.shape[0]
     out = []
-    worse = _runs(new_bad & ~old_bad)
+    worse = _inclusive(new_bad & ~old_bad)
     if worse:
         out.append(f"{now_bad} {clock.span(worse, n)}")
-    better = _runs(old_bad & ~new_bad)
+    better = _inclusive(old_bad & ~new_bad)
     if better:
         out.append(f"{now_good} {clock.span(better, n)}")
     return out
@@ -80,7 +77,7 @@ def _value_change(name: str, unit: str, old: np.ndarray, new: np.ndarray, thresh
         out.append(
             f"{name} {verb} by {abs(d[k]):{fmt}} {unit} at {clock.at(k)} "
             f"({old[k]:{fmt}} -> {new[k]:{fmt}} {unit}); by {threshold:g} {unit} or more "
-            f"{clock.span(_runs(big), n)}"
+            f"{clock.span(_inclusive(big), n)}"
         )
     return out
 

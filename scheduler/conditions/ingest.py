@@ -29,7 +29,7 @@ from datetime import datetime
 from typing import Any, Iterator, Sequence
 
 from scheduler.model.errors import InputError
-from scheduler.model.request import iso, parse_time
+from scheduler.model.timegrid import iso, parse_time
 
 COLUMNS = ("time", "seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome")
 REPORT_KEYS = ("issued", "source", "samples")

@@ -8,7 +8,7 @@ most often. "Closest" is the time with the fewest failing constraints.
 
 from __future__ import annotations
 
-from datetime import date, datetime, timezone
+from datetime import date
 from typing import Any, Sequence
 
 import numpy as np
@@ -16,9 +16,11 @@ import numpy as np
 from scheduler.conditions.grid import conditions_on_grid
 from scheduler.model.config import ObservatoryConfig
 from scheduler.constraints.feasibility import Feasibility, Reason, evaluate, reason_names
-from scheduler.model.request import RequestSpec, iso
+from scheduler.model.request import RequestSpec
+from scheduler.model.timegrid import iso
 from scheduler.sky.ephemeris import SkyGrid, compute_sky
-from scheduler.sky.night import Night, compute_night
+from scheduler.sky.night import Night, night_for
+from scheduler.model.timegrid import runs, utc
 
 # Human wording of each constraint.
 DESCRIPTION = {
@@ -36,17 +38,6 @@ DESCRIPTION = {
     Reason.WINDOW: "time window (not_before/not_after or periodic phase)",
     Reason.NIGHT_END: "the exposure does not fit before the night ends",
 }
-
-
-def _utc(t: float) -> datetime:
-    return datetime.fromtimestamp(float(t), tz=timezone.utc)
-
-
-def runs(mask: np.ndarray) -> list[tuple[int, int]]:
-    """[start, end) index runs where mask is True."""
-    m = np.concatenate([[False], np.asarray(mask, dtype=bool), [False]])
-    d = np.flatnonzero(np.diff(m.astype(np.int8)))
-    return list(zip(d[0::2].tolist(), d[1::2].tolist()))
 
 
 def binding_constraint(reasons_row: np.ndarray) -> dict[str, Any]:
@@ -86,9 +77,9 @@ def request_windows(spec: RequestSpec, feas: Feasibility, row: int, night: Night
                            "windows": []}
     for a, b in runs(feas.start_ok[row]):
         out["windows"].append({
-            "start": iso(_utc(t[a])),  # earliest start
-            "last_start": iso(_utc(t[b - 1])),
-            "end": iso(_utc(t[b - 1] + dur * step)),  # latest end
+            "start": iso(utc(t[a])),  # earliest start
+            "last_start": iso(utc(t[b - 1])),
+            "end": iso(utc(t[b - 1] + dur * step)),  # latest end
             "best_merit": round(float(feas.merit[row, a:b].max()), 4),
         })
     if not out["windows"]:
@@ -96,14 +87,14 @@ def request_windows(spec: RequestSpec, feas: Feasibility, row: int, night: Night
         out["binding"] = bc["description"]
         out["binding_constraint"] = bc["constraint"]
         if bc.get("closest_index") is not None and t.size:
-            out["closest"] = {"time": iso(_utc(t[bc["closest_index"]])), "failing": bc.get("closest_failing", [])}
+            out["closest"] = {"time": iso(utc(t[bc["closest_index"]])), "failing": bc.get("closest_failing", [])}
     return out
 
 
 def feasible_windows(config: ObservatoryConfig, spec: RequestSpec, night_date: date, samples: Sequence,
                      *, night: Night | None = None, sky: SkyGrid | None = None) -> dict[str, Any]:
     """Everything from scratch for one request (CLI `request show --night`)."""
-    night = night or compute_night(config.site, night_date, config.planning.step_s)
+    night = night or night_for(config.site, night_date, config.planning.step_s)
     sky = sky or compute_sky(config.site, night, np.array([spec.ra_deg]), np.array([spec.dec_deg]))
     cond = conditions_on_grid(samples, night.times_unix, config.defaults)
     feas = evaluate([spec], np.array([0]), sky, cond, config)

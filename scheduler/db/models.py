@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from datetime import date, datetime, timezone
 
+from scheduler.model.timegrid import utcnow  # noqa: F401  (models' default timestamps; re-exported for storage)
 from sqlalchemy import (
     Boolean, Date, DateTime, Float, ForeignKey, Index, Integer, MetaData, String, Text,
     TypeDecorator, UniqueConstraint,
@@ -41,10 +42,6 @@ class UTCDateTime(TypeDecorator):
         if value is None:
             return None
         return value.replace(tzinfo=timezone.utc)
-
-
-def utcnow() -> datetime:
-    return datetime.now(timezone.utc)
 
 
 class Base(DeclarativeBase):

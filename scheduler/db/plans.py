@@ -14,7 +14,8 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from scheduler.model.errors import InputError, NotFoundError
-from scheduler.model.request import RequestSpec, iso
+from scheduler.model.request import RequestSpec
+from scheduler.model.timegrid import iso
 from scheduler.model.plan import PlanEntry as PlannedEntry, PlanResult
 from scheduler.db.models import Plan, PlanEntry, ReplanOrder, Request, utcnow
 

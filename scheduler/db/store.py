@@ -14,7 +14,8 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from scheduler.model.errors import InputError, NotFoundError
-from scheduler.model.request import ACTIVE_STATUSES, RequestSpec, iso
+from scheduler.model.request import ACTIVE_STATUSES, RequestSpec
+from scheduler.model.timegrid import iso
 from scheduler.db.models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
 
 PROGRAM_CODE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")

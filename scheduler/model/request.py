@@ -9,11 +9,12 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass, fields, replace
-from datetime import datetime, timezone
+from datetime import datetime
 from typing import Any, Mapping
 
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
+from scheduler.model.timegrid import iso, parse_time
 
 STATUSES = ("queued", "planned", "done", "failed", "withdrawn", "expired")
 # Statuses the planner considers.
@@ -91,15 +92,6 @@ class RequestSpec:
         return replace(self, **kw)
 
 
-def iso(t: datetime | None) -> str | None:
-    """ISO-8601 UTC with a Z, to the second."""
-    if t is None:
-        return None
-    if t.tzinfo is None:
-        t = t.replace(tzinfo=timezone.utc)
-    return t.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
 # --------------------------------------------------------------------------- parsing
 
 _SEXA = re.compile(r"^\s*([+-]?)(\d{1,3})[:\s hd](\d{1,2})(?:[:\s m'](\d{1,2}(?:\.\d*)?))?\s*[s\"]?\s*$")
@@ -153,26 +145,6 @@ def parse_dec(value: Any) -> float:
     if not math.isfinite(dec) or dec < -90 or dec > 90:
         raise InputError("dec", f"{value!r} is out of range; allowed -90 to +90 degrees")
     return dec
-
-
-def parse_time(value: Any, field_name: str) -> datetime:
-    """ISO-8601; a time without a zone is taken as UTC. Returns an aware UTC datetime."""
-    if isinstance(value, datetime):
-        t = value
-    else:
-        s = str(value).strip()
-        if s.endswith(("Z", "z")):
-            s = s[:-1] + "+00:00"
-        try:
-            t = datetime.fromisoformat(s)
-        except ValueError:
-            raise InputError(field_name, f"{value!r} is not an ISO-8601 time (e.g. 2026-12-05T03:30:00Z)") from None
-    if t.tzinfo is None:
-        t = t.replace(tzinfo=timezone.utc)
-    t = t.astimezone(timezone.utc)
-    if not (1900 <= t.year <= 2200):
-        raise InputError(field_name, f"{value!r}: year must be from 1900 to 2200")
-    return t
 
 
 def _num(raw: Mapping[str, Any], name: str, lo: float, hi: float, *, lo_open: bool = False,

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import math
 import time
-from datetime import datetime, timezone
+from datetime import datetime
 from typing import Callable, Sequence
 
 import numpy as np
@@ -26,15 +26,12 @@ from scheduler.solve.checker import check_plan, true_transition_s
 from scheduler.solve.cpsat import lagrangian_bound, sequence_bound, solve_problem
 from scheduler.solve.greedy import dense_tables, greedy_plan, insertion_plan, randomized_dispatch, ruin_and_recreate
 from scheduler.model.plan import PlanEntry, PlanResult
-from scheduler.solve.problem import (VALUE_SCALE, Placement, Problem, build_problem, check_model_feasible,
-                                     objective_of)
+from scheduler.solve.objective import VALUE_SCALE
+from scheduler.solve.problem import Placement, Problem, build_problem, check_model_feasible, objective_of
 from scheduler.solve.transitions import slew_s as _slew_s
+from scheduler.model.timegrid import utc
 
 __all__ = ["build_plan", "PlanEntry", "PlanResult", "target_rows_for"]
-
-
-def _utc(t: float) -> datetime:
-    return datetime.fromtimestamp(t, tz=timezone.utc)
 
 
 def target_rows_for(requests: Sequence[RequestSpec]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -63,15 +60,7 @@ def _sky_rows(sky, config: ObservatoryConfig, night: Night, requests: Sequence[R
     return sky.get(config.site, night, ra, dec), rows  # a SkyCache
 
 
-def _now_step(night: Night, now: datetime | None) -> int:
-    """First grid step that starts at or after ``now`` (nothing new starts in the past)."""
-    if now is None:
-        return 0
-    t = now.timestamp()
-    return int(min(max(np.searchsorted(night.times_unix, t - 1e-6, side="left"), 0), night.n_times))
-
-
-def _with_steps(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntry]:
+def entries_on_grid(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntry]:
     """Previous entries with grid steps recomputed from their times (storage does not keep steps)."""
     from dataclasses import replace
     t0, step = float(night.times_unix[0]), float(night.step_s)
@@ -115,7 +104,7 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
         start_t = float(night.times_unix[s])
         entry = PlanEntry(
             request_id=int(problem.request_ids[ex.req]), execution=ex.k,
-            start=_utc(start_t), end=_utc(start_t + ex.duration * step), start_step=s, end_step=e,
+            start=utc(start_t), end=utc(start_t + ex.duration * step), start_step=s, end_step=e,
             slew_s=0.0, transition_s=0.0, setup_s=float(inst.setup_s),
             airmass_start=float(sky.airmass[row, s]), airmass_end=float(sky.airmass[row, e - 1]),
             predicted_fwhm_arcsec=float(feas.fwhm_arcsec[r, s]), predicted_pwv_mm=float(cond.pwv_mm[s]),
@@ -160,7 +149,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     tol = float(config.planning.gap_tolerance if gap_tolerance is None else gap_tolerance)
     timings = {"sky": 0.0, "feasibility": 0.0, "model": 0.0, "solve": 0.0, "check": 0.0}
     step = int(night.step_s)
-    now_step = _now_step(night, now)
+    now_step = 0 if now is None else night.step_of(now)
 
     # Requests the planner considers; ids must be unique (assign where missing).
     reqs = [r for r in requests if r.status in ACTIVE_STATUSES]
@@ -176,7 +165,7 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
         else:
             fixed_ids.append(r)
     reqs = fixed_ids
-    prev = _with_steps(previous_entries, night) if previous_entries else []
+    prev = entries_on_grid(previous_entries, night) if previous_entries else []
 
     if not reqs:
         return PlanResult((), (), "EMPTY", 0.0, 0.0, 0.0, 0.0, 0.0, False, timings, (), now_step=now_step,

@@ -7,7 +7,6 @@ sky for a target it has seen; only the conditions-dependent layers are redone on
 
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta, timezone
 from typing import Callable
@@ -19,7 +18,7 @@ from scheduler.db import plans, store
 from scheduler.db.session import Database
 from scheduler.model.request import RequestSpec
 from scheduler.sky.ephemeris import SkyCache
-from scheduler.sky.night import Night, compute_night, night_date_for
+from scheduler.sky.night import Night, night_date_for, night_for
 from scheduler.model.plan import PlanEntry, PlanResult
 
 
@@ -53,17 +52,11 @@ class Planner:
     def __init__(self, config: ObservatoryConfig, sky_cache: SkyCache | None = None):
         self.config = config
         self.sky_cache = sky_cache or SkyCache()
-        self._nights: dict[tuple[date, int], Night] = {}
-        self._lock = threading.Lock()
 
     # ---------------------------------------------------------------- pure-ish helpers
 
     def night(self, night_date: date) -> Night:
-        key = (night_date, self.config.planning.step_s)
-        with self._lock:
-            if key not in self._nights:
-                self._nights[key] = compute_night(self.config.site, night_date, self.config.planning.step_s)
-            return self._nights[key]
+        return night_for(self.config.site, night_date, self.config.planning.step_s)
 
     def night_date(self, when: datetime | None = None) -> date:
         return night_date_for(self.config.site, when or datetime.now(timezone.utc))
@@ -143,7 +136,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
     Returns (version, violations). Used by `nightplan plan check` and the crash-safety tests.
     Requests are checked as they were when the plan was made (later outcomes are undone).
     """
-    from scheduler.planning.pipeline import _now_step, _with_steps, target_rows_for
+    from scheduler.planning.pipeline import entries_on_grid, target_rows_for
     from scheduler.solve.checker import check_plan
 
     planner = planner or Planner(config)
@@ -173,7 +166,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
             samples = [sample_of(r) for r in rep.samples]
         night_date, planned_from, report_id = plan.night, plan.planned_from, plan.conditions_report_id
     night = planner.night(night_date)
-    entries = _with_steps(stored, night)
+    entries = entries_on_grid(stored, night)
     if len(entries) != len(stored):
         return version, [f"{len(stored) - len(entries)} entries fall outside the night of {night_date}"]
     spec_list = list(specs.values())
@@ -181,5 +174,5 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
     sky = planner.sky_cache.get(config.site, night, ra, dec)
     row_by_id = {sp.id: int(r) for sp, r in zip(spec_list, rows)}
     cond = planner.conditions(night, samples, report_id)
-    now_step = _now_step(night, planned_from) if planned_from > night.start else 0
+    now_step = night.step_of(planned_from)
     return version, check_plan(entries, specs, row_by_id, sky, cond, config, now_step=now_step)

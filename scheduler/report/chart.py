@@ -35,6 +35,7 @@ import numpy as np
 from scheduler.conditions.grid import conditions_on_grid
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
+from scheduler.model.timegrid import runs
 from scheduler.sky.night import Night
 
 WIDTH_IN, HEIGHT_IN, DPI = 16.0, 9.0, 110  # 1760 x 990 px: a console screen, no scrolling
@@ -195,12 +196,6 @@ def place_boxes(wanted: Sequence[tuple[float, float, float, float]], bounds: tup
     return out
 
 
-def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
-    m = np.concatenate([[False], np.asarray(mask, dtype=bool), [False]]).astype(np.int8)
-    d = np.flatnonzero(np.diff(m))
-    return list(zip(d[0::2].tolist(), d[1::2].tolist()))
-
-
 # --------------------------------------------------------------------------- reading what the chart needs
 
 def plan_samples(s, report_id: int | None) -> list:
@@ -284,7 +279,7 @@ def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
     sun = sky.sun_alt_deg
     handles = []
     for lo, hi, colour, label in twilight_shades(style):
-        for a, b in _runs((sun > lo) & (sun <= hi)):
+        for a, b in runs((sun > lo) & (sun <= hi)):
             x1 = x[b] if b < len(x) else x_end
             for axis in (ax, axt, axc):
                 axis.axvspan(x[a], x1, color=colour, lw=0, zorder=0)
@@ -325,8 +320,8 @@ def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
             continue
         c = colours.get(e["band"], st.text)
         state = entry_state(e, now)
-        i0 = night.index_at(_t(e["start"]))
-        i1 = max(night.index_at(_t(e["end"])), i0 + 1)
+        i0 = min(night.step_of(_t(e["start"])), night.n_times - 1)
+        i1 = max(min(night.step_of(_t(e["end"])), night.n_times - 1), i0 + 1)
         seg = slice(i0, min(i1 + 1, len(x)))
         alt = alts[r]
         if state == "in progress":
@@ -368,7 +363,7 @@ def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
             axt.add_patch(ring)
         block_artists.append((e, x0, x1))
     closed = ~cond.dome_open | (cond.wind_ms > config.safety.max_wind_ms) | (cond.humidity_pct > config.safety.max_humidity_pct)
-    for a, b in _runs(closed):
+    for a, b in runs(closed):
         x1 = x[b] if b < len(x) else x_end
         axt.axvspan(x[a], x1, color=st.closure, alpha=0.35, lw=0, zorder=4)
         ax.axvspan(x[a], x1, ymin=0, ymax=tel.min_altitude_deg / 90, color=st.closure, alpha=0.3, lw=0, zorder=2)
@@ -438,10 +433,10 @@ def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
         sp.set_color(st.muted)
     pmax = max([float(np.nanmax(cond.pwv_mm)) if cond.pwv_mm.size else 1.0] + [v for _, v in m_pwv])
     axp.set_ylim(0, max(1.0, pmax * 1.2))
-    for a, b in _runs(~cond.covered):
+    for a, b in runs(~cond.covered):
         axc.axvspan(x[a], x[b] if b < len(x) else x_end, facecolor="none", hatch="//", edgecolor=st.muted, lw=0,
                     zorder=1)
-    for a, b in _runs(closed):
+    for a, b in runs(closed):
         axc.axvspan(x[a], x[b] if b < len(x) else x_end, color=st.closure, alpha=0.25, lw=0, zorder=1)
     c = p["conditions"]
     src = f"report {c['report_id']} ({c['source']})" if c["report_id"] is not None else "no report: defaults"

@@ -36,7 +36,7 @@ from zoneinfo import ZoneInfo
 from sqlalchemy import select
 
 from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
-from scheduler.model.request import iso
+from scheduler.model.timegrid import iso
 from scheduler.sky.night import Night
 
 CAUTION = ("Advisory plan only: the observatory's interlocks and its licensed operators decide what the "

@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from scheduler.model.request import iso
+from scheduler.model.timegrid import iso
 
 
 def _t(s: str) -> datetime:

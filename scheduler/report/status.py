@@ -11,7 +11,7 @@ from typing import Any
 from sqlalchemy import select
 
 from scheduler.db.session import Database
-from scheduler.model.request import iso
+from scheduler.model.timegrid import iso
 
 
 def status_document(db: Database) -> dict[str, Any]:

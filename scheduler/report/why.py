@@ -22,7 +22,7 @@ Value of one execution (solve/problem.py): weight x priority/5 x exposure_h x me
 from __future__ import annotations
 
 import math
-from datetime import datetime, timezone
+from datetime import datetime
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -31,16 +31,14 @@ import numpy as np
 from scheduler.conditions.grid import ConditionsGrid
 from scheduler.model.config import ObservatoryConfig
 from scheduler.constraints.feasibility import TRANSMISSION_FLOOR, Reason, evaluate, reason_names, start_windows
-from scheduler.model.request import RequestSpec, iso
+from scheduler.model.request import RequestSpec
+from scheduler.model.timegrid import iso
 from scheduler.sky.ephemeris import SkyGrid
 from scheduler.sky.night import Night
-from scheduler.constraints.windows import DESCRIPTION, runs
+from scheduler.constraints.windows import DESCRIPTION
+from scheduler.model.timegrid import runs, utc
 
 _NIGHT_END = int(Reason.NIGHT_END)
-
-
-def _utc(x: float) -> datetime:
-    return datetime.fromtimestamp(float(x), tz=timezone.utc)
 
 
 def _t(s: str) -> datetime:
@@ -48,7 +46,7 @@ def _t(s: str) -> datetime:
 
 
 def base_value(spec: RequestSpec, weights: dict[str, float]) -> float:
-    from scheduler.solve.problem import science_base_value
+    from scheduler.solve.objective import science_base_value
 
     return float(science_base_value(spec, weights))
 
@@ -187,7 +185,7 @@ def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: Sky
     tz = ZoneInfo(config.site.timezone)
 
     def fmt_t(x: float | datetime) -> str:
-        t = _utc(x) if not isinstance(x, datetime) else x
+        t = utc(x) if not isinstance(x, datetime) else x
         return f"{t.strftime('%H:%M')} UTC ({t.astimezone(tz).strftime('%H:%M')} local)"
 
     out: dict[str, Any] = {
@@ -220,7 +218,7 @@ def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: Sky
     feas = evaluate([spec], np.array([0]), sky, cond, config)
     n_t = night.n_times
     planned_from = _t(doc["plan"]["planned_from"])
-    now_step = night.index_at(planned_from) if planned_from > night.start else 0
+    now_step = night.step_of(planned_from)
     d = int(feas.duration_steps[0])
     step = night.step_s
     starts = np.flatnonzero(feas.start_ok[0, now_step:]) + now_step
@@ -240,7 +238,7 @@ def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: Sky
         c = next((i for _, _, i in details if i is not None), None)
         if c is None:
             c = _closest(feas.reasons[0], now_step) if n_t else 0
-        out["closest"] = {"time": iso(_utc(sky.night.times_unix[c])),
+        out["closest"] = {"time": iso(utc(sky.night.times_unix[c])),
                           "failing": reason_names(int(feas.reasons[0, c]) & ~_NIGHT_END)}
         out["details"] = {n: txt for n, txt, _ in details if txt}
         ok_runs = [(a, z) for a, z in runs(feas.ok[0, now_step:])]
@@ -289,7 +287,7 @@ def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: Sky
     out["feasible_minutes"] = round(starts.size * step / 60.0, 1)
     out["displaced_by"] = [{"request_id": ent[i]["request_id"], "target": ent[i]["target"], "start": ent[i]["start"],
                             "end": ent[i]["end"], "value": ent[i]["value"]} for i in blockers]
-    out["best_start"] = iso(_utc(t[starts[best]]))
+    out["best_start"] = iso(utc(t[starts[best]]))
     out["value_at_best"] = round(float(own[best]), 4)
     out["value_needed"] = round(need, 4)
     merit_b = float(feas.merit[0, starts[best]])
@@ -331,4 +329,4 @@ def _start_runs(starts: np.ndarray, t: np.ndarray) -> list[dict[str, str]]:
     if starts.size == 0:
         return []
     cut = np.flatnonzero(np.diff(starts) != 1) + 1
-    return [{"start": iso(_utc(t[g[0]])), "last_start": iso(_utc(t[g[-1]]))} for g in np.split(starts, cut)]
+    return [{"start": iso(utc(t[g[0]])), "last_start": iso(utc(t[g[-1]]))} for g in np.split(starts, cut)]

@@ -11,7 +11,7 @@ import time
 from datetime import datetime, timedelta, timezone
 
 from scheduler.model.errors import InputError
-from scheduler.model.request import iso, parse_time
+from scheduler.model.timegrid import iso, parse_time
 
 CLOCK_ENV = "NIGHTPLAN_CLOCK"
 

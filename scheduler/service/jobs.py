@@ -22,7 +22,8 @@ from scheduler.db.models import ConditionsReport, Outcome, Plan, ReplanOrder, Re
 from scheduler.db.session import Database
 from scheduler.model.errors import InputError
 from scheduler.planning.planner import Planner, sample_of
-from scheduler.model.request import ACTIVE_STATUSES, iso
+from scheduler.model.request import ACTIVE_STATUSES
+from scheduler.model.timegrid import iso
 from scheduler.service.clock import Clock
 from scheduler.service.log import EventLog
 from scheduler.service.validity import Planned, conditions_changes, entry_failures, outranking_requests

@@ -19,7 +19,7 @@ from sqlalchemy.exc import IntegrityError
 
 from scheduler.db.models import ServiceLock, utcnow
 from scheduler.db.session import Database
-from scheduler.model.request import iso
+from scheduler.model.timegrid import iso
 
 LOCK_NAME = "service"
 REFRESH_S = 5.0  # heartbeat period

@@ -29,7 +29,7 @@ from scheduler.constraints.feasibility import Feasibility, Reason, evaluate, sta
 from scheduler.model.request import RequestSpec
 from scheduler.sky.ephemeris import SkyCache
 from scheduler.sky.night import Night
-from scheduler.solve.problem import science_base_value
+from scheduler.solve.objective import science_base_value
 
 
 @dataclass(frozen=True)
@@ -45,15 +45,6 @@ def hhmm(t: datetime) -> str:
     return t.astimezone(timezone.utc).strftime("%H:%M UTC")
 
 
-def now_index(night: Night, now: datetime) -> int:
-    """First grid step that is not over at ``now`` (0 before the night, n_t after it)."""
-    t = now.timestamp()
-    times = night.times_unix
-    if times.size == 0 or t < times[0]:
-        return 0
-    return int(np.searchsorted(times, t, side="right")) - 1 if t < times[-1] + night.step_s else int(times.size)
-
-
 def feasibility_for(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, specs: Sequence[RequestSpec],
                     cond: ConditionsGrid) -> Feasibility:
     ra = np.array([s.ra_deg for s in specs], dtype=np.float64)
@@ -66,7 +57,7 @@ def feasibility_for(config: ObservatoryConfig, night: Night, sky_cache: SkyCache
 def conditions_changes(config: ObservatoryConfig, night: Night, old: ConditionsGrid, new: ConditionsGrid,
                        now: datetime) -> list[str]:
     p = config.planning
-    return compare(old, new, now_index(night, now), p.replan_seeing_change_arcsec, p.replan_pwv_change_mm,
+    return compare(old, new, night.step_of(now), p.replan_seeing_change_arcsec, p.replan_pwv_change_mm,
                    safety=config.safety, times_unix=night.times_unix)
 
 
@@ -95,7 +86,7 @@ def _why(bits: int, spec: RequestSpec, cond: ConditionsGrid, a: int, b: int) -> 
 def entry_failures(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, entries: Sequence[Planned],
                    specs: dict[int, RequestSpec], cond: ConditionsGrid, now: datetime) -> list[str]:
     """Planned entries (from now to their end) whose constraints fail under ``cond``."""
-    i0 = now_index(night, now)
+    i0 = night.step_of(now)
     todo = [e for e in entries if e.end > now and e.request_id in specs]
     if not todo or i0 >= night.n_times:
         return []
@@ -121,7 +112,7 @@ def outranking_requests(config: ObservatoryConfig, night: Night, sky_cache: SkyC
                         remaining: Sequence[RequestSpec], weights: dict[str, float], cond: ConditionsGrid,
                         now: datetime) -> list[str]:
     """New requests worth a re-plan (see module doc)."""
-    i0 = now_index(night, now)
+    i0 = night.step_of(now)
     if not new or i0 >= night.n_times:
         return []
     feas = feasibility_for(config, night, sky_cache, list(new), cond)

@@ -9,9 +9,9 @@ from zoneinfo import ZoneInfo
 import numpy as np
 
 from scheduler.model.config import ObservatoryConfig
-from scheduler.model.request import iso
+from scheduler.model.timegrid import iso
 from scheduler.sky.ephemeris import compute_sky
-from scheduler.sky.night import compute_night
+from scheduler.sky.night import night_for
 
 EVENTS = ("sunset", "civil_dusk", "nautical_dusk", "astronomical_dusk",
           "astronomical_dawn", "nautical_dawn", "civil_dawn", "sunrise")
@@ -19,7 +19,7 @@ EVENTS = ("sunset", "civil_dusk", "nautical_dusk", "astronomical_dusk",
 
 def almanac_for(config: ObservatoryConfig, night_date: date) -> dict[str, Any]:
     site = config.site
-    night = compute_night(site, night_date, config.planning.step_s)
+    night = night_for(site, night_date, config.planning.step_s)
     sky = compute_sky(site, night, np.empty(0), np.empty(0))
     tz = ZoneInfo(site.timezone)
     step_h = night.step_s / 3600.0

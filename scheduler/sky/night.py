@@ -10,6 +10,8 @@ Altitudes are true (unrefracted) altitudes of the Sun's centre; sunset/sunrise u
 
 from __future__ import annotations
 
+import functools
+
 from dataclasses import dataclass
 from datetime import date, datetime, time, timedelta, timezone
 from zoneinfo import ZoneInfo
@@ -19,6 +21,7 @@ import numpy as np
 from scheduler.model.config import Site
 from scheduler.model.errors import InputError
 from scheduler.sky.offline import configure_offline
+from scheduler.model.timegrid import step_of, utc
 
 SUNSET_ALT_DEG = -0.833
 CIVIL_ALT_DEG = -6.0
@@ -55,11 +58,9 @@ class Night:
     def end(self) -> datetime:
         return self.sunrise
 
-    def index_at(self, when: datetime) -> int:
-        """Grid step containing ``when`` (clipped to the grid). Helper added to the contract."""
-        t = when.timestamp()
-        i = int(np.searchsorted(self.times_unix, t, side="right")) - 1
-        return min(max(i, 0), self.n_times - 1)
+    def step_of(self, when: datetime) -> int:
+        """The grid step of ``when``: see ``timegrid.step_of`` (rounds up; 0..n_times)."""
+        return step_of(self.times_unix, when)
 
 
 # --------------------------------------------------------------------------- Sun altitude
@@ -113,10 +114,6 @@ def _crossings(site: Site, t0: float, t1: float, levels: tuple[float, ...]):
     return out, tc, ac
 
 
-def _utc(t: float) -> datetime:
-    return datetime.fromtimestamp(t, tz=timezone.utc)
-
-
 def _local_noon_unix(site: Site, d: date) -> float:
     return datetime.combine(d, time(12, 0), tzinfo=ZoneInfo(site.timezone)).timestamp()
 
@@ -166,12 +163,12 @@ def compute_night(site: Site, night_date: date, step_s: int = 60) -> Night:
     times = start + np.arange(max(n, 0), dtype=np.float64) * step_s
 
     def dt(x):
-        return None if x is None else _utc(x)
+        return None if x is None else utc(x)
 
     return Night(
         date=night_date,
-        sunset=_utc(sunset),
-        sunrise=_utc(sunrise),
+        sunset=utc(sunset),
+        sunrise=utc(sunrise),
         civil_dusk=dt(events["civil"][0]),
         civil_dawn=dt(events["civil"][1]),
         nautical_dusk=dt(events["nautical"][0]),
@@ -181,6 +178,13 @@ def compute_night(site: Site, night_date: date, step_s: int = 60) -> Night:
         step_s=int(step_s),
         times_unix=times,
     )
+
+
+@functools.lru_cache(maxsize=32)
+def night_for(site: Site, night_date: date, step_s: int = 60) -> Night:
+    """``compute_night`` remembered for the process: the one night cache (a build, the CLI, the
+    service and the demo ask for the same night many times). Callers must not modify the Night."""
+    return compute_night(site, night_date, step_s)
 
 
 def night_date_for(site: Site, when: datetime) -> date:

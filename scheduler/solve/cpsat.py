@@ -34,7 +34,9 @@ from typing import Callable, Sequence
 import numpy as np
 from ortools.sat.python import cp_model
 
-from scheduler.solve.problem import Placement, Problem, VALUE_SCALE, objective_of
+from scheduler.solve.objective import VALUE_SCALE
+from scheduler.solve.problem import Placement, Problem, objective_of
+from scheduler.model.timegrid import consecutive_runs
 
 
 @dataclass
@@ -140,7 +142,7 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
             s = m.NewIntVar(int(ex.fixed_start), int(ex.fixed_start), f"start_{name}")
             m.Add(p == 1)
         else:
-            dom = cp_model.Domain.FromIntervals([[int(lo), int(hi)] for lo, hi in _runs_of(ex.starts)])
+            dom = cp_model.Domain.FromIntervals([[int(lo), int(hi)] for lo, hi in consecutive_runs(ex.starts)])
             s = m.NewIntVarFromDomain(dom, f"start_{name}")
         tmin.append(min([tmax_j] + T_in))
         pre = m.NewIntVar(tmin[-1], horizon, f"transition_before_{name}")
@@ -223,15 +225,6 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
         m.Add(sum(objective) <= int(upper_bound))
     m.Maximize(sum(objective))
     return m, ModelVars(present, start, before, buckets, follows, after_gap, keep, gap_starts, tmin)
-
-
-def _runs_of(starts: np.ndarray) -> list[tuple[int, int]]:
-    if starts.size == 0:
-        return []
-    br = np.flatnonzero(np.diff(starts) != 1)
-    lo = np.concatenate([[starts[0]], starts[br + 1]])
-    hi = np.concatenate([starts[br], [starts[-1]]])
-    return list(zip(lo.tolist(), hi.tolist()))
 
 
 def add_hint(model: cp_model.CpModel, v: ModelVars, problem: Problem, plan: Sequence[Placement]) -> None:

@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from datetime import datetime
 from typing import Sequence
 
 import numpy as np
@@ -27,9 +26,9 @@ import numpy as np
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.plan import PlanEntry
+from scheduler.solve.objective import VALUE_SCALE, merit_buckets, science_base_value
 from scheduler.solve.transitions import pair_transition_steps
 
-VALUE_SCALE = 10_000  # objective units per unit of science value (integer objective for CP-SAT)
 
 
 # --------------------------------------------------------------------------- problem
@@ -91,34 +90,6 @@ class Problem:
         except ValueError:
             c = int(ex.bucket_coef.max()) if ex.bucket_coef.size else 0
         return int(round(self.stability_weight * c))
-
-
-def science_base_value(spec: RequestSpec, program_weights: dict[str, float]) -> float:
-    w = float(program_weights.get(spec.program, 1.0))
-    return w * (spec.priority / 5.0) * (spec.exposure_s / 3600.0)
-
-
-def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
-    """Inclusive (lo, hi) runs of True in a 1-D bool array."""
-    if not mask.any():
-        return []
-    m = np.concatenate([[False], mask, [False]]).astype(np.int8)
-    d = np.diff(m)
-    lo = np.flatnonzero(d == 1)
-    hi = np.flatnonzero(d == -1) - 1
-    return list(zip(lo.tolist(), hi.tolist()))
-
-
-def _buckets(starts_mask: np.ndarray, merit: np.ndarray, base: float, bucket_steps: int):
-    lo_l, hi_l, coef_l = [], [], []
-    for lo, hi in _runs(starts_mask):
-        for b0 in range(lo, hi + 1, bucket_steps):
-            b1 = min(hi, b0 + bucket_steps - 1)
-            m = float(np.min(merit[b0:b1 + 1]))
-            lo_l.append(b0)
-            hi_l.append(b1)
-            coef_l.append(max(1, int(round(VALUE_SCALE * base * m))))
-    return (np.array(lo_l, dtype=np.int64), np.array(hi_l, dtype=np.int64), np.array(coef_l, dtype=np.int64))
 
 
 def _sliding_all(ok: np.ndarray, d: int) -> np.ndarray:
@@ -259,7 +230,7 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
                 continue
             mask = np.zeros(n_t, dtype=bool)
             mask[starts] = True
-            lo, hi, coef = _buckets(mask, merit, base[i], max(1, bucket_steps))
+            lo, hi, coef = merit_buckets(mask, merit, base[i], max(1, bucket_steps))
             execs.append(Execution(i, k, d, starts, lo, hi, coef, fixed, False, prev_start))
 
     # Transition bounds between requests from where each can end to where each can start.

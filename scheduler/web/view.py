@@ -16,7 +16,7 @@ from zoneinfo import ZoneInfo
 from sqlalchemy import func, select
 
 from scheduler.model.config import ObservatoryConfig
-from scheduler.model.request import iso
+from scheduler.model.timegrid import iso
 
 
 def _t(s: str | None) -> datetime | None:

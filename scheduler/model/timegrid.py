@@ -1,0 +1,86 @@
+"""Time and grid rules, one home for each: ISO-8601 in and out, UTC helpers, the grid step of a
+moment, and runs of True on a grid. Imports nothing of ours beyond errors."""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+from typing import Any
+
+import numpy as np
+
+from scheduler.model.errors import InputError
+
+MIN_YEAR, MAX_YEAR = 1900, 2200  # the ephemerides (IERS, planetary series) are trusted in this span
+
+
+def utc(unix_s: float) -> datetime:
+    """Aware UTC datetime of a unix time in seconds."""
+    return datetime.fromtimestamp(float(unix_s), tz=timezone.utc)
+
+
+def utcnow() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+def as_utc(t: datetime) -> datetime:
+    """An aware UTC datetime; a naive one is taken as UTC (the database stores naive UTC)."""
+    return t.replace(tzinfo=timezone.utc) if t.tzinfo is None else t.astimezone(timezone.utc)
+
+
+def iso(t: datetime | None) -> str | None:
+    """ISO-8601 UTC with a Z, to the second."""
+    if t is None:
+        return None
+    return as_utc(t).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def parse_time(value: Any, field_name: str) -> datetime:
+    """ISO-8601; a time without a zone is taken as UTC. Returns an aware UTC datetime."""
+    if isinstance(value, datetime):
+        t = value
+    else:
+        s = str(value).strip()
+        if s.endswith(("Z", "z")):
+            s = s[:-1] + "+00:00"
+        try:
+            t = datetime.fromisoformat(s)
+        except ValueError:
+            raise InputError(field_name, f"{value!r} is not an ISO-8601 time (e.g. 2026-12-05T03:30:00Z)") from None
+    if t.tzinfo is not None and not (MIN_YEAR <= t.year <= MAX_YEAR):
+        # checked before the conversion: years 1 and 9999 with an offset overflow astimezone
+        raise InputError(field_name, f"{value!r}: year must be from {MIN_YEAR} to {MAX_YEAR}")
+    t = as_utc(t)
+    if not (MIN_YEAR <= t.year <= MAX_YEAR):
+        raise InputError(field_name, f"{value!r}: year must be from {MIN_YEAR} to {MAX_YEAR}")
+    return t
+
+
+def step_of(times_unix: np.ndarray, when: datetime | float) -> int:
+    """The grid step of a moment: the first step that starts at or after ``when``.
+
+    It rounds up, and that is the one rule everywhere (planning from now, re-plans, the
+    service's validity checks, explanations, charts): nothing new may start in the past, so
+    the step already under way when ``when`` falls inside it belongs to what came before. A
+    moment on a step boundary (within a microsecond) is that step. Before the grid it is 0,
+    after its last step it is ``len(times_unix)``.
+    """
+    t = when.timestamp() if isinstance(when, datetime) else float(when)
+    return int(np.searchsorted(times_unix, t - 1e-6, side="left"))
+
+
+def runs(mask: np.ndarray) -> list[tuple[int, int]]:
+    """Half-open index runs [start, end) where a 1-D mask is True."""
+    m = np.concatenate([[False], np.asarray(mask, dtype=bool), [False]]).astype(np.int8)
+    d = np.flatnonzero(np.diff(m))
+    return list(zip(d[0::2].tolist(), d[1::2].tolist()))
+
+
+def consecutive_runs(values: np.ndarray) -> list[tuple[int, int]]:
+    """Inclusive (first, last) runs of consecutive integers in a sorted 1-D array."""
+    values = np.asarray(values)
+    if values.size == 0:
+        return []
+    br = np.flatnonzero(np.diff(values) != 1)
+    lo = np.concatenate([[values[0]], values[br + 1]])
+    hi = np.concatenate([values[br], [values[-1]]])
+    return list(zip(lo.tolist(), hi.tolist()))
