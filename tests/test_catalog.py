@@ -10,9 +10,10 @@ entry without a scene here fails ``test_every_entry_has_a_scene``.
 from __future__ import annotations
 
 import ast
+import re
 from collections import Counter
 from dataclasses import dataclass
-from datetime import timedelta
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Callable
 
@@ -25,8 +26,9 @@ from scheduler.constraints.feasibility import evaluate
 from scheduler.constraints.windows import binding_constraint
 from scheduler.model.plan import PlanEntry
 from scheduler.planning.explain import why_not
-from scheduler.report.why import time_formatter
+from scheduler.report.why import explain, time_formatter
 from scheduler.service.validity import _why
+from scheduler.sky.airmass import kasten_young_1989
 from scheduler.solve import checker
 from scheduler.solve.checker import check_plan
 from scheduler.solve.problem import _REASON_LABELS, failing_constraint, never_feasible_reason
@@ -183,3 +185,47 @@ def test_validity_reasons_carry_the_numbers_in_catalog_order():
     text = _why(int(Reason.PWV | Reason.SEEING | Reason.MOON_SEP), spec, cd, 1, 3)
     assert text == ("moon separation, seeing up to 1.10 arcsec over its 0.8 arcsec limit, "
                     "PWV up to 4.0 mm over its 2 mm limit")
+
+
+# --------------------------------------------------------------------------- plan why after a mid-night re-plan
+
+def _doc(planned_from: datetime) -> dict:
+    return {"plan": {"version": 2, "planned_from": planned_from.strftime("%Y-%m-%dT%H:%M:%SZ"), "gap": 0.0},
+            "night": {"date": "2026-03-09"}, "entries": [], "unscheduled": []}
+
+
+def test_why_altitude_and_airmass_are_read_at_the_same_times():
+    """After a re-plan from step 20: steps 20-34 the target is high but too close to the Moon,
+    steps 35-59 only the altitude fails (5..12 deg). The altitude figure comes from the times when
+    only the binding constraint fails; the airmass figure must come from the same times."""
+    n_t, now = 60, 20
+    alt = np.full(n_t, 60.0)
+    alt[35:] = np.linspace(12.0, 5.0, n_t - 35)
+    moon_sep = np.full((1, n_t), 90.0)
+    moon_sep[0, :35] = 10.0
+    sk = sky(alt, moon_alt=20.0, moon_sep=moon_sep)
+    spec = req("R", id=7, max_airmass=2.0, min_moon_sep_deg=30.0)
+    night = sk.night
+    res = explain(CFG, spec, night, sk, cond(n_t), _doc(T0 + timedelta(seconds=now * STEP_S)), {"P1": 1.0})
+    assert res["state"] == "never_feasible" and res["binding"] == ["ALTITUDE"]
+    text = res["details"]["ALTITUDE"]
+    m = re.search(r"highest altitude (-?[\d.]+) deg at (\d\d:\d\d) UTC.*lowest airmass ([\d.]+)", text)
+    assert m, text
+    assert float(m.group(1)) == pytest.approx(12.0, abs=0.05)
+    # Kasten & Young (1989) airmass at the reported altitude, not the 60 deg time (1.15) the Moon forbids
+    assert float(m.group(3)) == pytest.approx(float(kasten_young_1989(12.0)), abs=0.006)
+    assert res["closest"]["time"] == datetime.fromtimestamp(night.times_unix[35], timezone.utc).strftime(
+        "%Y-%m-%dT%H:%M:%SZ")
+    assert m.group(2) == res["closest"]["time"][11:16]
+    assert "after the plan's start" in res["explanation"][0]
+
+
+def test_why_airmass_below_the_horizon_is_said_so():
+    n_t = 40
+    alt = np.linspace(-0.2, -9.0, n_t)
+    sk = sky(alt)
+    spec = req("R", id=8, max_airmass=2.0)
+    res = explain(CFG, spec, sk.night, sk, cond(n_t), _doc(T0), {"P1": 1.0})
+    assert res["binding"] == ["ALTITUDE"]
+    assert "highest altitude -0.2 deg" in res["details"]["ALTITUDE"]
+    assert "lowest airmass none (below the horizon)" in res["details"]["ALTITUDE"]

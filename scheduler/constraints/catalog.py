@@ -128,7 +128,7 @@ class Closeness:
 
     ``focus`` (bool over the steps from now_step): where any is True, "best" looks only there
     (the times when nothing but the binding constraints fail), so the figure is from a time
-    that would work were this constraint lifted.
+    that would work were this constraint lifted. Every figure of one detail uses these times.
     """
 
     spec: RequestSpec
@@ -207,8 +207,8 @@ class Altitude(Constraint):
         txt = (f"highest altitude {alt[i]:.1f} deg at {c.at(i)}; the telescope needs "
                f"{tel.min_altitude_deg:g} to {tel.max_altitude_deg:g} deg")
         if c.spec.max_airmass is not None:
-            amv = np.asarray(c.sky.airmass[0, c.sl], dtype=np.float64)
-            am = float(amv[int(np.argmin(np.where(np.isfinite(amv), amv, np.inf)))])
+            # the airmass at the same time as the altitude (the lowest airmass of the same times)
+            am = float(c.sky.airmass[0, c.now_step + i])
             low = f"{am:.2f}" if np.isfinite(am) else "none (below the horizon)"
             txt += f"; lowest airmass {low}, its max_airmass is {c.spec.max_airmass:g}"
         return txt, c.now_step + i
