@@ -23,6 +23,7 @@ from typing import Sequence
 
 import numpy as np
 
+from scheduler.constraints.catalog import STEP_CONSTRAINTS
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.plan import PlanEntry
@@ -102,11 +103,8 @@ def _sliding_all(ok: np.ndarray, d: int) -> np.ndarray:
     return out
 
 
-_REASON_LABELS = {
-    1 << 0: "altitude", 1 << 1: "twilight", 1 << 2: "moon separation", 1 << 3: "sky brightness",
-    1 << 4: "seeing", 1 << 5: "resolution", 1 << 6: "pwv", 1 << 7: "transmission", 1 << 8: "cloud",
-    1 << 9: "closure", 1 << 10: "sun avoidance", 1 << 11: "window", 1 << 12: "night end",
-}
+# The solver's words for each constraint are the catalog's labels ("never feasible: <label>").
+_REASON_LABELS = {int(c.reason): c.label for c in STEP_CONSTRAINTS}  # NIGHT_END is about starts, not steps
 
 
 def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step: int, duration: int,
@@ -118,10 +116,10 @@ def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step:
         return "never feasible: night over"
     if ok.any():
         return f"never feasible: no window of {duration * step_s / 60:.0f} min"
-    always = [lab for bit, lab in _REASON_LABELS.items() if bit != 1 << 12 and np.all(r & bit)]
+    always = [lab for bit, lab in _REASON_LABELS.items() if np.all(r & bit)]
     if always:
         return "never feasible: " + always[0]
-    counts = {lab: int(np.count_nonzero(r & bit)) for bit, lab in _REASON_LABELS.items() if bit != 1 << 12}
+    counts = {lab: int(np.count_nonzero(r & bit)) for bit, lab in _REASON_LABELS.items()}
     top = sorted((c, lab) for lab, c in counts.items() if c)[::-1][:2]
     return "never feasible: " + " + ".join(lab for _, lab in top)
 
@@ -129,7 +127,7 @@ def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step:
 def failing_constraint(reasons: np.ndarray) -> str:
     """The constraint that fails most often over these steps (its label)."""
     r = np.asarray(reasons).astype(np.int64)
-    counts = [(int(np.count_nonzero(r & bit)), lab) for bit, lab in _REASON_LABELS.items() if bit != 1 << 12]
+    counts = [(int(np.count_nonzero(r & bit)), lab) for bit, lab in _REASON_LABELS.items()]
     n, lab = max(counts)
     return lab if n else "unknown"
 
