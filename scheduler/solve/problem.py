@@ -225,11 +225,16 @@ def _request_executions(spec: RequestSpec, r: int, feas, prevs: list[PlanEntry],
                                       p.start_step))
         else:
             interrupted = "interrupted: " + failing_constraint(feas.reasons[r, now_step:p.end_step])
+    queue = list(prevs[pi:])
     for k in range(max(0, spec.remaining_repeats - len(out))):
         d = d0 if (k == 0 and not out) else d_full
         mask = so0 if d == d0 else so_full
-        p = prevs[pi] if pi < len(prevs) else None
-        pi += 1
+        # Previous entries are matched to the executions still owed in order; one that can no
+        # longer start where it stood yields to the next one that can (else that one, kept
+        # where it stands, would have to wait for a repeat that cannot come first).
+        while len(queue) > 1 and not _can_start(mask, queue[0]) and _can_start(mask, queue[1]):
+            queue.pop(0)
+        p = queue.pop(0) if queue else None
         fixed = None
         if p is not None and now_step <= p.start_step < now_step + freeze_steps and mask[p.start_step]:
             fixed = p.start_step
@@ -243,6 +248,10 @@ def _request_executions(spec: RequestSpec, r: int, feas, prevs: list[PlanEntry],
     else:
         free = []
     return [x for x in out if x.in_progress] + free, interrupted
+
+
+def _can_start(mask: np.ndarray, entry: PlanEntry) -> bool:
+    return 0 <= entry.start_step < mask.size and bool(mask[entry.start_step])
 
 
 def _executions(plans: list[list[_ExecutionPlan]], rows: np.ndarray, merit_all: np.ndarray, base: np.ndarray,
