@@ -11,11 +11,12 @@ import numpy as np
 import pytest
 
 import scheduler.planning.pipeline as pipeline
-from scheduler.planning.pipeline import build_plan
+from scheduler.model.errors import InputError
+from scheduler.planning.pipeline import BuildOptions, build_plan
 from scheduler.solve.cpsat import SolveOutcome
 from scheduler.solve.objective import VALUE_SCALE
 
-from test_solver import CFG, T0, assert_clean, effort, make_cond, make_night, make_sky, random_scene, req
+from test_solver import CFG, T0, TEST_EFFORT, assert_clean, effort, make_cond, make_night, make_sky, random_scene, req
 
 N_T = 300
 
@@ -144,12 +145,50 @@ def test_sky_grid_must_hold_the_targets(base):
         build_plan(CFG, reqs + [stranger], w, night, cond, sky=sky, options=effort())
 
 
+def test_same_inputs_effort_and_seed_give_the_identical_plan(base):
+    """The deterministic work budget: no stage reads the clock, so two builds agree exactly."""
+    night, sky, cond, reqs, w, _ = base
+    a, b = (build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort(seed=5)) for _ in range(2))
+    assert_clean(a)
+    assert a.entries == b.entries and a.objective == b.objective and a.bound == b.bound
+    assert a.solver_status == b.solver_status and a.unscheduled == b.unscheduled
+    work = ("randomized_runs", "ruin_recreate_iterations", "lagrangian_iterations", "sequence_bound_iterations")
+    assert [a.stats[k] for k in work] == [b.stats[k] for k in work]
+    assert a.stats["effort"] == TEST_EFFORT and a.stats["time_limit_s"] is None and a.stats["solver_deterministic_limit"] > 0
+
+
+def test_work_grows_with_effort(base):
+    night, sky, cond, reqs, w, _ = base
+    one = build_plan(CFG, reqs, w, night, cond, sky=sky, options=BuildOptions(effort=1))
+    three = build_plan(CFG, reqs, w, night, cond, sky=sky, options=BuildOptions(effort=3))
+    assert_clean(one)
+    assert_clean(three)
+    assert three.stats["randomized_runs"] == 3 * one.stats["randomized_runs"] > 0
+    assert three.stats["solver_deterministic_limit"] == pytest.approx(3 * one.stats["solver_deterministic_limit"])
+
+
+@pytest.mark.parametrize("bad", [0, -1, 2.5, "3", True, 10**6])
+def test_effort_must_be_a_whole_number_in_range(bad):
+    with pytest.raises(InputError, match="effort"):
+        BuildOptions(effort=bad)
+
+
+def test_wall_clock_budget_still_plans(base):
+    """The default budget is the clock; what it finds varies, what it returns is always checked."""
+    night, sky, cond, reqs, w, _ = base
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, options=BuildOptions(time_limit_s=1.0))
+    assert_clean(res)
+    assert res.entries and res.objective >= res.greedy_objective - 1e-9
+    assert res.stats["time_limit_s"] == 1.0 and res.stats["effort"] is None
+
+
 def test_empty_queue():
     night = make_night(60)
     res = build_plan(CFG, [], {}, night, make_cond(60), sky=make_sky(night, np.zeros((0, 60)), np.zeros((0, 60))))
     assert res.solver_status == "EMPTY" and res.entries == () and res.violations == ()
 
 
+@pytest.mark.slow
 def test_real_sky_and_forecast_end_to_end():
     """compute_sky + conditions_on_grid + evaluate + solver + checker on a generated queue."""
     from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
@@ -187,6 +226,7 @@ def test_periodic_window_and_partial_exposure():
     assert q.end_step - q.start_step == 18
 
 
+@pytest.mark.slow
 def test_sky_cache_path_matches_a_computed_grid():
     from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
     from scheduler.conditions.grid import conditions_on_grid
@@ -288,6 +328,7 @@ def _still_feasible(g, now_step, first=None):
             and g["feas2"].ok[idx[e.request_id], e.start_step:e.end_step].all()]
 
 
+@pytest.mark.slow
 def test_generated_replan_with_unchanged_conditions_keeps_the_plan_unless_worth_more(generated):
     """Unchanged conditions: the previous plan still holds. The re-plan is worth at least keeping
     all of it (with the stability bonus), and keeps most of it: the time-limited search may find a
@@ -313,6 +354,7 @@ def test_generated_replan_with_unchanged_conditions_keeps_the_plan_unless_worth_
     assert res.objective >= sum(objective_of(P, keep_all)) / VALUE_SCALE - 1e-6
 
 
+@pytest.mark.slow
 def test_replan_after_a_small_change_is_worth_at_least_keeping_what_still_fits(generated):
     """Keeping every previous entry still feasible where it stands and dispatching around them is
     a valid plan of the same model (each kept entry earns 0.2 x its value): the re-plan may only
@@ -335,15 +377,18 @@ def test_replan_after_a_small_change_is_worth_at_least_keeping_what_still_fits(g
     assert res.objective >= sum(objective_of(P, kept_all)) / VALUE_SCALE - 1e-6
 
 
-@pytest.mark.parametrize("first_seed", [0, pytest.param(2, marks=pytest.mark.slow)])
-def test_replan_floor_is_the_previous_plan_filled_around(generated, monkeypatch, first_seed):
+@pytest.mark.parametrize("first_effort_seed", [None, pytest.param((2, 2), marks=pytest.mark.slow)])
+def test_replan_floor_is_the_previous_plan_filled_around(generated, monkeypatch, first_effort_seed):
     """With the searches finding nothing better and CP-SAT returning nothing, a re-plan must still
     keep every previous entry that remains feasible where it stands (the previous plan seeds the
     search and is part of the floor), not fall back to a from-scratch dispatch. A property of any
-    first plan: seed 2 gives one where a repeat's earlier execution no longer fits."""
+    first plan: effort 2, seed 2 gives one where a repeat's earlier execution no longer fits."""
     g = generated
-    first = g["first"] if first_seed == 0 else build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond"], sky=g["sky"],
-                                                            options=effort(seed=first_seed))
+    first = g["first"]
+    if first_effort_seed is not None:
+        e, seed = first_effort_seed
+        first = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond"], sky=g["sky"],
+                           options=BuildOptions(effort=e, seed=seed))
     monkeypatch.setattr(pipeline, "randomized_dispatch", lambda problem, **kw: (pipeline.greedy_plan(problem), 0))
     monkeypatch.setattr(pipeline, "ruin_and_recreate", lambda problem, plan, **kw: (list(plan), 0))
     monkeypatch.setattr(pipeline, "insertion_plan", lambda *a, **kw: [])
