@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from dataclasses import replace
 from datetime import date, datetime, timedelta, timezone
 
 import numpy as np
@@ -308,6 +309,24 @@ def test_excellent_conditions_go_to_the_request_that_needs_them():
     assert set(by) == {1, 2}
     assert 100 <= by[2].start_step and by[2].end_step <= 150
     assert not (100 <= by[1].start_step < 150)
+
+
+def test_a_repeat_that_cannot_fit_tonight_leaves_the_first_execution_planned():
+    """Partial exposure credited: the next execution is short enough for the two short windows,
+    the full-length repeat after it fits in neither. It stays out of the model, not the request."""
+    n_t = 300
+    night = make_night(n_t)
+    alt = np.full((2, n_t), 60.0)
+    alt[0] = 10.0
+    alt[0, 10:30] = alt[0, 200:220] = 60.0  # two 20-minute windows above the limit
+    sky = make_sky(night, alt, np.array([[0.0], [90.0]]) * np.ones((1, n_t)))
+    owed = replace(req(0, exposure_min=30, repeats=2, priority=9), partial_exposure_s=15 * 60.0)  # 18 steps, then 33
+    res = build_plan(CFG, [owed, req(1, exposure_min=20, priority=3)], {"P1": 1.0}, night, make_cond(n_t), sky=sky,
+                     options=effort())
+    assert_clean(res)
+    mine = [e for e in res.entries if e.request_id == 1]
+    assert [e.execution for e in mine] == [0] and mine[0].end_step - mine[0].start_step == 18
+    assert dict(res.unscheduled)[1] == "displaced (1 of 2 executions planned)"
 
 
 def test_never_feasible_request_stays_out_of_the_model():

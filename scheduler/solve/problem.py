@@ -239,8 +239,12 @@ def _request_executions(spec: RequestSpec, r: int, feas, prevs: list[PlanEntry],
         if p is not None and now_step <= p.start_step < now_step + freeze_steps and mask[p.start_step]:
             fixed = p.start_step
         out.append(_ExecutionPlan(d, np.flatnonzero(mask), fixed, False, p.start_step if p is not None else None))
-    # Cap executions at what can fit (start-to-start spacing >= max(duration, min_spacing)).
+    # Cap executions at what can fit (start-to-start spacing >= max(duration, min_spacing)); a
+    # repeat with no feasible start (the first may be shorter: partial exposure credited) ends
+    # the list, since repeats run in order.
     free = [x for x in out if not x.in_progress]
+    empty = [i for i, x in enumerate(free) if x.starts.size == 0]
+    free = free[:empty[0]] if empty else free
     if free and free[0].starts.size:
         span = int(free[0].starts[-1] - free[0].starts[0])
         spacing = _steps(spec.min_spacing_s or 0.0, step_s)
