@@ -34,7 +34,7 @@ from scheduler.sky.night import Night
 from scheduler.solve.bounds import LagrangianResult, lagrangian_bound, sequence_bound
 from scheduler.solve.budget import CpSatBudget, WorkBudget, check_effort
 from scheduler.solve.checker import check_plan, true_transition_s
-from scheduler.solve.cpsat import SolveOutcome, solve_problem
+from scheduler.solve.cpsat import SolveOutcome, model_size, solve_problem
 from scheduler.solve.greedy import DispatchTables, dispatch_tables, greedy_plan
 from scheduler.solve.heuristics import insertion_plan, randomized_dispatch, ruin_and_recreate
 from scheduler.solve.objective import VALUE_SCALE, objective_of, plan_value
@@ -64,6 +64,9 @@ class BuildOptions:
     progress: called with a short line at each stage and each CP-SAT solution.
     k_best_arcs, bucket_steps: model size (candidate predecessors per execution; merit
       bucket width in grid steps, 1 = exact).
+    started: the time.perf_counter() value the time limit counts from (default: when
+      build_plan is called). A caller that does work of its own before the build (reading the
+      queue, computing the sky) passes the time it started, so the limit bounds all of it.
     """
 
     now: datetime | None = None
@@ -77,6 +80,7 @@ class BuildOptions:
     progress: Callable[[str], None] | None = None
     k_best_arcs: int = 10
     bucket_steps: int = 10
+    started: float | None = None
 
     def __post_init__(self):
         if self.effort is not None:
@@ -96,6 +100,7 @@ class _Build:
     now_step: int
     timings: dict = field(default_factory=lambda: dict.fromkeys(("sky", "feasibility", "model", "solve", "check"), 0.0))
     cpsat_budget: CpSatBudget | None = None
+    cpsat_decision: str = "not needed"
 
     @classmethod
     def start(cls, config: ObservatoryConfig, night: Night, options: BuildOptions) -> _Build:
@@ -103,7 +108,7 @@ class _Build:
         limit = p.time_limit_s if options.time_limit_s is None else options.time_limit_s
         tol = p.gap_tolerance if options.gap_tolerance is None else options.gap_tolerance
         now_step = 0 if options.now is None else night.step_of(options.now)
-        return cls(config, night, options, WorkBudget(limit, options.effort), float(tol), now_step)
+        return cls(config, night, options, WorkBudget(limit, options.effort, options.started), float(tol), now_step)
 
     def say(self, msg: str) -> None:
         if self.options.progress:
@@ -135,6 +140,7 @@ class PlanPool:
         self.plan, self.label, self.value = plan, label, plan_value(problem, plan)
         self.randomized_runs = 0
         self.ruin_recreate_iterations = 0
+        self.before_cpsat: int | None = None  # the pool's value when CP-SAT started (None: it did not run)
 
     def consider(self, label: str, plan: list[Placement]) -> None:
         value = plan_value(self.problem, plan)
@@ -188,10 +194,15 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     bounds = bound_objective(run, prep, pool, first_bound)
     lag = bounds.lagrangian
     pool.consider("price-guided insertion", insertion_plan(prep.problem, lag.order, lag.preferred, prep.tables))
-    search_s = time.perf_counter() - t0
-    outcome = optimise_with_cpsat(run, prep, pool, bounds)
+    outcome = None
+    if cpsat_pays(run, prep, pool, bounds):
+        search_s = time.perf_counter() - t0
+        outcome = optimise_with_cpsat(run, prep, pool, bounds)
+    else:
+        search_more(run, prep, pool, bounds)
+        search_s = time.perf_counter() - t0
     run.timings["solve"] = search_s + (outcome.runtime_s if outcome else 0.0)
-    choice = choose_plan(prep, pool, bounds, outcome)
+    choice = choose_plan(prep, pool, bounds, outcome, run.cpsat_decision)
     return check_and_finalise(run, prep, pool, bounds, outcome, choice, search_s)
 
 
@@ -223,8 +234,7 @@ def prepare_problem(run: _Build, reqs: list[RequestSpec], program_weights: dict[
     t0 = time.perf_counter()
     run.say("feasibility")
     if feasibility is None:
-        from scheduler.constraints.feasibility import evaluate
-        feasibility = evaluate(reqs, rows, sky_grid, cond, config, static)
+        feasibility = _evaluate(reqs, rows, sky_grid, cond, config, static)
     run.timings["feasibility"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
@@ -277,8 +287,9 @@ def bound_objective(run: _Build, prep: Prepared, pool: PlanPool, first: Lagrangi
     second = lagrangian_bound(P, pool.value, iterations=b.iterations, time_limit_s=b.time_limit_s)
     lag = second if second.bound < first.bound else first
     b = budget.sequence()
+    # the bound stops once it proves half the gap tolerance: the reported gap then has a margin
     seq, seq_its = sequence_bound(P, pool.value, mu0=lag.reduced, sectors=16, iterations=b.iterations,
-                                  time_limit_s=b.time_limit_s)
+                                  time_limit_s=b.time_limit_s, stop_gap=0.5 * run.gap_tolerance)
     upper = min(lag.bound, seq)
     if upper < pool.value:
         warning = f"bound {upper / VALUE_SCALE:.3f} below plan {pool.value / VALUE_SCALE:.3f}; ignored"
@@ -286,34 +297,77 @@ def bound_objective(run: _Build, prep: Prepared, pool: PlanPool, first: Lagrangi
     return Bounds(lag, seq, seq_its, upper)
 
 
+def cpsat_pays(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> bool:
+    """Stage 4a: run CP-SAT only where it can improve the plan: something to optimise, the gap
+    not already within the tolerance, and a model small enough for the time left (wall clock)
+    or small enough outright (effort; solve/budget.py has the measured costs). The decision
+    and its reason go to stats["cpsat"]."""
+    P = prep.problem
+    if not P.execs:
+        run.cpsat_decision = "skipped: nothing to optimise"
+        return False
+    if bounds.upper - pool.value <= run.gap_tolerance * abs(bounds.upper):
+        run.cpsat_decision = "skipped: the searches' plan is within the gap tolerance of the bound"
+        return False
+    size = model_size(P, run.options.k_best_arcs)
+    if not run.budget.cpsat_can_pay(size):
+        left = "" if run.budget.deterministic else f" with {run.budget.left():.1f} s left"
+        run.cpsat_decision = f"skipped: model of about {size} literals too large{left}"
+        return False
+    run.cpsat_decision = f"ran (model of about {size} literals)"
+    return True
+
+
+def search_more(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> None:
+    """Stage 4b, when CP-SAT does not run: ruin-and-recreate again from the best plan with
+    the time (or effort) CP-SAT would have had, until within the gap tolerance of the bound."""
+    b = run.budget.ruin_and_recreate_2()
+    if not prep.problem.execs or (b.time_limit_s is not None and b.time_limit_s <= 0.0):
+        return
+    run.say("more ruin-and-recreate")
+    rr, its = ruin_and_recreate(prep.problem, pool.plan, iterations=b.iterations, time_limit_s=b.time_limit_s,
+                                seed=run.options.seed + 1, stop_at=(1.0 - run.gap_tolerance) * bounds.upper,
+                                tables=prep.tables, threshold=0.01)
+    pool.ruin_recreate_iterations += its
+    label = pool.label if pool.label.endswith("ruin-and-recreate") else pool.label + " + ruin-and-recreate"
+    pool.consider(label, rr)
+
+
 def optimise_with_cpsat(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> SolveOutcome | None:
     """Stage 4: CP-SAT on the whole model, hinted with the best plan so far and capped by the
-    bound. None when there is nothing to optimise."""
+    bound; with a time limit it gets what is left once its model is built."""
     run.say(f"greedy objective {prep.greedy_value / VALUE_SCALE:.3f}; solving")
-    if not prep.problem.execs:
-        return None
     run.cpsat_budget = limits = run.budget.cpsat()
+    pool.before_cpsat = pool.value
     opts = run.options
     model_s = [0.0]
     outcome = solve_problem(
         prep.problem, time_limit_s=limits.time_limit_s, deterministic_time_s=limits.deterministic_time_s,
         gap_tolerance=run.gap_tolerance, hint=pool.plan, k_best=opts.k_best_arcs,
         upper_bound=max(bounds.upper, pool.value), num_workers=opts.num_workers, seed=opts.seed,
-        progress=opts.progress, model_timer=lambda s: model_s.__setitem__(0, s))
+        progress=opts.progress, model_timer=lambda s: model_s.__setitem__(0, s), deadline=limits.deadline)
     run.timings["model"] += model_s[0]
     return outcome
 
 
-def choose_plan(prep: Prepared, pool: PlanPool, bounds: Bounds, outcome: SolveOutcome | None) -> Choice:
+def choose_plan(prep: Prepared, pool: PlanPool, bounds: Bounds, outcome: SolveOutcome | None,
+                cpsat_decision: str = "") -> Choice:
     """Stage 5: CP-SAT's plan when it is at least the floor, else the floor: the best
     model-feasible plan of the searches (the greedy or better). On a re-plan that is the one
-    seeded by the previous plan, so a short budget never throws the plan's stability away."""
+    seeded by the previous plan, so a short budget never throws the plan's stability away.
+    When CP-SAT did not run (cpsat_pays), the searches' plan is the answer, with the
+    relaxations' bound: status OPTIMAL when it meets the bound, else FEASIBLE."""
     floor = pool.value / VALUE_SCALE
     if outcome is not None and outcome.status in ("OPTIMAL", "FEASIBLE") and outcome.objective >= floor - 1e-9:
         status = outcome.status if prep.problem.execs else "EMPTY"
         return Choice(outcome.placements, status, outcome.objective, outcome.bound, outcome.gap, False)
     if outcome is None:
-        bound, gap, message = floor, 0.0, "nothing to optimise"
+        bound = max(bounds.upper / VALUE_SCALE, floor)
+        gap = (bound - floor) / max(abs(bound), 1e-9) if prep.problem.execs else 0.0
+        message = (f"CP-SAT {cpsat_decision}; plan from the searches ({pool.label})" if prep.problem.execs
+                   else "nothing to optimise")
+        status = ("OPTIMAL" if bound - floor < 1.0 / VALUE_SCALE else "FEASIBLE") if prep.problem.execs else "EMPTY"
+        return Choice(pool.plan, status, floor, bound, gap, False, message)
     else:
         bound = max(min(outcome.bound, bounds.upper / VALUE_SCALE), floor)
         gap = (bound - floor) / max(abs(bound), 1e-9)
@@ -406,7 +460,41 @@ def _stats(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds, outcome:
         "effort": run.budget.effort, "seed": run.options.seed,
         "solver_deterministic_limit": cp.deterministic_time_s if cp else None,
         "solver_deterministic_time": outcome.deterministic_s if outcome else 0.0,
+        "cpsat": run.cpsat_decision,
+        "cpsat_improved": bool(outcome is not None and pool.before_cpsat is not None
+                               and outcome.status in ("OPTIMAL", "FEASIBLE")
+                               and outcome.objective * VALUE_SCALE > pool.before_cpsat + 0.5),
+        "cpsat_gain": (max(0.0, outcome.objective - pool.before_cpsat / VALUE_SCALE)
+                       if outcome is not None and pool.before_cpsat is not None
+                       and outcome.status in ("OPTIMAL", "FEASIBLE") else 0.0),
+        "budget_elapsed_s": run.budget.elapsed(),
     }
+
+
+FEASIBILITY_CHUNK = 1000  # requests evaluated at once: bounds the intermediates' memory on big queues
+
+
+def _evaluate(reqs, rows, sky_grid, cond, config, static):
+    """Feasibility of every request, in chunks of requests when there is no precomputed static
+    layer (each request's row depends only on its own target and limits), written into arrays
+    allocated once, so the peak memory of a 10,000-request queue stays near the result's size."""
+    from dataclasses import fields
+
+    from scheduler.constraints.feasibility import Feasibility, evaluate
+    n = len(reqs)
+    if static is not None or n <= FEASIBILITY_CHUNK:
+        return evaluate(reqs, rows, sky_grid, cond, config, static)
+    out: dict[str, np.ndarray] = {}
+    for a in range(0, n, FEASIBILITY_CHUNK):
+        b = min(n, a + FEASIBILITY_CHUNK)
+        part = evaluate(reqs[a:b], rows[a:b], sky_grid, cond, config)
+        for f in fields(Feasibility):
+            x = getattr(part, f.name)
+            if f.name not in out:
+                out[f.name] = np.empty((n,) + x.shape[1:], dtype=x.dtype)
+            out[f.name][a:b] = x
+        del part
+    return Feasibility(**out)
 
 
 def target_rows_for(requests: Sequence[RequestSpec]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -14,28 +14,44 @@ has the derivations; the tests compare both with brute force and CP-SAT optima.
 from __future__ import annotations
 
 import math
-import time
 from dataclasses import dataclass
 
 import numpy as np
 
+from scheduler.solve.budget import StageClock
 from scheduler.solve.objective import start_values
 from scheduler.solve.problem import Problem
 
 _FAR = np.iinfo(np.int64).max // 4  # "never": a transition no plan can make
 
 
-def _out_of_time(t0: float, time_limit_s: float | None) -> bool:
-    return time_limit_s is not None and time.perf_counter() - t0 > time_limit_s
+_CHUNK = 512  # rows of Problem.T handled at once (memory stays linear in the number of requests)
 
 
-def _self_transitions_forbidden(problem: Problem) -> np.ndarray:
-    """Problem.T with a request of a single execution unable to follow itself."""
-    Tm = problem.T.astype(np.int64).copy()
+def _single_execution(problem: Problem) -> np.ndarray:
+    """[n_req] True for a request with one execution tonight: it cannot follow itself."""
     n_exec_of = np.bincount([ex.req for ex in problem.execs], minlength=len(problem.requests))
-    single = np.flatnonzero(n_exec_of <= 1)
-    Tm[single, single] = _FAR
-    return Tm
+    return n_exec_of <= 1
+
+
+def _row_chunks(problem: Problem):
+    """(rows, T[rows] as int64 with a single-execution request unable to follow itself), by chunks."""
+    n = len(problem.requests)
+    single = _single_execution(problem)
+    for r0 in range(0, n, _CHUNK):
+        rows = np.arange(r0, min(n, r0 + _CHUNK))
+        block = np.asarray(problem.T[rows], dtype=np.int64)
+        own = rows[single[rows]]
+        block[own - r0, own] = _FAR
+        yield rows, block
+
+
+def _smallest_transition_into(problem: Problem) -> np.ndarray:
+    """[n_req] the smallest transition bound into each request from any request."""
+    out = np.full(len(problem.requests), _FAR, dtype=np.int64)
+    for _, block in _row_chunks(problem):
+        np.minimum(out, block.min(axis=0), out=out)
+    return out
 
 
 def _all_starts(problem: Problem) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -65,8 +81,7 @@ class _TimeIndexed:
         P = problem
         n_t = P.n_t
         # tmin over ALL predecessors (not only the sparse arcs): valid for any arc set.
-        Tm = _self_transitions_forbidden(P)
-        col_min = Tm.min(axis=0) if Tm.size else np.zeros(0, dtype=np.int64)
+        col_min = _smallest_transition_into(P)
         self.E, self.S, self.C = _all_starts(P)
         tmin = np.array([0 if ex.in_progress else int(min(P.tmax[ex.req], col_min[ex.req])) for ex in P.execs])
         dur = np.array([ex.duration for ex in P.execs])
@@ -118,7 +133,7 @@ def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300,
     transitions beyond tmin are relaxed). Polyak steps toward ``lower`` (a known plan's value).
     """
     P = problem
-    t_start = time.perf_counter()
+    clock = StageClock(time_limit_s)
     if not P.execs:
         return LagrangianResult(0, [], {}, 0)
     rel = _TimeIndexed(P)
@@ -138,7 +153,7 @@ def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300,
                 theta, stall = theta / 2, 0
         g = rel.subgradient(rel.best_choice(red, segmax, rel.forced | (segmax > 0)))
         nrm = float(g @ g)
-        if nrm == 0 or theta < 1e-4 or _out_of_time(t_start, time_limit_s):
+        if nrm == 0 or theta < 1e-4 or clock.out_of_time():
             break
         lam = np.maximum(0.0, lam - theta * max(val - lower, 1e-6) / nrm * g)
     red, segmax = rel.reduced(best[1])
@@ -161,7 +176,15 @@ def _classes(problem: Problem, sectors: int) -> tuple[np.ndarray, np.ndarray]:
         cls[r] = key.setdefault((P.instruments[r], P.bands[r], sec), len(key))
     K = len(key)
     Lc = np.full((K, K), _FAR, dtype=np.int64)
-    np.minimum.at(Lc, (cls[:, None].repeat(n, 1), cls[None, :].repeat(n, 0)), _self_transitions_forbidden(P))
+    # row chunks: columns reduced by class (sorted, reduceat), then rows by class (minimum.at)
+    order = np.argsort(cls, kind="stable")
+    cuts = np.flatnonzero(np.r_[True, cls[order][1:] != cls[order][:-1]])
+    col_cls = cls[order][cuts]
+    for rows, block in _row_chunks(P):
+        by_col = np.minimum.reduceat(block[:, order], cuts, axis=1)  # [chunk, classes present]
+        part = np.full((rows.size, K), _FAR, dtype=np.int64)
+        part[:, col_cls] = by_col
+        np.minimum.at(Lc, cls[rows], part)
     return cls, Lc
 
 
@@ -190,6 +213,9 @@ class _SequenceDP:
         self.by_start = np.searchsorted(self.S, np.arange(self.n_t + 1), side="left")
         self.t0 = int(min(P.now_step, self.S.min()))  # an entry in progress started before now
         self.n_exec = len(execs)
+        finite = self.Lc[self.Lc < _FAR]
+        self.Lmin = int(finite.min()) if finite.size else 0
+        self.block = int(min(64, max(1, int(dur.min()) + self.Lmin)))
 
     def best_sequence(self, mu: np.ndarray) -> tuple[float, np.ndarray]:
         """(value of the best sequence at prices mu, how often it uses each execution)."""
@@ -211,50 +237,71 @@ class _SequenceDP:
     def _programme(self, val: np.ndarray):
         """One pass over the grid. F[t, k]: best value of a sequence whose last entry ends at t
         with class k; R: running max of F over times <= t, RT where it was reached; bp / bpk:
-        the candidate that set F[t, k] and its predecessor class (-1: first entry)."""
-        n_t, K, NEG = self.n_t, self.K, -1e18
+        the candidate that set F[t, k] and its predecessor class (-1: first entry).
+
+        Vectorised over blocks of ``self.block`` start steps: a start s reads R at s - Lc >=
+        s - Lmin and its entries end at s + duration >= s + Dmin, so with blocks of at most
+        Dmin + Lmin steps nothing a block writes is read inside it, and R is final wherever it
+        is read (each block first completes R up to the last step it reads)."""
+        n_t, K, NEG, t0 = self.n_t, self.K, -1e18, self.t0
         F = np.full((n_t + 1, K), NEG)
         R = np.full((n_t + 1, K), NEG)
         RT = np.zeros((n_t + 1, K), dtype=np.int64)
         bp = np.full((n_t + 1, K), -1, dtype=np.int64)
         bpk = np.full((n_t + 1, K), -1, dtype=np.int64)
-        lag_idx = np.arange(K)[:, None]
-        for s in range(self.t0, n_t + 1):
-            if s > 0:
-                better = F[s] > R[s - 1]
-                R[s] = np.where(better, F[s], R[s - 1])
-                RT[s] = np.where(better, s, RT[s - 1])
-            else:
-                R[s], RT[s] = F[s], 0
-            lo, hi = self.by_start[s], self.by_start[s + 1] if s < n_t else len(self.S)
+        k_idx = np.arange(K)[None, :, None]
+        done = t0  # R[t] is final for t < done
+
+        def complete_r(upto: int) -> None:
+            nonlocal done
+            if upto <= done:
+                return
+            seg = F[done:upto]
+            prev = R[done - 1] if done > t0 else np.full(K, NEG)
+            acc = np.maximum.accumulate(np.vstack([prev[None, :], seg]), axis=0)
+            R[done:upto] = acc[1:]
+            where = np.where(seg > acc[:-1], np.arange(done, upto)[:, None], -1)
+            prev_t = RT[done - 1] if done > t0 else np.zeros(K, dtype=np.int64)
+            RT[done:upto] = np.maximum.accumulate(np.vstack([prev_t[None, :], where]), axis=0)[1:]
+            done = upto
+
+        B = self.block
+        for s0 in range(t0, n_t + 1, B):
+            s1 = min(s0 + B, n_t + 1)
+            complete_r(min(s1 - self.Lmin, n_t + 1))
+            lo, hi = self.by_start[s0], self.by_start[s1] if s1 <= n_t else len(self.S)
             if lo >= hi:
                 continue
             # best predecessor for a start of class k2 at s: max_k R[s - Lc[k, k2], k], or none (0)
-            tt = s - self.Lc
-            got = np.where(tt >= self.t0, R[np.clip(tt, 0, n_t), lag_idx], NEG)
-            pk = np.argmax(got, axis=0)
-            pv = got[pk, np.arange(K)]
+            s = np.arange(s0, s1)[:, None, None]
+            tt = s - self.Lc[None, :, :]
+            got = np.where(tt >= t0, R[np.clip(tt, 0, n_t), k_idx], NEG)  # [B, K, K]
+            pk = np.argmax(got, axis=1)  # [B, K]
+            pv = np.take_along_axis(got, pk[:, None, :], axis=1)[:, 0, :]
             first = pv < 0.0
             pv, pk = np.where(first, 0.0, pv), np.where(first, -1, pk)
             idx = np.arange(lo, hi)
-            cand = pv[self.CL[idx]] + val[idx]
+            rel, cl_all = self.S[idx] - s0, self.CL[idx]
+            cand = pv[rel, cl_all] + val[idx]
             # keep the best candidate per (end, class), then compare with F
-            key = self.END[idx] * K + self.CL[idx]
+            key = self.END[idx] * K + cl_all
             o = np.lexsort((cand, key))
             last = np.ones(o.size, dtype=bool)
             last[:-1] = key[o][1:] != key[o][:-1]
             w = o[last]
-            ends, cl, cv = self.END[idx][w], self.CL[idx][w], cand[w]
+            ends, cl, cv = self.END[idx][w], cl_all[w], cand[w]
             upd = cv > F[ends, cl]
-            ends, cl, cv, wi = ends[upd], cl[upd], cv[upd], idx[w][upd]
+            ends, cl, cv, w = ends[upd], cl[upd], cv[upd], w[upd]
             F[ends, cl] = cv
-            bp[ends, cl] = wi
-            bpk[ends, cl] = pk[cl]
+            bp[ends, cl] = idx[w]
+            bpk[ends, cl] = pk[rel[w], cl]
+        complete_r(n_t + 1)
         return R, RT, bp, bpk
 
 
 def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = None, sectors: int = 8,
-                   iterations: int = 200, time_limit_s: float | None = 2.0) -> tuple[int, int]:
+                   iterations: int = 200, time_limit_s: float | None = 2.0,
+                   stop_gap: float | None = None) -> tuple[int, int]:
     """Upper bound that keeps the order of the night and the transitions between classes.
 
     Relaxation: a plan is a sequence in time of (execution, start) with no overlap and gaps of at
@@ -266,11 +313,12 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         B(mu) = sum_e mu_e + max over sequences of sum (c_e(s) - mu_e)
 
     bounds the model's optimum; the max is a dynamic programme over (time, last class). Subgradient
-    steps on mu (Polyak, toward ``lower``). Returns (bound, iterations).
+    steps on mu (Polyak, toward ``lower``). Stops early once (bound - lower) / bound <=
+    ``stop_gap`` (the plan in hand is then proven good enough). Returns (bound, iterations).
     """
     if not problem.execs:
         return 0, 0
-    t_start = time.perf_counter()
+    clock = StageClock(time_limit_s)
     dp = _SequenceDP(problem, sectors)
     n_kept = int(dp.forced.sum())
     mu = np.zeros(dp.n_exec) if mu0 is None else np.asarray(mu0, dtype=np.float64).copy()
@@ -290,7 +338,8 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         g[(mu <= 0) & (g > 0)] = 0.0  # projected: mu cannot go below 0
         g[dp.forced] = 0.0
         nrm = float(g @ g)
-        if nrm == 0 or theta < 1e-3 or _out_of_time(t_start, time_limit_s):
+        met = stop_gap is not None and best - lower <= stop_gap * abs(best)
+        if nrm == 0 or theta < 1e-3 or met or clock.out_of_time():
             break
         mu = np.maximum(0.0, mu - theta * max(best - lower, 1e-6) / nrm * g)
     return int(math.floor(best + 1e-6)), it

@@ -85,14 +85,16 @@ def candidate_arcs(problem: Problem, k_best: int, forced: Sequence[tuple[int, in
     last = np.array([ex.starts.max() if ex.fixed_start is None else ex.fixed_start for ex in execs])
     density = P.base_value[req] / np.maximum(dur, 1)
     fixed = np.array([ex.fixed_start is not None for ex in execs])
+    ks = np.array([ex.k for ex in execs])
     arcs: set[tuple[int, int]] = set()
     for j in range(n_e):
         if execs[j].in_progress:
             continue
-        t = P.T[req, req[j]]
-        ok = (t < P.tmax[req[j]]) & (first + dur + t <= last[j]) & (np.arange(n_e) != j)
+        t = P.T[req, req[j]].astype(np.int64)
+        ok = (t < P.tmax[req[j]]) & (first + dur + t <= last[j])
+        ok[j] = False
         same = req == req[j]
-        ok &= ~same | (np.array([ex.k for ex in execs]) == execs[j].k - 1)
+        ok &= ~same | (ks == execs[j].k - 1)
         cand = np.flatnonzero(ok & ~fixed)
         if cand.size > k_best:
             order = np.lexsort((-density[cand], t[cand]))
@@ -326,13 +328,29 @@ def set_parameters(params, *, time_limit_s: float | None, deterministic_time_s: 
     params.catch_sigint_signal = False  # else CP-SAT leaves SIGINT at its default: Ctrl-C would kill the service
 
 
+# CP-SAT may answer a little after its wall-clock limit (loading the response, stopping its
+# workers): the limit it gets is shortened by this much plus a share of itself.
+CPSAT_STOP_MARGIN_S = 0.1
+CPSAT_STOP_MARGIN_SHARE = 0.05
+
+
+def model_size(problem: Problem, k_best: int) -> int:
+    """The number of literals build_model will make, estimated before building it (bucket
+    literals + about k_best arcs per execution + a few per execution)."""
+    return sum(len(ex.bucket_lo) for ex in problem.execs) + (k_best + 4) * len(problem.execs)
+
+
 def solve_problem(problem: Problem, *, time_limit_s: float | None = 10.0, deterministic_time_s: float | None = None,
                   gap_tolerance: float = 0.01, hint: Sequence[Placement] | None = None,
                   upper_bound: int | None = None, k_best: int = 10, num_workers: int | None = None,
                   seed: int = 0, progress: Callable[[str], None] | None = None,
-                  model_timer: Callable[[float], None] | None = None) -> SolveOutcome:
+                  model_timer: Callable[[float], None] | None = None, deadline: float | None = None) -> SolveOutcome:
     """Build, hint and solve the model. Stops at the time limit, the deterministic-time limit or
-    the relative gap tolerance, whichever comes first (set_parameters)."""
+    the relative gap tolerance, whichever comes first (set_parameters).
+
+    deadline: a perf_counter time by which the answer is due; the wall-clock limit is then what
+    is left of it once the model is built (less a stop margin), and the solve is skipped
+    (status "NO_TIME") when too little is left."""
     t0 = time.perf_counter()
     arcs = candidate_arcs(problem, k_best, hint_pairs(problem, hint) if hint else ())
     model, v = build_model(problem, arcs, upper_bound)
@@ -341,6 +359,11 @@ def solve_problem(problem: Problem, *, time_limit_s: float | None = 10.0, determ
     n_buckets = sum(max(1, len(b)) for b in v.buckets)
     if model_timer:
         model_timer(time.perf_counter() - t0)
+    if deadline is not None:
+        left = deadline - time.perf_counter()
+        time_limit_s = left * (1.0 - CPSAT_STOP_MARGIN_SHARE) - CPSAT_STOP_MARGIN_S
+        if time_limit_s < 0.2:
+            return SolveOutcome([], "NO_TIME", 0.0, float("inf"), float("inf"), 0.0, len(arcs), n_buckets, 0.0)
     solver = cp_model.CpSolver()
     set_parameters(solver.parameters, time_limit_s=time_limit_s, deterministic_time_s=deterministic_time_s,
                    gap_tolerance=gap_tolerance, num_workers=num_workers, seed=seed)

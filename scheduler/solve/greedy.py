@@ -34,6 +34,8 @@ class DispatchTables:
     req: np.ndarray  # [n_exec] request index
     duration: np.ndarray  # [n_exec] grid steps
     k: np.ndarray  # [n_exec] execution number within its request
+    by_request: np.ndarray  # [n_exec] executions sorted by (request, k): the frontier's order
+    kept: tuple  # ((execution, start), ...) of the kept (in progress / frozen) executions
 
 
 def dispatch_tables(problem: Problem) -> DispatchTables:
@@ -53,9 +55,11 @@ def dispatch_tables(problem: Problem) -> DispatchTables:
             nxt[e] = np.where(idx < st.size, st[np.minimum(idx, st.size - 1)], n_t)
             coef[e, st] = val
     execs = problem.execs
-    return DispatchTables(nxt, coef, np.array([ex.req for ex in execs], dtype=np.int64),
-                          np.array([ex.duration for ex in execs], dtype=np.int64),
-                          np.array([ex.k for ex in execs], dtype=np.int64))
+    req = np.array([ex.req for ex in execs], dtype=np.int64)
+    k = np.array([ex.k for ex in execs], dtype=np.int64)
+    kept = tuple((e, int(ex.fixed_start)) for e, ex in enumerate(execs) if ex.fixed_start is not None)
+    return DispatchTables(nxt, coef, req, np.array([ex.duration for ex in execs], dtype=np.int64), k,
+                          np.lexsort((k, req)), kept)
 
 
 @dataclass
@@ -75,9 +79,9 @@ class _Dispatch:
     bi: int = 0  # next block
 
     @classmethod
-    def start(cls, problem: Problem, keep: Sequence[Placement]) -> _Dispatch:
+    def start(cls, problem: Problem, tables: DispatchTables, keep: Sequence[Placement]) -> _Dispatch:
         execs = problem.execs
-        bstart = {e: int(ex.fixed_start) for e, ex in enumerate(execs) if ex.fixed_start is not None}
+        bstart = dict(tables.kept)
         bstart.update({p.exec_index: int(p.start) for p in keep})
         blocks = sorted(bstart, key=lambda e: bstart[e])
         free = np.ones(len(execs), dtype=bool)
@@ -114,11 +118,11 @@ class _Dispatch:
 
 def _frontier(tables: DispatchTables, free: np.ndarray) -> np.ndarray:
     """The lowest-k free execution of each request (repeats are taken in order)."""
-    cand = np.flatnonzero(free)
+    cand = tables.by_request[free[tables.by_request]]
     if cand.size:
-        cand = cand[np.lexsort((tables.k[cand], tables.req[cand]))]
+        r = tables.req[cand]
         first = np.ones(cand.size, dtype=bool)
-        first[1:] = tables.req[cand][1:] != tables.req[cand][:-1]
+        first[1:] = r[1:] != r[:-1]
         cand = cand[first]
     return cand
 
@@ -160,7 +164,7 @@ def greedy_plan(problem: Problem, wait_exponent: float = 1.0, noise: float = 0.0
         return []
     tables = tables if tables is not None else dispatch_tables(problem)
     rng = np.random.default_rng(seed) if noise > 0 else None
-    d = _Dispatch.start(problem, keep)
+    d = _Dispatch.start(problem, tables, keep)
     while True:
         nb = d.next_block()
         cand = _frontier(tables, d.free)

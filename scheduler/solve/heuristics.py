@@ -9,18 +9,14 @@ same iterations, same seed, same plan on any machine (the build's deterministic 
 
 from __future__ import annotations
 
-import time
 from typing import Sequence
 
 import numpy as np
 
+from scheduler.solve.budget import StageClock
 from scheduler.solve.greedy import DispatchTables, dispatch_tables, greedy_plan
 from scheduler.solve.objective import plan_value
 from scheduler.solve.problem import Placement, Problem, check_model_feasible
-
-
-def _out_of_time(t0: float, time_limit_s: float | None) -> bool:
-    return time_limit_s is not None and time.perf_counter() - t0 > time_limit_s
 
 
 def randomized_dispatch(problem: Problem, runs: int = 400, time_limit_s: float | None = 2.0, seed: int = 0,
@@ -32,14 +28,14 @@ def randomized_dispatch(problem: Problem, runs: int = 400, time_limit_s: float |
     better request later. Perturbed runs explore other first choices cheaply (a run is a few ms
     for 500 requests) and give CP-SAT a much better starting point.
     """
-    t0 = time.perf_counter()
+    clock = StageClock(time_limit_s)
     tables = tables if tables is not None else dispatch_tables(problem)
     rng = np.random.default_rng(seed)
     best = greedy_plan(problem, tables=tables)
     best_v = plan_value(problem, best)
     k = 0
     for k in range(1, runs + 1):
-        if _out_of_time(t0, time_limit_s):
+        if clock.out_of_time():
             k -= 1
             break
         plan = greedy_plan(problem, wait_exponent=float(rng.uniform(0.7, 1.3)), noise=float(rng.uniform(0.1, 0.8)),
@@ -60,7 +56,7 @@ def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: i
     limit, or over the iterations when there is none (threshold accepting: small steps back let
     the search leave local optima). Returns (best plan seen, iterations done). Stops early once
     the best reaches ``stop_at``."""
-    t0 = time.perf_counter()
+    clock = StageClock(time_limit_s)
     tables = tables if tables is not None else dispatch_tables(problem)
     rng = np.random.default_rng(seed)
     cur = sorted(plan, key=lambda p: p.start)
@@ -69,9 +65,9 @@ def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: i
     done = 0
     for it in range(iterations):
         free = [p for p in cur if problem.execs[p.exec_index].fixed_start is None]
-        if _out_of_time(t0, time_limit_s) or not free or (stop_at is not None and best_v >= stop_at):
+        if clock.out_of_time() or not free or (stop_at is not None and best_v >= stop_at):
             break
-        spent = (time.perf_counter() - t0) / time_limit_s if time_limit_s else it / iterations
+        spent = clock.spent() if time_limit_s else it / iterations
         tau = threshold * max(0.0, 1.0 - spent)
         n_drop = int(rng.integers(1, min(max_drop, len(free)) + 1))
         i = int(rng.integers(0, len(free) - n_drop + 1))
