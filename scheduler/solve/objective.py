@@ -47,14 +47,20 @@ def value_coef(base: float, merit: float) -> int:
 def merit_buckets(starts_mask: np.ndarray, merit: np.ndarray, base: float, bucket_steps: int):
     """(bucket_lo, bucket_hi, coef): feasible starts cut into buckets of ``bucket_steps``; each
     bucket is worth the value at its lowest merit (conservative; bucket_steps=1 is exact)."""
-    lo_l, hi_l, coef_l = [], [], []
-    for lo, hi in consecutive_runs(np.flatnonzero(starts_mask)):
-        for b0 in range(lo, hi + 1, bucket_steps):
-            b1 = min(hi, b0 + bucket_steps - 1)
-            lo_l.append(b0)
-            hi_l.append(b1)
-            coef_l.append(value_coef(base, float(np.min(merit[b0:b1 + 1]))))
-    return (np.array(lo_l, dtype=np.int64), np.array(hi_l, dtype=np.int64), np.array(coef_l, dtype=np.int64))
+    lo_l, hi_l = [], []
+    starts = np.flatnonzero(starts_mask)
+    for lo, hi in consecutive_runs(starts):
+        b0 = np.arange(lo, hi + 1, bucket_steps)
+        lo_l.append(b0)
+        hi_l.append(np.minimum(hi, b0 + bucket_steps - 1))
+    if not lo_l:
+        empty = np.zeros(0, dtype=np.int64)
+        return empty, empty.copy(), empty.copy()
+    lo_a, hi_a = np.concatenate(lo_l).astype(np.int64), np.concatenate(hi_l).astype(np.int64)
+    # lowest merit per bucket in one pass: the buckets tile the starts in order
+    low = np.minimum.reduceat(np.asarray(merit, dtype=np.float64)[starts], np.searchsorted(starts, lo_a))
+    coef = np.array([value_coef(base, float(m)) for m in low], dtype=np.int64)
+    return lo_a, hi_a, coef
 
 
 def stability_coef(problem: Problem, e: int) -> int:

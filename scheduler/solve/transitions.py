@@ -94,7 +94,7 @@ def _position_boxes(alt: np.ndarray, az: np.ndarray, lo: np.ndarray, hi: np.ndar
 
 def pair_transition_steps(config: ObservatoryConfig, step_s: int, alt: np.ndarray, az: np.ndarray,
                           insts: list[str], bands: list[str], end_ok: np.ndarray, start_ok: np.ndarray,
-                          bucket_steps: int = 15, chunk: int = 256) -> tuple[np.ndarray, np.ndarray]:
+                          bucket_steps: int = 15, chunk: int = 512) -> tuple[np.ndarray, np.ndarray]:
     """Upper bound on the transition (grid steps) for every ordered pair of requests.
 
     alt, az: [n, n_t] positions of each request's target. end_ok[n, n_t]: the request can end
@@ -104,7 +104,8 @@ def pair_transition_steps(config: ObservatoryConfig, step_s: int, alt: np.ndarra
     Pairs that can never hand over closer than tmax[j] get T = tmax[j].
     """
     n, n_t = alt.shape
-    tmax = np.array([worst_transition_steps(config, ins, step_s) for ins in insts], dtype=np.int64)
+    worst = {name: worst_transition_steps(config, name, step_s) for name in set(insts)}
+    tmax = np.array([worst[ins] for ins in insts], dtype=np.int64)
     g = int(tmax.max()) if n else 0
     nb = max(1, math.ceil(n_t / bucket_steps))
     lo = np.arange(nb) * bucket_steps
@@ -129,30 +130,50 @@ def pair_transition_steps(config: ObservatoryConfig, step_s: int, alt: np.ndarra
     inst_change = np.array([_instrument(config, x).instrument_change_s for x in insts])
     filt_change = np.array([_instrument(config, x).filter_change_s for x in insts])
 
-    # Largest box-to-box slew over the buckets where i can end and j can start soon after.
-    # One bucket at a time on the [ends here] x [starts near here] sub-matrix (float32).
-    slew = np.full((n, n), -1.0, dtype=np.float32)
+    # Largest box-to-box slew over the buckets where i can end and j can start soon after, by
+    # chunks of rows i (memory linear in n): one bucket at a time on the [ends here] x [starts
+    # near here] sub-matrix (float32). T is stored in one byte per pair when tmax allows.
     r_az, r_alt = np.float32(tel.slew_rate_az_deg_s), np.float32(tel.slew_rate_alt_deg_s)
-    for b in range(nb):
-        ri = np.flatnonzero(ends_in[:, b])
-        cj = np.flatnonzero(starts_near[:, b])
-        if ri.size == 0 or cj.size == 0:
-            continue
-        ca, ha, la, ua = (x[ri, b].astype(np.float32)[:, None] for x in ai)
-        cb, hb, lb, ub = (x[cj, b].astype(np.float32)[None, :] for x in aj)
-        d = np.abs(ca - cb) % np.float32(360.0)
-        daz = np.minimum(np.float32(180.0), np.minimum(d, np.float32(360.0) - d) + ha + hb)
-        dalt = np.maximum(np.maximum(ub - la, ua - lb), np.float32(0.0))
-        sub = np.maximum(daz / r_az, dalt / r_alt)
-        block = slew[np.ix_(ri, cj)]
-        slew[np.ix_(ri, cj)] = np.maximum(block, sub)
-    T = np.empty((n, n), dtype=np.int64)
-    for s0 in range(0, n, chunk):  # change times and rounding, in row chunks
-        sl = slice(s0, min(n, s0 + chunk))
-        same_inst = ii[sl, None] == ii[None, :]
-        same_band = same_inst & (bb[sl, None] == bb[None, :])
+    T = np.empty((n, n), dtype=np.uint8 if g < 255 else np.int64)
+    active = [(np.flatnonzero(ends_in[:, b]), np.flatnonzero(starts_near[:, b])) for b in range(nb)]
+    # float32 boxes, azimuth centres in [0, 360) so that |ca - cb| < 360 needs no modulo
+    ai = [x.astype(np.float32) for x in ai]
+    aj = [x.astype(np.float32) for x in aj]
+    ai[0] %= np.float32(360.0)
+    aj[0] %= np.float32(360.0)
+    full, half = np.float32(360.0), np.float32(180.0)
+    for s0 in range(0, n, chunk):
+        s1 = min(n, s0 + chunk)
+        slew = np.full((s1 - s0, n), -1.0, dtype=np.float32)
+        for b, (ri_all, cj) in enumerate(active):
+            ri = ri_all[np.searchsorted(ri_all, s0):np.searchsorted(ri_all, s1)]
+            if ri.size == 0 or cj.size == 0:
+                continue
+            ca, ha, la, ua = (x[ri, b][:, None] for x in ai)
+            cb, hb, lb, ub = (x[cj, b][None, :] for x in aj)
+            # daz = min(180, short-way centre distance + both half widths); dalt = box gap; in place
+            d = ca - cb
+            np.abs(d, out=d)
+            e = np.subtract(full, d)
+            np.minimum(d, e, out=d)
+            d += ha
+            d += hb
+            np.minimum(d, half, out=d)
+            d /= r_az
+            np.subtract(ub, la, out=e)
+            f = ua - lb
+            np.maximum(e, f, out=e)
+            np.maximum(e, np.float32(0.0), out=e)
+            e /= r_alt
+            np.maximum(d, e, out=d)
+            at = np.ix_(ri - s0, cj)
+            np.maximum(d, slew[at], out=d)
+            slew[at] = d
+        # change times and rounding
+        same_inst = ii[s0:s1, None] == ii[None, :]
+        same_band = same_inst & (bb[s0:s1, None] == bb[None, :])
         chg = np.where(same_band, 0.0, np.where(same_inst, filt_change[None, :], inst_change[None, :]))
-        sw = slew[sl].astype(np.float64)
+        sw = slew.astype(np.float64)
         steps = seconds_to_steps(sw + tel.settle_s + chg, step_s)
-        T[sl] = np.where(sw >= 0.0, np.minimum(steps, tmax[None, :]), tmax[None, :])
+        T[s0:s1] = np.where(sw >= 0.0, np.minimum(steps, tmax[None, :]), tmax[None, :])
     return T, tmax
