@@ -9,9 +9,15 @@ well under that in altitude at the planning grid's one-minute resolution. See do
 
 from __future__ import annotations
 
+import hashlib
 import logging
+import os
+import pickle
+import sys
+import tempfile
 import threading
 import warnings
+from pathlib import Path
 
 log = logging.getLogger(__name__)
 
@@ -57,7 +63,9 @@ def configure_offline() -> None:
         iers.conf.auto_download = False
         iers.conf.auto_max_age = None
         iers.conf.iers_degraded_accuracy = "ignore"
-        table = iers.IERS_Auto.open()  # reads the bundled finals2000A.all, no download
+        if iers.IERS_Auto.iers_table is None:
+            iers.IERS_Auto.iers_table = _cached_iers_table()
+        table = iers.IERS_Auto.open()  # the bundled finals2000A.all (parsed or cached), no download
         log.debug("astropy offline: IERS table %s, predictive from MJD %s",
                   table.meta.get("data_path"), table.meta.get("predictive_mjd"))
         _configured = True
@@ -69,3 +77,104 @@ def iers_table_end_mjd() -> float:
     from astropy.utils import iers
 
     return float(iers.IERS_Auto.open()["MJD"][-1].value)
+
+
+# --------------------------------------------------------------------------- IERS table cache
+#
+# Parsing the bundled finals2000A.all (and the IERS-B table it is combined with) costs 1.6-2.3 s
+# on every process that computes a sky position; the parsed table is kept on disk instead and
+# loads in a few hundredths of a second. The file is keyed by the versions of this package,
+# astropy, astropy-iers-data and Python, so an upgrade of any of them builds a new one. It is
+# written to a temporary file in the same directory and renamed into place (atomic: concurrent
+# processes each read either nothing or a whole file), and carries a SHA-256 of its payload: a
+# missing, truncated or damaged file is rebuilt. It is a pickle, so it is only read from a
+# directory of our own (mode 0700) and only when the file belongs to the current user and is
+# not writable by others. NIGHTPLAN_CACHE_DIR overrides the directory; NIGHTPLAN_CACHE_DIR=""
+# (empty) turns the cache off.
+
+_MAGIC = b"nightplan-iers-1\n"
+
+
+def cache_dir() -> Path | None:
+    """Where the parsed IERS table is kept (None: no cache)."""
+    env = os.environ.get("NIGHTPLAN_CACHE_DIR")
+    if env is not None:
+        return Path(env) if env.strip() else None
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "nightplan"
+
+
+def iers_cache_path() -> Path | None:
+    """The cache file for the versions installed now (None: no cache)."""
+    d = cache_dir()
+    if d is None:
+        return None
+    import astropy
+
+    from scheduler import __version__
+    try:
+        import astropy_iers_data
+        data_version = getattr(astropy_iers_data, "__version__", "unknown")
+    except ImportError:  # older astropy bundles its tables itself
+        data_version = "bundled"
+    key = "|".join((__version__, astropy.__version__, data_version, sys.version.split()[0]))
+    return d / f"iers-{hashlib.sha256(key.encode()).hexdigest()[:16]}.pickle"
+
+
+def _read_cache(path: Path):
+    """The cached table, or None when the file is missing, not ours, or damaged."""
+    try:
+        st = path.stat()
+    except FileNotFoundError:
+        return None
+    if hasattr(os, "getuid") and (st.st_uid != os.getuid() or st.st_mode & 0o022):
+        log.warning("IERS cache %s is not private to this user; ignored", path)
+        return None
+    try:
+        raw = path.read_bytes()
+        if not raw.startswith(_MAGIC):
+            raise ValueError("not a nightplan IERS cache")
+        digest, payload = raw[len(_MAGIC):len(_MAGIC) + 64], raw[len(_MAGIC) + 65:]
+        if hashlib.sha256(payload).hexdigest().encode() != digest:
+            raise ValueError("checksum mismatch")
+        from astropy.utils import iers
+
+        table = pickle.loads(payload)
+        if not isinstance(table, iers.IERS_Auto) or len(table) == 0:
+            raise ValueError("unexpected content")
+        return table
+    except Exception as e:  # damaged in any way: rebuilt by the caller
+        log.info("IERS cache %s unreadable (%s); rebuilding it", path, e)
+        return None
+
+
+def _write_cache(path: Path, table) -> None:
+    """Write atomically (temporary file + rename); a failure only costs the next process a parse."""
+    try:
+        path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
+        payload = pickle.dumps(table, protocol=pickle.HIGHEST_PROTOCOL)
+        fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
+        try:
+            with os.fdopen(fd, "wb") as f:
+                f.write(_MAGIC + hashlib.sha256(payload).hexdigest().encode() + b"\n" + payload)
+                f.flush()
+                os.fsync(f.fileno())
+            os.replace(tmp, path)
+        except BaseException:
+            Path(tmp).unlink(missing_ok=True)
+            raise
+    except OSError as e:
+        log.info("IERS cache not written to %s (%s)", path, e)
+
+
+def _cached_iers_table():
+    """The parsed IERS_Auto table: from the disk cache, or parsed and then cached."""
+    from astropy.utils import iers
+
+    path = iers_cache_path()
+    table = _read_cache(path) if path is not None else None
+    if table is None:
+        table = iers.IERS_Auto.read()  # the bundled files; auto_download is off
+        if path is not None:
+            _write_cache(path, table)
+    return table
