@@ -286,7 +286,7 @@ def bound_objective(run: _Build, prep: Prepared, pool: PlanPool, first: Lagrangi
     b = budget.lagrangian()
     second = lagrangian_bound(P, pool.value, iterations=b.iterations, time_limit_s=b.time_limit_s)
     lag = second if second.bound < first.bound else first
-    b = budget.sequence()
+    b = budget.sequence(cpsat_next=budget.cpsat_can_pay(model_size(P, run.options.k_best_arcs)))
     # the bound stops once it proves half the gap tolerance: the reported gap then has a margin
     seq, seq_its = sequence_bound(P, pool.value, mu0=lag.reduced, sectors=16, iterations=b.iterations,
                                   time_limit_s=b.time_limit_s, stop_gap=0.5 * run.gap_tolerance)

@@ -111,9 +111,10 @@ class WorkBudget:
     def ruin_and_recreate(self) -> StageBudget:
         return self._stage(RUIN_RECREATE_PER_EFFORT, 10**6, 0.45)
 
-    def sequence(self) -> StageBudget:
-        # half of what is left after the first searches; it stops sooner once the gap is met
-        return self._stage(SEQUENCE_PER_EFFORT, 400, 0.5)
+    def sequence(self, cpsat_next: bool = False) -> StageBudget:
+        """Half of what is left after the first searches (it stops sooner once the gap is
+        met), or 15 % when CP-SAT is to run next and needs the rest."""
+        return self._stage(SEQUENCE_PER_EFFORT, 400, 0.15 if cpsat_next else 0.5)
 
     def ruin_and_recreate_2(self) -> StageBudget:
         """Everything left, when CP-SAT does not run."""

@@ -1,0 +1,168 @@
+"""Work budgets and the fast paths of the build: none of these tests depends on the machine's
+speed (no test asserts a duration; budgets are exhausted on purpose or bounded by effort), and
+every vectorised or chunked computation is compared with a plain reference written here."""
+
+from __future__ import annotations
+
+import time
+from dataclasses import fields
+
+import numpy as np
+import pytest
+
+from scheduler.constraints.feasibility import evaluate
+from scheduler.model.timegrid import consecutive_runs
+from scheduler.planning import pipeline
+from scheduler.planning.pipeline import BuildOptions, build_plan
+from scheduler.solve import bounds, budget
+from scheduler.solve.budget import StageClock, WorkBudget
+from scheduler.solve.objective import merit_buckets, value_coef
+from scheduler.solve.transitions import pair_transition_steps
+
+from test_solver import CFG, assert_clean, effort, problem_for, random_scene
+
+
+# --------------------------------------------------------------------------- the budget
+
+def test_the_limit_counts_from_the_start_of_planning():
+    b = WorkBudget(10.0, started=time.perf_counter() - 4.0)  # 4 s already spent before the build
+    assert b.left() <= 10.0 - 4.0 - b.finish_reserve_s + 1e-6
+    stage = b.ruin_and_recreate()
+    assert stage.time_limit_s <= b.left() + 1e-6 and stage.time_limit_s == pytest.approx(0.45 * b.left(), rel=0.05)
+
+
+def test_a_spent_budget_gives_every_stage_nothing():
+    b = WorkBudget(1.0, started=time.perf_counter() - 50.0)
+    assert b.left() == 0.0
+    for stage in (b.randomized_dispatch(), b.lagrangian(), b.ruin_and_recreate(), b.sequence(),
+                  b.ruin_and_recreate_2()):
+        assert stage.time_limit_s == 0.0
+    assert not b.cpsat_can_pay(10)
+
+
+def test_effort_budget_reads_no_clock_and_decides_cpsat_by_size_alone():
+    b = WorkBudget(0.001, effort=3, started=time.perf_counter() - 1e6)  # the clock is irrelevant
+    assert b.ruin_and_recreate().iterations == 3 * budget.RUIN_RECREATE_PER_EFFORT
+    assert b.ruin_and_recreate().time_limit_s is None
+    assert b.cpsat_can_pay(budget.CPSAT_MAX_LITERALS_EFFORT)
+    assert not b.cpsat_can_pay(budget.CPSAT_MAX_LITERALS_EFFORT + 1)
+    assert b.cpsat().deterministic_time_s == pytest.approx(3 * budget.CPSAT_DETERMINISTIC_PER_EFFORT)
+
+
+def test_stage_clock():
+    assert not any(StageClock(None).out_of_time() for _ in range(100))  # deterministic: never stops
+    assert StageClock(0.0).out_of_time()  # nothing left: stops before the first iteration
+    c = StageClock(1e6)
+    assert not c.out_of_time() and c.spent() < 0.01
+
+
+def test_a_build_started_past_its_limit_still_returns_a_checked_plan():
+    """Every stage gets nothing (the limit is long gone): the build still answers with the
+    greedy-or-better plan, checked, and says CP-SAT did not run."""
+    night, sky, cond, reqs, w = random_scene(4, 10, 240)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky,
+                     options=BuildOptions(time_limit_s=0.5, started=time.perf_counter() - 100.0))
+    assert_clean(res)
+    assert res.objective >= res.greedy_objective - 1e-9 and res.entries
+    assert res.stats["cpsat"].startswith("skipped") and not res.stats["cpsat_improved"]
+
+
+def test_small_problem_under_effort_runs_cpsat_and_reports_it():
+    night, sky, cond, reqs, w = random_scene(5, 8, 200)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort())
+    assert_clean(res)
+    decision = res.stats["cpsat"]
+    assert decision.startswith("ran") or "within the gap tolerance" in decision
+    assert isinstance(res.stats["cpsat_improved"], bool) and res.stats["cpsat_gain"] >= 0.0
+
+
+def test_cpsat_skipped_for_a_large_model_under_effort_gives_its_share_to_the_search(monkeypatch):
+    night, sky, cond, reqs, w = random_scene(6, 10, 240)
+    monkeypatch.setattr(budget, "CPSAT_MAX_LITERALS_EFFORT", 0)
+    called = []
+    monkeypatch.setattr(pipeline, "solve_problem", lambda *a, **k: called.append(1))
+    a = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort(seed=3))
+    b = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort(seed=3))
+    assert not called
+    assert_clean(a)
+    assert a.entries == b.entries and a.objective == b.objective  # still deterministic
+    if a.stats["cpsat"].startswith("skipped: model"):
+        assert a.stats["ruin_recreate_iterations"] > budget.RUIN_RECREATE_PER_EFFORT * 1 or a.gap <= 0.01
+        assert a.solver_status in ("FEASIBLE", "OPTIMAL") and not a.used_greedy
+        assert "CP-SAT skipped" in a.message
+
+
+# --------------------------------------------------------------------------- vectorised = reference
+
+def _reference_programme(dp, val):
+    """The sequence DP one grid step at a time (the plain form of _SequenceDP._programme)."""
+    n_t, K, NEG = dp.n_t, dp.K, -1e18
+    F = np.full((n_t + 1, K), NEG)
+    R = np.full((n_t + 1, K), NEG)
+    for s in range(dp.t0, n_t + 1):
+        R[s] = np.maximum(R[s - 1], F[s]) if s > dp.t0 else F[s]
+        lo, hi = dp.by_start[s], dp.by_start[s + 1] if s < n_t else len(dp.S)
+        for c in range(lo, hi):
+            k2 = dp.CL[c]
+            best = 0.0
+            for k in range(K):
+                t = s - dp.Lc[k, k2]
+                if t >= dp.t0 and R[t, k] > best:
+                    best = R[t, k]
+            F[dp.END[c], k2] = max(F[dp.END[c], k2], best + val[c])
+    return float(max(0.0, R[n_t].max()))
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_blocked_sequence_dp_equals_the_step_by_step_programme(seed):
+    night, sky, cond, reqs, w = random_scene(seed, 9, 150)
+    P, _ = problem_for(night, sky, cond, reqs, w)
+    dp = bounds._SequenceDP(P, 8)
+    assert dp.block >= 1
+    rng = np.random.default_rng(seed)
+    for _ in range(3):
+        mu = rng.uniform(0, 0.5, dp.n_exec) * float(dp.C.max())
+        val = dp.C - mu[dp.E]
+        fast, _ = dp.best_sequence(mu)
+        assert fast == pytest.approx(_reference_programme(dp, val), rel=1e-12, abs=1e-6)
+
+
+def test_transition_matrix_is_the_same_whatever_the_chunk():
+    night, sky, cond, reqs, w = random_scene(7, 12, 180)
+    P, feas = problem_for(night, sky, cond, reqs, w)
+    rows = P.feas_rows
+    start_ok = np.zeros((len(rows), P.n_t), dtype=bool)
+    end_ok = np.zeros_like(start_ok)
+    for ex in P.execs:
+        start_ok[ex.req, ex.starts] = True
+        ends = ex.starts + ex.duration
+        end_ok[ex.req, ends[ends < P.n_t]] = True
+    args = (CFG, P.step_s, sky.alt_deg[rows], sky.az_deg[rows], P.instruments, P.bands, end_ok, start_ok)
+    one, tmax = pair_transition_steps(*args, chunk=10_000)
+    for chunk in (1, 5):
+        other, _ = pair_transition_steps(*args, chunk=chunk)
+        assert np.array_equal(one, other)
+    assert np.array_equal(one, P.T) and (one <= tmax[None, :]).all()
+
+
+def test_merit_buckets_equal_the_bucket_by_bucket_minimum():
+    rng = np.random.default_rng(11)
+    for _ in range(50):
+        mask = rng.random(300) < rng.uniform(0.05, 0.95)
+        merit = rng.random(300).astype(np.float32)
+        width = int(rng.integers(1, 13))
+        lo, hi, coef = merit_buckets(mask, merit, 1.7, width)
+        ref = [(b0, min(h, b0 + width - 1)) for a, h in consecutive_runs(np.flatnonzero(mask))
+               for b0 in range(a, h + 1, width)]
+        assert [(int(x), int(y)) for x, y in zip(lo, hi)] == ref
+        assert coef.tolist() == [value_coef(1.7, float(np.min(merit[a:b + 1]))) for a, b in ref]
+
+
+def test_feasibility_in_chunks_equals_one_evaluation(monkeypatch):
+    night, sky, cond, reqs, w = random_scene(8, 11, 120)
+    rows = np.arange(len(reqs))
+    whole = evaluate(reqs, rows, sky, cond, CFG)
+    monkeypatch.setattr(pipeline, "FEASIBILITY_CHUNK", 4)
+    parts = pipeline._evaluate(reqs, rows, sky, cond, CFG, None)
+    for f in fields(whole):
+        assert np.array_equal(getattr(whole, f.name), getattr(parts, f.name), equal_nan=True), f.name
