@@ -1,7 +1,8 @@
 """`nightplan demo`: the whole job on the invented scenario in demo_queue/, in a fresh folder.
 
 Runs the real commands in this process (the same click commands a user types, with --db and
---config pointing into the folder), so the demo goes through exactly the CLI's code paths:
+--config pointing into the folder), so the demo goes through exactly the CLI's code paths. The
+command group is passed in by `nightplan demo`, so this module never imports the command line:
 init, program add, request import, conditions load, almanac, plan build, plan show, plan
 chart, plan export, plan why, next; then the changed forecast, a re-plan with a reason naming
 the change, and what moved between the two plan versions.
@@ -45,10 +46,9 @@ def _out_dir(out: str | None) -> Path:
     return p
 
 
-def run_demo(out: str | None, time_limit: float) -> dict:
+def run_demo(out: str | None, time_limit: float, cli: click.Group) -> dict:
     from sqlalchemy import select
 
-    from scheduler.cli.main import cli
     from scheduler.db import plans
     from scheduler.db.models import Plan, Request
     from scheduler.db.session import open_db

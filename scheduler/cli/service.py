@@ -9,7 +9,7 @@ from pathlib import Path
 
 import click
 
-from scheduler.cli.main import Ctx, echo_json, pass_ctx
+from scheduler.cli.common import Ctx, echo_json, pass_ctx
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso
 
