@@ -1,4 +1,5 @@
-"""`nightplan demo`: the whole job on the invented scenario in demo_queue/, in a fresh folder.
+"""`nightplan demo`: the whole job on the invented scenario (package data, data/demo_queue/), in a
+fresh folder.
 
 Runs the real commands in this process (the same click commands a user types, with --db and
 --config pointing into the folder), so the demo goes through exactly the CLI's code paths. The
@@ -21,15 +22,15 @@ import click
 
 from scheduler.model.errors import InputError
 
-DATA_DIR = Path(__file__).resolve().parents[1] / "demo_queue"
+DATA_DIR = Path(__file__).resolve().parent / "data" / "demo_queue"  # shipped in the wheel
 BEFORE_NIGHT = "T18:00:00Z"  # the first build "happens" the afternoon before, so the whole night is planned
 UPDATE_AT = "01:00:00Z"  # the forecast update arrives mid-night, the next UTC day: re-plan from then on
 
 
 def _data_dir() -> Path:
     if not (DATA_DIR / "scenario.json").is_file():
-        raise InputError("demo", f"the demo scenario was not found in {DATA_DIR}; the demo runs from a source "
-                                 "checkout of nightplan (demo_queue/ beside the scheduler package)")
+        raise InputError("demo", f"the demo scenario was not found in {DATA_DIR}; this nightplan installation "
+                                 "is incomplete (reinstall it)")
     return DATA_DIR
 
 
