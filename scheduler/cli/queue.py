@@ -13,7 +13,6 @@ import click
 from scheduler.cli.common import Ctx, console, echo_json, parse_night, pass_ctx, warn
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
-from scheduler.model.request import STATUSES
 
 MAX_IMPORT_BYTES = 10_000_000
 MAX_IMPORT_ROWS = 20_000
@@ -196,7 +195,7 @@ def request_import(c: Ctx, file: str) -> None:
 
 
 @request.command("list")
-@click.option("--status", type=click.Choice(STATUSES))
+@click.option("--status", type=click.Choice(["queued", "planned", "done", "failed", "withdrawn", "expired"]))
 @click.option("--program", help="only this program")
 @click.option("--json", "as_json", is_flag=True, help="print a JSON array")
 @pass_ctx
