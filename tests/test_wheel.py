@@ -46,7 +46,8 @@ def installed(tmp_path_factory) -> Path:
         names = set(z.namelist())
     for shipped in ("scheduler/db/migrations/env.py", "scheduler/db/migrations/script.py.mako",
                     "scheduler/db/migrations/versions/0001_initial_schema.py", "scheduler/data/observatory.toml",
-                    "scheduler/data/demo_queue/scenario.json", "scheduler/data/demo_queue/requests.csv"):
+                    "scheduler/data/demo_queue/scenario.json", "scheduler/data/demo_queue/requests.csv",
+                    "scheduler/web/templates/index.html", "scheduler/web/static/app.js"):
         assert shipped in names, shipped
     assert not any("__pycache__" in n for n in names)
 

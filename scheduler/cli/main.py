@@ -15,7 +15,7 @@ import sys
 
 import click
 
-from scheduler.cli import database, demo, plan, queue, service, sky
+from scheduler.cli import database, demo, plan, queue, service, sky, web
 from scheduler.cli.common import Ctx
 from scheduler.model.errors import InputError, NotFoundError
 
@@ -34,9 +34,9 @@ def cli(ctx: click.Context, db_url: str | None, config_path: str | None) -> None
     ctx.obj = Ctx(db_url, config_path)
 
 
-# The command modules, each adding its commands to the root group. A new module (for example
-# the web app's commands, scheduler/cli/web.py) is imported above and listed here.
-COMMAND_MODULES = (database, queue, sky, plan, service, demo)
+# The command modules, each adding its commands to the root group. A new module is imported
+# above and listed here.
+COMMAND_MODULES = (database, queue, sky, plan, service, web, demo)
 
 for _module in COMMAND_MODULES:
     _module.register(cli)
