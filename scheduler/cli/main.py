@@ -18,6 +18,7 @@ import click
 
 from scheduler.model.config import ObservatoryConfig, load_config, starter_config_text
 from scheduler.model.errors import InputError, NotFoundError
+from scheduler.model.request import RequestStatus
 
 CONFIG_FILE = "observatory.toml"
 MAX_IMPORT_BYTES = 10_000_000
@@ -294,7 +295,7 @@ def request_import(c: Ctx, file: str) -> None:
 
 
 @request.command("list")
-@click.option("--status", type=click.Choice(["queued", "planned", "done", "failed", "withdrawn", "expired"]))
+@click.option("--status", type=click.Choice([s.value for s in RequestStatus]))
 @click.option("--program", help="only this program")
 @click.option("--json", "as_json", is_flag=True, help="print a JSON array")
 @pass_ctx

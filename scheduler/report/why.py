@@ -31,7 +31,7 @@ import numpy as np
 from scheduler.conditions.grid import ConditionsGrid
 from scheduler.model.config import ObservatoryConfig
 from scheduler.constraints.feasibility import TRANSMISSION_FLOOR, Reason, evaluate, reason_names, start_windows
-from scheduler.model.request import RequestSpec
+from scheduler.model.request import CLOSED_STATUSES, RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso
 from scheduler.sky.ephemeris import SkyGrid
 from scheduler.sky.night import Night
@@ -205,12 +205,12 @@ def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: Sky
                          f"airmass {e['airmass_start']:.2f}->{e['airmass_end']:.2f}, FWHM "
                          f"{e['predicted_fwhm_arcsec']:.2f}\", PWV {e['predicted_pwv_mm']:.1f} mm, merit {e['merit']:.2f}")
         owed = spec.remaining_repeats
-        if owed > len(mine) and spec.status not in ("done",):
+        if owed > len(mine) and spec.status != RequestStatus.DONE:
             lines.append(f"  {owed - len(mine)} more execution(s) owed do not fit tonight"
                          + (f" ({solver_reason})" if solver_reason else ""))
         out["explanation"] = lines
         return out
-    if spec.status in ("done", "withdrawn", "expired"):
+    if spec.status in CLOSED_STATUSES:
         out["state"] = "not_in_queue"
         out["explanation"] = [f"{head} is {spec.status}: it is not in the queue, so no plan schedules it."]
         return out
