@@ -11,6 +11,7 @@ import click
 
 from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
 from scheduler.model.errors import InputError, NotFoundError
+from scheduler.model.request import OutcomeResult, RequestStatus
 from scheduler.model.timegrid import iso, parse_time
 
 
@@ -41,7 +42,7 @@ def load_document(c: Ctx, version: int | None):
     with c.db().session() as s:
         plan = plans.get_plan(s, _version(version))
         night = night_of(config, plan.night)
-        doc = plan_document(s, plan, config, night)
+        doc = plan_document(plans.stored_plan(s, plan), config, night)
     return doc, night, config
 
 
@@ -149,17 +150,10 @@ def plan_show(c: Ctx, version: int | None, show_unscheduled: bool, as_json: bool
 @pass_ctx
 def plan_list(c: Ctx, night: str | None, as_json: bool) -> None:
     """Stored plan versions, newest first."""
-    from sqlalchemy import select
+    from scheduler.db import plans
 
-    from scheduler.db.models import Plan
-
-    q = select(Plan).order_by(Plan.id.desc())
-    if night:
-        q = q.where(Plan.night == parse_night(night))
     with c.db().session() as s:
-        rows = [{"version": p.id, "night": p.night.isoformat(), "created_at": iso(p.created_at), "active": p.active,
-                 "reason": p.reason, "solver_status": p.solver_status, "objective": p.objective, "gap": p.gap,
-                 "entries": len(p.entries), "previous_version": p.previous_id} for p in s.scalars(q)]
+        rows = plans.plan_listing(s, parse_night(night) if night else None)
     if as_json:
         echo_json(rows)
         return
@@ -296,7 +290,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
                 "; build one with `nightplan plan build`"
             raise NotFoundError(f"no plan for the night of {night_d} (the night of {iso(at)}){have}")
         night = night_of(config, plan_row.night)
-        doc = plan_document(s, plan_row, config, night)
+        doc = plan_document(plans.stored_plan(s, plan_row), config, night)
     res = what_next(doc, at)
     if as_json:
         echo_json(res)
@@ -321,7 +315,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
 
 @click.command("record")
 @click.argument("request_id", type=int)
-@click.option("--result", type=click.Choice(["done", "failed", "partial"]), required=True, help="what happened")
+@click.option("--result", type=click.Choice([r.value for r in OutcomeResult]), required=True, help="what happened")
 @click.option("--exposure", type=float, help="exposure actually achieved, seconds (required for partial)")
 @click.option("--note", help="observer's note (at most 2000 characters)")
 @pass_ctx
@@ -329,7 +323,7 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
     """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back."""
     from scheduler.db import plans, store
 
-    if result == "partial" and exposure is None:
+    if result == OutcomeResult.PARTIAL and exposure is None:
         raise InputError("exposure", "required with --result partial: the seconds of exposure achieved")
     now = datetime.now(timezone.utc)
 
@@ -347,12 +341,12 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
         return out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s
 
     oid, status, done_n, reps, part, exp = c.db().retrying(work)
-    if status == "done":
+    if status == RequestStatus.DONE:
         tail = "all executions done; it leaves the queue"
-    elif result == "partial":
+    elif result == OutcomeResult.PARTIAL:
         tail = (f"{part:g} s of {exp:g} s credited; the remaining {exp - part:g} s stay queued" if part > 0 else
                 f"execution {done_n} of {reps} complete; the next stays queued")
-    elif result == "failed":
+    elif result == OutcomeResult.FAILED:
         tail = "back in the queue"
     else:
         tail = f"{done_n} of {reps} executions done; the rest stay queued"
