@@ -13,6 +13,7 @@ from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, w
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import OutcomeResult, RequestStatus
 from scheduler.model.timegrid import iso, parse_time
+from scheduler.report.safe_text import cell, clean
 
 
 # --------------------------------------------------------------------------- helpers
@@ -124,7 +125,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
         ("reason", p["reason"]),
     ]
     for k, v in rows:
-        out.print(f"  {k:<17} {v}")
+        out.print(cell(f"  {k:<17} {v}"))
     out.print(f"  see: nightplan plan show{'' if p['active'] else ' --version ' + str(p['version'])}")
 
 
@@ -157,7 +158,7 @@ def plan_list(c: Ctx, night: str | None, as_json: bool) -> None:
     if as_json:
         echo_json(rows)
         return
-    from rich.table import Table
+    from scheduler.report.safe_text import SafeTable as Table
 
     t = Table("version", "night", "created (UTC)", "active", "status", "objective", "gap", "entries", "reason",
               title="plans")
@@ -215,7 +216,7 @@ def plan_check(c: Ctx, version: int | None) -> None:
     v, violations = verify_stored_plan(c.db(), c.config(), _version(version))
     if violations:
         for line in violations:
-            click.echo(f"plan {v}: {line}")
+            click.echo(f"plan {v}: {clean(line)}")
         raise SystemExit(1)
     click.echo(f"plan {v}: every entry passes the checker")
 
@@ -260,9 +261,9 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
         echo_json(res)
         return
     for line in res["explanation"]:
-        click.echo(line)
+        click.echo(clean(line))
     if res.get("solver_reason") and res["state"] != "scheduled":
-        click.echo(f"  solver's note: {res['solver_reason']}")
+        click.echo(f"  solver's note: {clean(res['solver_reason'])}")
 
 
 # --------------------------------------------------------------------------- next, record
@@ -306,7 +307,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
         click.echo("NOW   the plan has no entries")
     else:
         first = res["upcoming"][0]
-        click.echo(f"NOW   nothing in progress: move to #{first['request_id']} {first['target']}, which starts "
+        click.echo(f"NOW   nothing in progress: move to #{first['request_id']} {clean(first['target'])}, which starts "
                    f"at {hm(first['start'])} UTC ({hm(first['start_local'])} local)")
     for label, e in zip(("NEXT", "THEN"), res["upcoming"]):
         click.echo(f"{label:<5} {entry_line(e)}")
