@@ -159,6 +159,8 @@ def check_upgraded(db, counts: dict[str, int]) -> None:
         assert stored.requests[1].target == "NGC 1 [a]" and stored.requests[2].program == "STAR-1"
         assert stored.conditions.source == "forecast A" and stored.previous_version == 1
         assert [p.id for p in plans.active_plans(s)] == [2]
+        assert [(r["version"], r["entries"], r["active"]) for r in plans.plan_listing(s)] == [(2, 2, True),
+                                                                                           (1, 1, False)]
         # the upgraded database takes new writes through the models
         store.record_outcome(s, 1, "failed", note="clouds")
         s.commit()
