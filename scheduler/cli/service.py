@@ -139,7 +139,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
         with db.session() as s:
             o = s.get(ReplanOrder, oid)
             result, version = o.result or "", o.plan_id
-        click.echo(f"order {oid} done: {result}")
+        click.echo(f"order {oid} done: {clean(result)}")
         if version is None:
             sys.exit(1)
         return
@@ -173,7 +173,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
     if built is None or built.version is None:
         click.echo(f"nightplan: error: order {oid} {clean(result)}", err=True)
         sys.exit(1)
-    click.echo(f"order {oid} done: {result}")
+    click.echo(f"order {oid} done: {clean(result)}")
 
 
 @click.command()
