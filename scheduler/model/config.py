@@ -104,6 +104,13 @@ class Planning:
 
 
 @dataclass(frozen=True)
+class ClimatologyRef:
+    """Where the site's weather statistics live (for the season outlook)."""
+
+    file: str  # as written in the config: relative to the config file's folder, or absolute
+
+
+@dataclass(frozen=True)
 class ObservatoryConfig:
     site: Site
     telescope: Telescope
@@ -113,6 +120,16 @@ class ObservatoryConfig:
     defaults: ConditionDefaults
     planning: Planning = field(default_factory=Planning)
     path: str | None = None
+    climatology: ClimatologyRef | None = None
+
+    def climatology_path(self) -> Path | None:
+        """The climatology file, resolved against the config file's folder; None if not configured."""
+        if self.climatology is None:
+            return None
+        p = Path(self.climatology.file).expanduser()
+        if not p.is_absolute() and self.path:
+            p = Path(self.path).resolve().parent / p
+        return p
 
     def band(self, name: str) -> Band:
         try:
@@ -345,8 +362,19 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
         heartbeat_min=pt.num("heartbeat_min", 1, 1440, 30.0),
     )
     pt.done()
+    climatology = _climatology(root._take("climatology", None, False))
     root.done()
-    return ObservatoryConfig(site, telescope, bands, tuple(instruments), safety, defaults, planning, path)
+    return ObservatoryConfig(site, telescope, bands, tuple(instruments), safety, defaults, planning, path,
+                             climatology)
+
+
+def _climatology(raw: Any) -> ClimatologyRef | None:
+    if raw is None:
+        return None
+    t = _Table(raw, "climatology")
+    ref = ClimatologyRef(file=t.text("file"))
+    t.done()
+    return ref
 
 
 MAX_CONFIG_BYTES = 1_000_000
