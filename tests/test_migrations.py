@@ -247,3 +247,18 @@ def test_cli_on_a_database_upgraded_by_init(tmp_path):
                                   "target": "Deep south", "program": "STAR-1", "band": "V"}]
     table_out = run_cli("plan", "show", "--version", "2", cwd=tmp_path, check=True).stdout
     assert "re-plan [/] after a forecast" in table_out and "NGC 1 [a]" in table_out
+
+
+def test_copy_an_upgraded_database_to_postgres(tmp_path, pg_url):
+    """`db copy` carries the JSON columns and the enums across databases unchanged."""
+    from scheduler.db.transfer import copy_database
+
+    src = open_db(f"sqlite:///{tmp_path / 'old.sqlite'}")
+    migrate.upgrade(src, "0001")
+    counts = fill_0001(src)
+    migrate.upgrade(src)
+    dst = open_db(pg_url)
+    assert copy_database(src, dst) == counts
+    check_upgraded(dst, counts)
+    dst.dispose()
+    src.dispose()
