@@ -16,7 +16,7 @@ from sqlalchemy.exc import IntegrityError
 
 from conftest import cli_json, run_cli
 from scheduler.db import migrate, plans, store
-from scheduler.db.models import Base, Outcome, Plan, Request
+from scheduler.db.models import Base, Outcome, Plan
 from scheduler.db.session import open_db
 from scheduler.model.request import OutcomeResult, RequestStatus
 

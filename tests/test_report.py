@@ -143,7 +143,7 @@ def test_show_table_has_summary_times_and_caution(planned, shown):
 
 def test_plan_document_is_made_from_plain_data(tmp_path):
     """The report takes a StoredPlan (what storage reads) and needs no database."""
-    from datetime import date, timezone
+    from datetime import date
 
     from scheduler.model.config import load_config, starter_config_text
     from scheduler.model.plan import RequestLabel, StoredEntry, StoredPlan
