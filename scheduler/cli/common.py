@@ -16,6 +16,7 @@ import click
 from scheduler.model.config import ObservatoryConfig, load_config
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import parse_time
+from scheduler.report.safe_text import clean
 
 CONFIG_FILE = "observatory.toml"
 
@@ -56,7 +57,7 @@ def echo_json(obj: Any) -> None:
 
 
 def warn(msg: str) -> None:
-    click.echo(f"nightplan: warning: {msg}", err=True)
+    click.echo(f"nightplan: warning: {clean(msg)}", err=True)
 
 
 def console():

@@ -18,6 +18,7 @@ import click
 from scheduler.cli import database, demo, plan, queue, service, sky, web
 from scheduler.cli.common import Ctx
 from scheduler.model.errors import InputError, NotFoundError
+from scheduler.report.safe_text import clean
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
@@ -61,7 +62,7 @@ def main(argv: list[str] | None = None) -> None:
         sys.exit(2 if e.exit_code in (1, 2) else e.exit_code)
     except (InputError, NotFoundError) as e:
         msg = e.args[0] if isinstance(e, NotFoundError) else str(e)
-        click.echo(f"nightplan: error: {msg}", err=True)
+        click.echo(f"nightplan: error: {clean(msg)}", err=True)
         sys.exit(2)
     except KeyboardInterrupt:
         click.echo("nightplan: interrupted", err=True)
@@ -73,5 +74,5 @@ def main(argv: list[str] | None = None) -> None:
 
         kind = "database" if isinstance(e, SQLAlchemyError) else type(e).__name__
         first = str(e).strip().splitlines()[0] if str(e).strip() else repr(e)
-        click.echo(f"nightplan: error: {kind}: {first[:300]} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
+        click.echo(f"nightplan: error: {kind}: {clean(first[:300])} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
         sys.exit(1)

@@ -13,6 +13,8 @@ import click
 from scheduler.cli.common import Ctx, console, echo_json, parse_night, pass_ctx, warn
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
+from scheduler.model.request import RequestStatus
+from scheduler.report.safe_text import clean
 
 MAX_IMPORT_BYTES = 10_000_000
 MAX_IMPORT_ROWS = 20_000
@@ -34,7 +36,7 @@ def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float) -> None
     from scheduler.db import store
 
     prog = c.db().retrying(lambda s: store.program_dict(store.add_program(s, code, pi, hours, weight)))
-    click.echo(f"program {prog['code']} added (PI {prog['pi']}, {prog['hours']:g} h, weight {prog['weight']:g})")
+    click.echo(f"program {prog['code']} added (PI {clean(prog['pi'])}, {prog['hours']:g} h, weight {prog['weight']:g})")
 
 
 @program.command("list")
@@ -49,7 +51,7 @@ def program_list(c: Ctx, as_json: bool) -> None:
     if as_json:
         echo_json(rows)
         return
-    from rich.table import Table
+    from scheduler.report.safe_text import SafeTable as Table
 
     t = Table("code", "PI", "hours", "weight", title="programs")
     for r in rows:
@@ -195,7 +197,7 @@ def request_import(c: Ctx, file: str) -> None:
 
 
 @request.command("list")
-@click.option("--status", type=click.Choice(["queued", "planned", "done", "failed", "withdrawn", "expired"]))
+@click.option("--status", type=click.Choice([s.value for s in RequestStatus]))
 @click.option("--program", help="only this program")
 @click.option("--json", "as_json", is_flag=True, help="print a JSON array")
 @pass_ctx
@@ -208,7 +210,7 @@ def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool)
     if as_json:
         echo_json(rows)
         return
-    from rich.table import Table
+    from scheduler.report.safe_text import SafeTable as Table
 
     t = Table("id", "program", "target", "RA", "Dec", "band", "exp s", "prio", "limits", "status",
               title=f"requests ({len(rows)})")
@@ -253,7 +255,7 @@ def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> N
     for k, v in d.items():
         if k == "windows" or v is None:
             continue
-        click.echo(f"{k:>20}: {v}")
+        click.echo(f"{k:>20}: {clean(v)}")
     if night:
         w = d["windows"]
         click.echo(f"{'night':>20}: {night}")
