@@ -166,3 +166,30 @@ def test_feasibility_in_chunks_equals_one_evaluation(monkeypatch):
     parts = pipeline._evaluate(reqs, rows, sky, cond, CFG, None)
     for f in fields(whole):
         assert np.array_equal(getattr(whole, f.name), getattr(parts, f.name), equal_nan=True), f.name
+
+
+# --------------------------------------------------------------------------- one night per build
+
+@pytest.mark.slow
+def test_a_plan_build_computes_the_night_once(workdir):
+    """`plan build`'s path (Planner.build_and_store with a real SQLite queue) asks for the
+    night many times (the command, the planner, the stored document) and computes it once."""
+    from datetime import date
+
+    from conftest import run_cli
+    from scheduler.db.session import open_db
+    from scheduler.model.config import load_config
+    from scheduler.planning.planner import Planner
+    from scheduler.sky.night import night_for
+
+    for i, (ra, band) in enumerate([(40.0, "V"), (80.0, "R"), (120.0, "J")]):
+        run_cli("request", "add", "--program", "STAR-1", "--target", f"N{i}", "--ra", str(ra), "--dec", "-30",
+                "--band", band, "--exposure", "900", cwd=workdir, check=True)
+    config = load_config(workdir / "observatory.toml")
+    db = open_db(str(workdir / "nightplan.sqlite"))
+    night_for.cache_clear()
+    planner = Planner(config)
+    built = planner.build_and_store(db, night_date=date(2026, 12, 5), reason="test", time_limit_s=0.5)
+    planner.night(date(2026, 12, 5))
+    assert built.version is not None and built.result.violations == ()
+    assert night_for.cache_info().misses == 1

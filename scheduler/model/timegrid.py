@@ -4,11 +4,12 @@ moment, and runs of True on a grid. Imports nothing of ours beyond errors."""
 from __future__ import annotations
 
 from datetime import datetime, timezone
-from typing import Any
-
-import numpy as np
+from typing import TYPE_CHECKING, Any
 
 from scheduler.model.errors import InputError
+
+if TYPE_CHECKING:  # annotations only
+    import numpy as np
 
 MIN_YEAR, MAX_YEAR = 1900, 2200  # the ephemerides (IERS, planetary series) are trusted in this span
 
@@ -55,6 +56,9 @@ def parse_time(value: Any, field_name: str) -> datetime:
     return t
 
 
+# numpy is imported inside the functions that use it: the interactive commands (request add,
+# request list, status) read the queue through this module and answer faster without it.
+
 def step_of(times_unix: np.ndarray, when: datetime | float) -> int:
     """The grid step of a moment: the first step that starts at or after ``when``.
 
@@ -64,12 +68,16 @@ def step_of(times_unix: np.ndarray, when: datetime | float) -> int:
     moment on a step boundary (within a microsecond) is that step. Before the grid it is 0,
     after its last step it is ``len(times_unix)``.
     """
+    import numpy as np
+
     t = when.timestamp() if isinstance(when, datetime) else float(when)
     return int(np.searchsorted(times_unix, t - 1e-6, side="left"))
 
 
 def runs(mask: np.ndarray) -> list[tuple[int, int]]:
     """Half-open index runs [start, end) where a 1-D mask is True."""
+    import numpy as np
+
     m = np.concatenate([[False], np.asarray(mask, dtype=bool), [False]]).astype(np.int8)
     d = np.flatnonzero(np.diff(m))
     return list(zip(d[0::2].tolist(), d[1::2].tolist()))
@@ -77,6 +85,8 @@ def runs(mask: np.ndarray) -> list[tuple[int, int]]:
 
 def consecutive_runs(values: np.ndarray) -> list[tuple[int, int]]:
     """Inclusive (first, last) runs of consecutive integers in a sorted 1-D array."""
+    import numpy as np
+
     values = np.asarray(values)
     if values.size == 0:
         return []

@@ -7,6 +7,7 @@ sky for a target it has seen; only the conditions-dependent layers are redone on
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta, timezone
 from typing import Callable
@@ -85,31 +86,34 @@ class Planner:
 
     def build(self, inputs: PlanInputs, night: Night, *, now: datetime | None = None,
               time_limit_s: float | None = None, progress: Callable[[str], None] | None = None,
-              use_previous: bool = True) -> tuple[PlanResult, ConditionsGrid]:
+              use_previous: bool = True, started: float | None = None) -> tuple[PlanResult, ConditionsGrid]:
         from scheduler.planning.pipeline import BuildOptions, build_plan
 
         cond = self.conditions(night, inputs.samples, inputs.report_id)
         result = build_plan(
             self.config, inputs.specs, inputs.weights, night, cond, sky=self.sky_cache,
             options=BuildOptions(now=now, previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
-                                 time_limit_s=time_limit_s, progress=progress),
+                                 time_limit_s=time_limit_s, progress=progress, started=started),
         )
         return result, cond
 
     def build_and_store(self, db: Database, *, night_date: date | None = None, reason: str,
                         now: datetime | None = None, time_limit_s: float | None = None,
-                        progress: Callable[[str], None] | None = None) -> BuiltPlan:
+                        progress: Callable[[str], None] | None = None, started: float | None = None) -> BuiltPlan:
         """Build from the current queue and conditions and store a new active plan version.
 
         ``now`` inside the night makes this a re-plan from now (the entry in progress is kept,
         nothing new starts before now); otherwise the plan covers the whole night.
+        ``started``: the time.perf_counter() value the time limit counts from (default: this
+        call), so the limit bounds reading the queue, the build and storing the plan.
         """
+        started = time.perf_counter() if started is None else started
         night_date = night_date or self.night_date(now)
         night = self.night(night_date)
         inputs = self.read_inputs(db, night_date)
         in_night = now is not None and night.start <= now < night.end
         result, cond = self.build(inputs, night, now=now if in_night else None,
-                                  time_limit_s=time_limit_s, progress=progress)
+                                  time_limit_s=time_limit_s, progress=progress, started=started)
         planned_from = now if in_night else night.start
         if result.violations:  # the checker refused it: never stored
             return BuiltPlan(None, result, night, planned_from, cond)
