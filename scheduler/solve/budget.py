@@ -33,7 +33,7 @@ RANDOMIZED_RUNS_PER_EFFORT = 40  # perturbed dispatches
 RUIN_RECREATE_PER_EFFORT = 300  # ruin-and-recreate moves (first phase)
 RUIN_RECREATE_2_PER_EFFORT = 150  # second phase, only when CP-SAT does not run
 LAGRANGIAN_PER_EFFORT = 30  # subgradient steps of the time-indexed bound (each of its two passes)
-SEQUENCE_PER_EFFORT = 2  # subgradient steps of the sequence bound (one DP pass each)
+SEQUENCE_PER_EFFORT = 1  # subgradient steps of the sequence bound (one DP pass each)
 CPSAT_DETERMINISTIC_PER_EFFORT = 0.05  # CP-SAT deterministic time units
 
 # CP-SAT's fixed cost (building the model, loading the hint, presolve) per literal of its model,
