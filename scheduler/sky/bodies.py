@@ -231,8 +231,9 @@ def iso_ms(unix: float) -> str:
 def _hermite(t: np.ndarray, y: np.ndarray, q: np.ndarray) -> np.ndarray:
     """Cubic Hermite interpolation of y [n, k] at q; derivatives from three-point differences.
 
-    The derivative at an inner row is the slope of the parabola through it and its two
-    neighbours (exact for quadratic motion); at the first and last rows the one-sided chord.
+    The derivative at a row is the slope of the parabola through it and its two neighbours
+    (at the first and last rows, through the three end rows): exact for quadratic motion.
+    Two rows only: the straight line.
     Outside [t0, tn] the end segments are extended (callers mask those times).
     """
     n = t.shape[0]
@@ -243,6 +244,9 @@ def _hermite(t: np.ndarray, y: np.ndarray, q: np.ndarray) -> np.ndarray:
     if n > 2:
         hl, hr = h[:-1, None], h[1:, None]
         m[1:-1] = (s[:-1] * hr + s[1:] * hl) / (hl + hr)
+        # ends: slope of the parabola through the first (last) three rows, at the end row
+        m[0] = s[0] - h[0] * (s[1] - s[0]) / (h[0] + h[1])
+        m[-1] = s[-1] + h[-1] * (s[-1] - s[-2]) / (h[-2] + h[-1])
     j = np.clip(np.searchsorted(t, q, side="right") - 1, 0, n - 2)
     hj = h[j][:, None]
     x = ((q - t[j]) / h[j])[:, None]
