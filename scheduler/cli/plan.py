@@ -251,14 +251,14 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
     from scheduler.conditions.grid import conditions_on_grid
     from scheduler.db import store
     from scheduler.report.why import explain
-    from scheduler.sky.ephemeris import compute_sky
+    from scheduler.sky.ephemeris import sky_for
 
     with c.db().session() as s:  # an unknown id fails before any sky work
         spec = store.to_spec(store.get_request(s, request_id))
         weights = store.program_weights(s)
     doc, night, config = load_document(c, version)
     solver_reason = next((u["reason"] for u in doc["unscheduled"] if u["request_id"] == request_id), None)
-    sky = compute_sky(config.site, night, np.array([spec.ra_deg]), np.array([spec.dec_deg]))
+    sky = sky_for(config.site, night, [spec])[0]
     cond = conditions_on_grid(_plan_samples(c, doc), night.times_unix, config.defaults,
                               doc["plan"]["conditions"]["report_id"])
     res = explain(config, spec, night, sky, cond, doc, weights, solver_reason)

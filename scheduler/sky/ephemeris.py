@@ -64,6 +64,7 @@ class SkyGrid:
     track_ra_deg: np.ndarray | None = None  # [n_mv, n_t] float64, nan where not covered
     track_dec_deg: np.ndarray | None = None  # [n_mv, n_t]
     track_covered: np.ndarray | None = None  # [n_mv, n_t] bool: the track gives a position
+    track_keys: tuple = ()  # [n_mv] bodies.track_key of each moving row
 
     @property
     def n_targets(self) -> int:
@@ -284,11 +285,11 @@ def _check_coords(ra_deg, dec_deg) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _grid(night: Night, frame: _NightFrame, ra, dec, rows: _TargetRows, moving_rows=None,
-          track_ra=None, track_dec=None, track_cov=None) -> SkyGrid:
+          track_ra=None, track_dec=None, track_cov=None, track_keys=None) -> SkyGrid:
     extra = {}
     if moving_rows is not None and len(moving_rows):
         extra = dict(moving_rows=np.asarray(moving_rows, dtype=np.int64), track_ra_deg=track_ra,
-                     track_dec_deg=track_dec, track_covered=track_cov)
+                     track_dec_deg=track_dec, track_covered=track_cov, track_keys=tuple(track_keys or ()))
     return SkyGrid(
         night=night, ra_deg=ra, dec_deg=dec,
         alt_deg=rows.alt, az_deg=rows.az, airmass=rows.airmass,
@@ -337,7 +338,55 @@ def compute_sky(site: Site, night: Night, ra_deg, dec_deg, tracks: Sequence[Trac
         getattr(rows, k)[mv] = getattr(tr.rows, k)
     ra, dec = ra.copy(), dec.copy()
     _mid_position(tr, night.n_times, ra, dec, mv)
-    return _grid(night, frame, ra, dec, rows, mv, tr.ra_deg, tr.dec_deg, tr.covered)
+    return _grid(night, frame, ra, dec, rows, mv, tr.ra_deg, tr.dec_deg, tr.covered,
+                 [track_key(tracks[i]) for i in mv])
+
+
+# --------------------------------------------------------------------------- targets of requests
+
+def target_key(t) -> tuple:
+    """Identity of a request's target: its track's key if it moves, else (ra, dec).
+
+    ``t`` is anything with ``ra_deg``, ``dec_deg`` and optionally ``track`` (a RequestSpec).
+    """
+    track = getattr(t, "track", None)
+    return track_key(track) if track is not None else (float(t.ra_deg), float(t.dec_deg))
+
+
+def distinct_targets(targets: Sequence) -> tuple[np.ndarray, np.ndarray, list, np.ndarray]:
+    """(ra, dec, tracks) of each distinct target, and each item's row among them."""
+    keys = [target_key(t) for t in targets]
+    first: dict[tuple, int] = {}
+    for i, k in enumerate(keys):
+        first.setdefault(k, i)
+    pos = {k: j for j, k in enumerate(first)}
+    reps = [targets[i] for i in first.values()]
+    ra = np.array([float(t.ra_deg) for t in reps], dtype=np.float64)
+    dec = np.array([float(t.dec_deg) for t in reps], dtype=np.float64)
+    tracks = [getattr(t, "track", None) for t in reps]
+    return ra, dec, tracks, np.array([pos[k] for k in keys], dtype=np.int64)
+
+
+def sky_for(site: Site, night: Night, targets: Sequence, sky=None) -> tuple[SkyGrid, np.ndarray]:
+    """The one way to get the sky of a list of requests: (a SkyGrid holding every target, each
+    request's row in it). ``sky``: None (computed here), a SkyGrid that already holds the targets,
+    or a SkyCache. Moving targets get their position at every grid time."""
+    ra, dec, tracks, rows = distinct_targets(targets)
+    if sky is None:
+        return compute_sky(site, night, ra, dec, tracks), rows
+    if isinstance(sky, SkyGrid):
+        index: dict[tuple, int] = {}
+        for i, (a, d) in enumerate(zip(sky.ra_deg.tolist(), sky.dec_deg.tolist())):
+            index.setdefault((float(a), float(d)), i)
+        for r, k in zip(sky.moving_rows.tolist(), sky.track_keys):
+            index[k] = int(r)
+        keys = [(float(a), float(d)) if tr is None else track_key(tr) for a, d, tr in zip(ra, dec, tracks)]
+        try:
+            where = np.array([index[k] for k in keys], dtype=np.int64)
+        except KeyError as e:
+            raise ValueError(f"sky grid has no row for target {e.args[0]}") from None
+        return sky, where[rows]
+    return sky.get(site, night, ra, dec, tracks), rows  # a SkyCache
 
 
 # --------------------------------------------------------------------------- cache
@@ -422,7 +471,7 @@ class SkyCache:
             trc = np.stack([entry.tracks[int(idx[i])][2] for i in mv])
             ra, dec = ra.copy(), dec.copy()
             _mid_position(_TrackRows(rows, tra, trd, trc), night.n_times, ra, dec, mv)
-            return _grid(night, entry.frame, ra, dec, rows, mv, tra, trd, trc)
+            return _grid(night, entry.frame, ra, dec, rows, mv, tra, trd, trc, [keys[i] for i in mv])
 
     def clear(self) -> None:
         with self._lock:

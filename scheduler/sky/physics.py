@@ -98,6 +98,25 @@ def delivered_fwhm_arcsec(seeing500_arcsec, airmass, band: Band, instrument: Ins
     return np.broadcast_to(np.sqrt(see**2 + diff**2 + inst**2), shape).copy()[()]
 
 
+def core_fwhm_arcsec(band: Band, instrument: Instrument, aperture_m: float) -> float:
+    """The sharpest image: diffraction core (1.03 lambda/D) and instrument blur in quadrature."""
+    return float(np.hypot(diffraction_fwhm_arcsec(band.wavelength_um, aperture_m), instrument.fwhm_arcsec))
+
+
+def seeing_limited_fwhm_arcsec(seeing500_arcsec, airmass, band: Band, instrument: Instrument, aperture_m: float):
+    """The image with no adaptive-optics correction (the seeing halo): seeing, diffraction and
+    instrument in quadrature; the diffraction pattern alone for bands not seeing-limited."""
+    diff = diffraction_fwhm_arcsec(band.wavelength_um, aperture_m)
+    s = np.asarray(seeing500_arcsec, dtype=np.float64)
+    x = np.asarray(airmass, dtype=np.float64)
+    shape = np.broadcast(s, x).shape
+    if not band.seeing_limited:
+        return np.full(shape, float(np.hypot(diff, instrument.fwhm_arcsec)))[()]
+    with np.errstate(invalid="ignore", over="ignore"):
+        see = seeing_fwhm_arcsec(s, band.wavelength_um, x)
+    return np.sqrt(see**2 + diff**2 + instrument.fwhm_arcsec**2)[()]
+
+
 # --------------------------------------------------------------------------- dish surface
 
 def ruze_efficiency(surface_rms_um, wavelength_um):
