@@ -39,6 +39,10 @@ class PlanEntry:
     band: str = ""
     instrument: str = ""
     fixed: bool = False  # kept from the previous plan (in progress or inside the freeze horizon)
+    ra_deg: float | None = None  # ICRS position at the start (a moving target's position then)
+    dec_deg: float | None = None
+    strehl: float | None = None  # predicted AO Strehl ratio at the start, where AO is modelled
+    surface_efficiency: float | None = None  # dish Ruze efficiency at the start, where it applies
 
 
 @dataclass(frozen=True)

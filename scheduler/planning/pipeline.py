@@ -472,6 +472,7 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
             moon_sep_deg=float(sky.moon_sep_deg[row, s]), value=ex.coef_at(s) / VALUE_SCALE,
             program=spec.program, target=spec.target, band=spec.band, instrument=inst.name,
             fixed=ex.fixed_start is not None,
+            **_entry_physics(sky, row, s, feas, r),
         )
         if prev is not None:
             pe, pspec, prow = prev
@@ -482,6 +483,16 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
         out.append(entry)
         prev = (entry, spec, row)
     return out
+
+
+def _entry_physics(sky: SkyGrid, row: int, s: int, feas, r: int) -> dict:
+    """Position at the entry's start (a moving target's own), predicted Strehl and dish efficiency."""
+    ra, dec = sky.position_deg(row, s)
+    strehl = None if feas.strehl is None else float(feas.strehl[r, s])
+    surface = None if feas.surface_eff is None else float(feas.surface_eff[r, s])
+    return dict(ra_deg=ra, dec_deg=dec,
+                strehl=strehl if strehl is not None and math.isfinite(strehl) else None,
+                surface_efficiency=surface if surface is not None and surface < 1.0 else None)
 
 
 def _drop_failing(entries, violations, spec_by_id, row_by_id, sky, cond, config, now_step):
