@@ -45,7 +45,8 @@ class BuiltPlan:
 
 def sample_of(row) -> Sample:
     return Sample(time=row.time, seeing_arcsec=row.seeing_arcsec, pwv_mm=row.pwv_mm, cloud_mag=row.cloud_mag,
-                  wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open)
+                  wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open,
+                  coherence_time_ms=row.coherence_time_ms)
 
 
 class Planner:
