@@ -193,6 +193,7 @@ def plan_export(c: Ctx, fmt: str, output: str | None, version: int | None) -> No
 @pass_ctx
 def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: str | None) -> None:
     """Altitude against time of the planned targets, the timeline, twilight, the Moon, seeing and PWV."""
+    from scheduler.db import store
     from scheduler.report.chart import chart_format, measured_samples, plan_samples, render_chart
     from scheduler.report.export import write_atomic
 
@@ -202,7 +203,8 @@ def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: st
     with c.db().session() as s:
         samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
         measured = measured_samples(s, night)
-    data = render_chart(doc, night, config, samples, now=at, style=style, fmt=fmt, measured=measured)
+        tracks = store.ephemeris_tables(s, {e["request_id"] for e in doc["entries"]})
+    data = render_chart(doc, night, config, samples, now=at, style=style, fmt=fmt, measured=measured, tracks=tracks)
     path = write_atomic(output, data)
     click.echo(f"chart of plan version {doc['plan']['version']}: {path.resolve()}")
 

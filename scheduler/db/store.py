@@ -95,6 +95,15 @@ def to_spec(row: Request) -> RequestSpec:
                        **{f: getattr(row, f) for f in _SPEC_FIELDS})
 
 
+def ephemeris_tables(s: Session, ids: Iterable[int]):
+    """The ephemeris tables of those requests that have one, by request id (for the chart)."""
+    ids = list(ids)
+    if not ids:
+        return {}
+    q = select(Request.id, Request.ephemeris_csv).where(Request.id.in_(ids), Request.ephemeris_csv.is_not(None))
+    return {rid: parse_ephemeris_csv(text, f"request {rid} ephemeris") for rid, text in s.execute(q)}
+
+
 def _table_rows(text: str | None) -> int | None:
     """Rows of a stored ephemeris table (its header is the first line), None without one."""
     return None if not text else max(text.count("\n") - 1, 0)
