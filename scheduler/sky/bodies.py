@@ -89,8 +89,8 @@ def _kepler_heliocentric_icrs(jd_tdb: np.ndarray, elements) -> np.ndarray:
     inc, peri, node = np.radians(inc), np.radians(peri), np.radians(node)
     w = peri - node  # argument of perihelion
     m = np.radians((mean_long - np.degrees(peri) + 180.0) % 360.0 - 180.0)
-    ecc_anom = m + e * np.sin(m)
-    for _ in range(8):  # Newton on E - e sin E = M; e = 0.25 converges to 1e-15 in < 6 steps
+    ecc_anom = np.where(e > 0.8, np.pi * np.sign(m), m + e * np.sin(m))  # start at pi for eccentric orbits
+    for _ in range(30):  # Newton on E - e sin E = M: Pluto (e = 0.25) converges in < 6 steps
         ecc_anom -= (ecc_anom - e * np.sin(ecc_anom) - m) / (1.0 - e * np.cos(ecc_anom))
     xp = a * (np.cos(ecc_anom) - e)
     yp = a * np.sqrt(1.0 - e * e) * np.sin(ecc_anom)
@@ -115,28 +115,57 @@ def _barycentric_au(body: str, jd_tdb: np.ndarray) -> np.ndarray:
     return get_body_barycentric(body, t, ephemeris="builtin").xyz.to_value(u.au).T
 
 
-def body_astrometric(name: str, times_unix) -> tuple[np.ndarray, np.ndarray]:
-    """Geocentric astrometric ICRS unit vectors [n, 3] and distances [n] (AU) of a body.
-
-    Light time: the body's position at t - delta/c, delta iterated twice (the second pass
-    changes the time by < 1 ms for every planet).
-    """
+def _astrometric(barycentric, times_unix) -> tuple[np.ndarray, np.ndarray]:
+    """Geocentric astrometric unit vectors [n, 3] and distances [n] (AU) of whatever
+    ``barycentric(jd_tdb)`` places. Light time: the position at t - delta/c, delta iterated
+    twice (the second pass changes the time by < 1 ms for every planet)."""
     from scheduler.sky.offline import configure_offline
     from astropy.coordinates import get_body_barycentric
     from astropy.time import Time
     from astropy import units as u
 
     configure_offline()
-    body = check_body(name)
     t = Time(np.atleast_1d(np.asarray(times_unix, dtype=np.float64)), format="unix", scale="utc")
     jd = t.tdb.jd
     earth = get_body_barycentric("earth", t, ephemeris="builtin").xyz.to_value(u.au).T
-    vec = _barycentric_au(body, jd) - earth
+    vec = barycentric(jd) - earth
     for _ in range(2):
         delta = np.linalg.norm(vec, axis=1)
-        vec = _barycentric_au(body, jd - delta / LIGHT_DAY_AU) - earth
+        vec = barycentric(jd - delta / LIGHT_DAY_AU) - earth
     delta = np.linalg.norm(vec, axis=1)
     return vec / delta[:, None], delta
+
+
+def body_astrometric(name: str, times_unix) -> tuple[np.ndarray, np.ndarray]:
+    """Geocentric astrometric ICRS unit vectors [n, 3] and distances [n] (AU) of a body."""
+    body = check_body(name)
+    return _astrometric(lambda jd: _barycentric_au(body, jd), times_unix)
+
+
+def orbit_elements(q_au: float, e: float, inc_deg: float, node_deg: float, peri_arg_deg: float,
+                   perihelion_jd_tdb: float):
+    """Elements in the form the Keplerian code takes, from the usual set of an elliptic orbit:
+    perihelion distance, eccentricity (< 1), inclination, ascending node, argument of perihelion
+    (J2000 ecliptic, degrees) and the time of perihelion. Fixed orbit (no rates)."""
+    a = q_au / (1.0 - e)
+    n = 0.9856076686 / a**1.5  # mean motion, deg/day (Gaussian gravitational constant)
+    peri_long = node_deg + peri_arg_deg
+    mean_long_j2000 = peri_long + n * (2451545.0 - perihelion_jd_tdb)
+    return ((a, 0.0), (e, 0.0), (inc_deg, 0.0), (mean_long_j2000, n * 36525.0), (peri_long, 0.0), (node_deg, 0.0))
+
+
+def orbit_astrometric(elements, times_unix) -> tuple[np.ndarray, np.ndarray]:
+    """Geocentric astrometric ICRS unit vectors and distances (AU) of a body on a heliocentric
+    Keplerian orbit (``orbit_elements``): for invented comets and asteroids."""
+    from astropy.coordinates import get_body_barycentric
+    from astropy.time import Time
+    from astropy import units as u
+
+    def bary(jd):
+        sun = get_body_barycentric("sun", Time(jd, format="jd", scale="tdb"), ephemeris="builtin")
+        return sun.xyz.to_value(u.au).T + _kepler_heliocentric_icrs(jd, elements)
+
+    return _astrometric(bary, times_unix)
 
 
 # --------------------------------------------------------------------------- tables
