@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import re
 import tomllib
-from dataclasses import replace
 from datetime import datetime, timezone
 
 import numpy as np
