@@ -16,7 +16,7 @@ from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso, parse_time
 from scheduler.model.untrusted import (
-    JsonObject, check_duplicates, check_text, csv_table, load_json, parse_number, safe_name, shown, text_problem,
+    check_duplicates, check_text, csv_table, load_json, parse_number, safe_name, shown, text_problem,
     type_name,
 )
 

@@ -20,7 +20,7 @@ from scheduler.model.errors import InputError
 
 MAX_CELL = 131_072  # characters in one CSV cell (the csv module's own limit, kept as ours)
 MAX_NUMBER_CHARS = 64  # a number typed as text; longer is refused before conversion
-MAX_JSON_INT_DIGITS = 30  # longer JSON integers are read as floats (huge ones become inf: out of range)
+MAX_JSON_INT_DIGITS = 4000  # longer JSON integers make the whole document unusable
 
 # Characters that reorder text on screen (bidirectional embeddings, overrides, isolates and marks):
 # a name holding one can display as something else.
@@ -169,10 +169,12 @@ def _object(pairs: list[tuple[str, Any]]) -> JsonObject:
     return obj
 
 
-def _json_int(digits: str) -> int | float:
-    # Beyond a few dozen digits no field here has a use for the exact value; a float is enough
-    # to be refused as out of range, and Python refuses int() of more than 4300 digits anyway.
-    return int(digits) if len(digits) <= MAX_JSON_INT_DIGITS else float(digits)
+def _json_int(digits: str) -> int:
+    # Python refuses int() of more than 4300 digits with a message about its own settings;
+    # say instead what is wrong with the file. Shorter huge integers are refused by the field.
+    if len(digits) > MAX_JSON_INT_DIGITS:
+        raise ValueError(f"it holds an integer of {len(digits)} digits; every number here is far smaller")
+    return int(digits)
 
 
 def load_json(text: str, *, field: str = "file", source: str | None = None) -> Any:
