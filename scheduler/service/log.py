@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import logging
 import logging.handlers
+import os
 import sys
 from datetime import datetime, timezone
 from typing import Any
@@ -26,9 +27,28 @@ def _value(v: Any) -> str:
     if isinstance(v, datetime):
         return v.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
     s = str(v).replace("\r", " ").replace("\n", " ")
-    if not s or any(c in s for c in ' "=\t'):
-        return json.dumps(s, ensure_ascii=False)
+    plain = _plain(s)
+    if not s or not plain or any(c in s for c in ' "=\t'):
+        q = json.dumps(s, ensure_ascii=False)
+        return q if plain else q.translate(_ESCAPES)
     return s
+
+
+# Characters a terminal or log viewer would act on (C0 and C1 controls, DEL, bidi controls,
+# line separators, lone surrogates from undecodable file names): written as \uXXXX escapes.
+def _plain(s: str) -> bool:
+    return s.isprintable() or all(c.isprintable() or c == " " for c in s)
+
+
+class _Escapes(dict):
+    def __missing__(self, code: int) -> str | int:
+        c = chr(code)
+        out: str | int = code if (c.isprintable() or c == " ") else f"\\u{code:04x}"
+        self[code] = out
+        return out
+
+
+_ESCAPES = _Escapes()
 
 
 class EventFormatter(logging.Formatter):
@@ -62,6 +82,23 @@ class EventLog:
         self._emit(logging.ERROR, event, kv)
 
 
+LOG_FILE_MODE = 0o600  # like the database: operators' names, reasons and file names stay private
+
+
+def create_log_file(path: str | os.PathLike) -> None:
+    """Make sure ``path`` can be appended to, creating it owner-only (0600) if it is new.
+    An existing file keeps its mode (an operator may have opened it to a group on purpose)."""
+    os.close(os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, LOG_FILE_MODE))
+
+
+class PrivateLogFile(logging.handlers.WatchedFileHandler):
+    """A log file reopened when logrotate moves it away, created 0600 each time it is new."""
+
+    def _open(self):
+        fd = os.open(self.baseFilename, os.O_WRONLY | os.O_APPEND | os.O_CREAT, LOG_FILE_MODE)
+        return os.fdopen(fd, "a", encoding=self.encoding, errors=self.errors)
+
+
 def setup_logging(log_file: str | None = None) -> EventLog:
     """Events to stdout, or to ``log_file`` instead (reopened if rotated away by logrotate)."""
     logger = logging.getLogger(LOGGER_NAME)
@@ -69,7 +106,7 @@ def setup_logging(log_file: str | None = None) -> EventLog:
     logger.propagate = False
     logger.setLevel(logging.INFO)
     if log_file:
-        handler: logging.Handler = logging.handlers.WatchedFileHandler(log_file, encoding="utf-8")
+        handler: logging.Handler = PrivateLogFile(log_file, encoding="utf-8")
     else:
         handler = logging.StreamHandler(sys.stdout)
     handler.setFormatter(EventFormatter())
