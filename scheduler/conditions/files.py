@@ -3,8 +3,8 @@
 The feed takes a file only when it is complete. Producers write under another name (a
 ``.part`` suffix or a leading dot, which the feed ignores) and rename when done; and because
 not every producer does, a file is also taken only once its size and modification time have
-stayed the same for ``service.feed_settle_s`` seconds, seen on two polls at least. A file that
-changes while it is read is put back for a later poll, neither stored nor rejected.
+stayed the same for ``service.feed_settle_s`` seconds. A file that changes while it is read is
+put back for a later poll, neither stored nor rejected.
 """
 
 from __future__ import annotations
@@ -64,10 +64,11 @@ def take_feed_file(path: Path, state: tuple[int, int]) -> TakenFile:
 class SettleWatch:
     """Which feed files have stopped changing.
 
-    A file is settled when two looks, one poll apart at least, found the same size and
-    modification time, and that state has lasted ``settle_s`` seconds: by the service's own
-    clock since it first saw it, or by the file's modification time if that is older (a file
-    renamed into place long after it was written does not wait again).
+    A file is settled when its size and modification time have stayed the same for
+    ``settle_s`` seconds: by its modification time (so `serve --once` from cron, which looks
+    once, can take a file written a while ago), or by the service's own clock since it first
+    saw that state (should the file's time stamp come from a skewed clock). Any change of
+    size or time stamp starts the wait again.
     """
 
     def __init__(self, settle_s: float):
@@ -77,10 +78,8 @@ class SettleWatch:
     def settled(self, name: str, state: tuple[int, int], now_mono: float, now_wall: float) -> bool:
         prev = self._seen.get(name)
         if prev is None or prev[0] != state:
-            self._seen[name] = (state, now_mono)
-            return False
-        if now_mono <= prev[1]:
-            return False  # the same look
+            prev = (state, now_mono)
+            self._seen[name] = prev
         mtime_age = now_wall - state[1] / 1e9
         return max(now_mono - prev[1], mtime_age) >= self.settle_s
 
