@@ -40,7 +40,8 @@ def read_text_file_sized(path: str | Path, max_bytes: int) -> tuple[str, int]:
         text = data.decode("utf-8-sig")
     except UnicodeDecodeError as e:
         raise InputError("file", f"{name} is not UTF-8 text (byte {e.start + 1} is not valid UTF-8)") from None
-    return text, len(data)
+    # universal newlines, as text-mode reading gives: the CSV readers downstream expect them
+    return text.replace("\r\n", "\n").replace("\r", "\n"), len(data)
 
 
 def file_state(path: str | Path) -> tuple[int, int] | None:

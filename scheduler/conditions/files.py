@@ -44,7 +44,7 @@ class FileChanged(Exception):
 class TakenFile:
     report: ParsedReport
     size: int  # bytes read
-    sha256: str  # of the bytes as read, for the log: which version of the file was stored
+    sha256: str  # of the text as read, for the log: which version of the file was stored
 
 
 def take_feed_file(path: Path, state: tuple[int, int]) -> TakenFile:
