@@ -1,4 +1,4 @@
-"""Write the invented demo scenario: programs, 150 requests and two forecasts for one night.
+"""Write the invented demo scenario: programs, 150 requests, two forecasts for one night and a climatology.
 
 Deterministic (fixed seed, no clock, no network): running it again rewrites identical files.
 Everything here is invented: the programs, their PIs, the fields and the weather. The site is
@@ -32,6 +32,28 @@ PROGRAMS = [
     ("MIR", "Dr. Amara Deleon", 25, 1.4),    # warm dust discs, mid-infrared, dry air
     ("TDS", "Dr. Kofi Arbenz", 20, 1.3),     # transient follow-up, short, urgent
     ("VSM", "Dr. Lucia Fenwright", 30, 1.2),  # variable stars, repeated visits
+]
+
+# The site's weather statistics per calendar month (invented, for `nightplan season simulate`).
+# A dry southern high-desert site: summer brings humid air from the east (high PWV, cloud,
+# some lost nights in January-February); winter brings fronts, wind and worse seeing.
+CLIMATE_COLUMNS = [
+    "month", "seeing_median_arcsec", "seeing_sigma_ln", "pwv_median_mm", "pwv_sigma_ln", "lost_night_frac",
+    "cloudy_frac", "cloud_median_mag", "cloud_sigma_ln", "wind_closure_frac", "humidity_closure_frac",
+]
+CLIMATE = [
+    (1, 0.78, 0.33, 4.2, 0.55, 0.18, 0.22, 0.35, 0.8, 0.02, 0.06),
+    (2, 0.76, 0.33, 4.6, 0.55, 0.22, 0.24, 0.40, 0.8, 0.02, 0.08),
+    (3, 0.74, 0.32, 3.1, 0.60, 0.10, 0.18, 0.30, 0.8, 0.02, 0.04),
+    (4, 0.72, 0.32, 2.0, 0.60, 0.06, 0.12, 0.25, 0.8, 0.03, 0.02),
+    (5, 0.80, 0.34, 1.5, 0.60, 0.08, 0.12, 0.25, 0.8, 0.05, 0.02),
+    (6, 0.88, 0.35, 1.3, 0.60, 0.12, 0.14, 0.25, 0.8, 0.08, 0.02),
+    (7, 0.92, 0.36, 1.2, 0.60, 0.14, 0.14, 0.25, 0.8, 0.09, 0.02),
+    (8, 0.87, 0.35, 1.2, 0.60, 0.10, 0.12, 0.25, 0.8, 0.07, 0.01),
+    (9, 0.80, 0.34, 1.4, 0.60, 0.06, 0.10, 0.25, 0.8, 0.05, 0.01),
+    (10, 0.74, 0.33, 1.7, 0.55, 0.04, 0.08, 0.25, 0.8, 0.04, 0.01),
+    (11, 0.72, 0.32, 2.2, 0.55, 0.05, 0.10, 0.25, 0.8, 0.03, 0.02),
+    (12, 0.74, 0.32, 3.0, 0.55, 0.10, 0.16, 0.30, 0.8, 0.02, 0.04),
 ]
 
 COLUMNS = [
@@ -203,6 +225,12 @@ def main() -> None:
         "update_reason": "forecast update: seeing and PWV degrade from about 01:30 UTC instead of 03:00, "
                          "wind closure 04:00-05:00 UTC, clearer after 06:30 UTC",
     }, indent=1) + "\n", encoding="utf-8")
+    with open(HERE / "climatology.csv", "w", newline="", encoding="utf-8") as f:
+        f.write("# Invented weather statistics of the fictional Quebrada Tenue Observatory, per calendar month.\n"
+                "# Not measurements of any real site. Columns: docs/season.md.\n")
+        w = csv.writer(f, lineterminator="\n")
+        w.writerow(CLIMATE_COLUMNS)
+        w.writerows(CLIMATE)
 
 
 if __name__ == "__main__":

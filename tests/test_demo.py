@@ -23,7 +23,8 @@ def test_demo_data_is_what_the_generator_writes(tmp_path):
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     mod.main()  # writes beside the copied script
-    for name in ("programs.csv", "requests.csv", "forecast.csv", "forecast_update.json", "scenario.json"):
+    for name in ("programs.csv", "requests.csv", "forecast.csv", "forecast_update.json", "scenario.json",
+                 "climatology.csv"):
         assert (copy / name).read_bytes() == (src / name).read_bytes(), name
     rows = list(csv.DictReader((src / "requests.csv").open(encoding="utf-8")))
     assert len(rows) == 150

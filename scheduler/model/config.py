@@ -114,6 +114,13 @@ class ServiceSettings:
 
 
 @dataclass(frozen=True)
+class ClimatologyRef:
+    """Where the site's weather statistics live (for the season outlook)."""
+
+    file: str  # as written in the config: relative to the config file's folder, or absolute
+
+
+@dataclass(frozen=True)
 class ObservatoryConfig:
     site: Site
     telescope: Telescope
@@ -124,6 +131,16 @@ class ObservatoryConfig:
     planning: Planning = field(default_factory=Planning)
     path: str | None = None
     service: ServiceSettings = field(default_factory=ServiceSettings)
+    climatology: ClimatologyRef | None = None
+
+    def climatology_path(self) -> Path | None:
+        """The climatology file, resolved against the config file's folder; None if not configured."""
+        if self.climatology is None:
+            return None
+        p = Path(self.climatology.file).expanduser()
+        if not p.is_absolute() and self.path:
+            p = Path(self.path).resolve().parent / p
+        return p
 
     def band(self, name: str) -> Band:
         try:
@@ -244,7 +261,8 @@ DEFAULTS_KEYS = ("seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pc
 PLANNING_KEYS = ("step_s", "time_limit_s", "replan_time_limit_s", "gap_tolerance", "freeze_horizon_min",
                  "replan_seeing_change_arcsec", "replan_pwv_change_mm", "heartbeat_min", "min_forecast_share")
 SERVICE_KEYS = ("feed_settle_s",)
-ROOT_KEYS = ("site", "telescope", "band", "instrument", "safety", "defaults", "planning", "service")
+CLIMATOLOGY_KEYS = ("file",)
+ROOT_KEYS = ("site", "telescope", "band", "instrument", "safety", "defaults", "planning", "service", "climatology")
 
 # Lower bounds of rates and sizes that must be positive. A slew rate of 1e-300 deg/s once passed
 # "greater than 0" and made every slew longer than any index can hold; these floors are far
@@ -386,8 +404,16 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
 
     sv = _Table(root._take("service", {}, False), "service", SERVICE_KEYS)
     service = ServiceSettings(feed_settle_s=sv.num("feed_settle_s", 0, 3600, 5.0))
+    climatology = _climatology(root._take("climatology", None, False))
     return ObservatoryConfig(site, telescope, bands, tuple(instruments), safety, defaults, planning, path,
-                             service)
+                             service, climatology)
+
+
+def _climatology(raw: Any) -> ClimatologyRef | None:
+    if raw is None:
+        return None
+    t = _Table(raw, "climatology", CLIMATOLOGY_KEYS)
+    return ClimatologyRef(file=t.text("file"))
 
 
 MAX_CONFIG_BYTES = 1_000_000

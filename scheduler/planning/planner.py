@@ -16,7 +16,7 @@ from scheduler.conditions.ingest import Sample
 from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
 from scheduler.db import plans, store
 from scheduler.db.session import Database
-from scheduler.model.request import RequestSpec
+from scheduler.model.request import OutcomeResult, RequestSpec
 from scheduler.sky.ephemeris import SkyCache
 from scheduler.sky.night import Night, night_date_for, night_for
 from scheduler.model.plan import PlanEntry, PlanResult
@@ -86,14 +86,13 @@ class Planner:
     def build(self, inputs: PlanInputs, night: Night, *, now: datetime | None = None,
               time_limit_s: float | None = None, progress: Callable[[str], None] | None = None,
               use_previous: bool = True) -> tuple[PlanResult, ConditionsGrid]:
-        from scheduler.planning.pipeline import build_plan
+        from scheduler.planning.pipeline import BuildOptions, build_plan
 
         cond = self.conditions(night, inputs.samples, inputs.report_id)
         result = build_plan(
-            self.config, inputs.specs, inputs.weights, night, cond,
-            sky=self.sky_cache, now=now,
-            previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
-            time_limit_s=time_limit_s, progress=progress,
+            self.config, inputs.specs, inputs.weights, night, cond, sky=self.sky_cache,
+            options=BuildOptions(now=now, previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
+                                 time_limit_s=time_limit_s, progress=progress),
         )
         return result, cond
 
@@ -154,9 +153,9 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
         since = s.scalars(select(Outcome).where(Outcome.request_id.in_(ids), Outcome.recorded_at > plan.created_at))
         for o in since:
             sp = specs[o.request_id]
-            if o.result == "done":
+            if o.result == OutcomeResult.DONE:
                 specs[o.request_id] = sp.with_(completed_repeats=max(sp.completed_repeats - 1, 0), partial_exposure_s=0.0)
-            elif o.result == "partial" and o.exposure_s:
+            elif o.result == OutcomeResult.PARTIAL and o.exposure_s:
                 specs[o.request_id] = sp.with_(partial_exposure_s=max(sp.partial_exposure_s - o.exposure_s, 0.0))
         samples: list[Sample] = []
         if plan.conditions_report_id is not None:

@@ -14,6 +14,8 @@ import sys
 from datetime import datetime, timezone
 from typing import Any
 
+from scheduler.report.safe_text import clean
+
 LOGGER_NAME = "nightplan.service"
 
 
@@ -26,29 +28,10 @@ def _value(v: Any) -> str:
         return f"{v:.3f}".rstrip("0").rstrip(".") if abs(v) < 1e6 else f"{v:.6g}"
     if isinstance(v, datetime):
         return v.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-    s = str(v).replace("\r", " ").replace("\n", " ")
-    plain = _plain(s)
-    if not s or not plain or any(c in s for c in ' "=\t'):
-        q = json.dumps(s, ensure_ascii=False)
-        return q if plain else q.translate(_ESCAPES)
+    s = clean(str(v).replace("\r", " ").replace("\n", " "))  # no terminal control reaches a log reader
+    if not s or any(c in s for c in ' "=\t'):
+        return json.dumps(s, ensure_ascii=False)
     return s
-
-
-# Characters a terminal or log viewer would act on (C0 and C1 controls, DEL, bidi controls,
-# line separators, lone surrogates from undecodable file names): written as \uXXXX escapes.
-def _plain(s: str) -> bool:
-    return s.isprintable() or all(c.isprintable() or c == " " for c in s)
-
-
-class _Escapes(dict):
-    def __missing__(self, code: int) -> str | int:
-        c = chr(code)
-        out: str | int = code if (c.isprintable() or c == " ") else f"\\u{code:04x}"
-        self[code] = out
-        return out
-
-
-_ESCAPES = _Escapes()
 
 
 class EventFormatter(logging.Formatter):
