@@ -234,6 +234,9 @@ class _Table:
 
     def text(self, k: str, default: str | None = None, choices: tuple[str, ...] | None = None) -> str:
         v = self._take(k, default, default is None)
+        if not isinstance(v, str) or not v.strip() or len(v.strip()) > 200:
+            got = "" if isinstance(v, str) else f", not {type_name(v)}"
+            raise ConfigError(self.key(k), f"must be a non-empty string of at most 200 characters{got}")
         try:
             out = check_text(v, self.key(k), max_len=200)
         except InputError as e:
