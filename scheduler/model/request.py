@@ -363,8 +363,8 @@ def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
     body, table = _moving_target(raw, ra_raw, dec_raw)
     if body is None and table is None:
         if ra_raw is None or (isinstance(ra_raw, str) and not ra_raw.strip()):
-            raise InputError("ra", f"is required; allowed {RA_FORMS}, unless body or ephemeris_file gives a "
-                                   "moving target")
+            raise InputError("ra", f"is required (allowed {RA_FORMS}), unless body or ephemeris_file gives "
+                                   "a moving target")
         if dec_raw is None or (isinstance(dec_raw, str) and not dec_raw.strip()):
             raise InputError("dec", f"is required; allowed {DEC_FORMS}")
         ra, dec = parse_ra(ra_raw), parse_dec(dec_raw)
