@@ -194,20 +194,25 @@ def plan_export(c: Ctx, fmt: str, output: str | None, version: int | None) -> No
 
 
 @plan.command("chart")
-@click.option("-o", "--output", metavar="FILE.png", required=True, help="PNG file to write")
+@click.option("-o", "--output", metavar="FILE", required=True, help="file to write: .png, .svg or .pdf")
 @click.option("--version", type=int, help="plan version (default: the newest active plan)")
+@click.option("--style", type=click.Choice(["day", "night"]), default="day", show_default=True,
+              help="night: dark background and dim red text, for eyes adapted to the dark")
+@click.option("--at", "at_text", metavar="ISO", help="draw the now line at this ISO-8601 UTC time (default: the clock)")
 @pass_ctx
-def plan_chart(c: Ctx, output: str, version: int | None) -> None:
-    """Altitude against time of the planned targets, twilight, the Moon, seeing and PWV (PNG)."""
-    if not output.lower().endswith(".png"):
-        raise InputError("output", f"{output!r}: the chart is written as PNG; give a file name ending in .png")
-    from scheduler.report.chart import render_chart
+def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: str | None) -> None:
+    """Altitude against time of the planned targets, the timeline, twilight, the Moon, seeing and PWV."""
+    from scheduler.report.chart import chart_format, measured_samples, plan_samples, render_chart
     from scheduler.report.export import write_atomic
 
+    fmt = chart_format(output)
+    at = _now(at_text, "at")
     doc, night, config = load_document(c, version)
-    samples = _plan_samples(c, doc)
-    png = render_chart(doc, night, config, samples)
-    path = write_atomic(output, png)
+    with c.db().session() as s:
+        samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
+        measured = measured_samples(s, night)
+    data = render_chart(doc, night, config, samples, now=at, style=style, fmt=fmt, measured=measured)
+    path = write_atomic(output, data)
     click.echo(f"chart of plan version {doc['plan']['version']}: {path.resolve()}")
 
 
@@ -228,15 +233,10 @@ def plan_check(c: Ctx, version: int | None) -> None:
 
 def _plan_samples(c: Ctx, doc) -> list:
     """The conditions samples a plan was built on (empty: defaults were assumed)."""
-    from scheduler.db.models import ConditionsReport
-    from scheduler.planning.planner import sample_of
+    from scheduler.report.chart import plan_samples
 
-    rid = doc["plan"]["conditions"]["report_id"]
-    if rid is None:
-        return []
     with c.db().session() as s:
-        rep = s.get(ConditionsReport, rid)
-        return [sample_of(x) for x in rep.samples] if rep is not None else []
+        return plan_samples(s, doc["plan"]["conditions"]["report_id"])
 
 
 @plan.command("why")

@@ -49,9 +49,13 @@ def _db_option(f):
 @click.option("--log-file", metavar="FILE", help="append the event log to FILE instead of stdout")
 @click.option("--once", is_flag=True, help="run every job once and exit (for cron or a check)")
 @_clock_option
+@click.option("--web", is_flag=True, help="also serve the observer's page from this process (as `nightplan web`)")
+@click.option("--web-host", default="127.0.0.1", show_default=True, help="with --web: address to listen on")
+@click.option("--web-port", type=int, default=8080, show_default=True, help="with --web: port (0: any free port)")
+@click.option("--web-token-file", metavar="FILE", help="with --web: access token file (needed beyond loopback)")
 @pass_ctx
 def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file: str | None, once: bool,
-          clock_text: str | None) -> None:
+          clock_text: str | None, web: bool, web_host: str, web_port: int, web_token_file: str | None) -> None:
     """Run the re-planning service: one per database; stop it with SIGTERM or Ctrl-C.
 
     It stores conditions files dropped in --watch (moved to done/ or, if bad, rejected/),
@@ -84,8 +88,9 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
             Path(log_file).open("a", encoding="utf-8").close()
         except OSError as e:
             raise InputError("log-file", f"{log_file}: cannot append ({e.strerror})") from None
+    page = _web_thread(db, config, clock, web, once, web_host, web_port, web_token_file)
     log = setup_logging(log_file)
-    svc = Service(db, config, log=log, clock=clock, watch=folder, poll_s=poll_s)
+    svc = Service(db, config, log=log, clock=clock, watch=folder, poll_s=poll_s, web=page)
     try:
         code = svc.run_once() if once else svc.run_forever()
     except LockHeld as e:
@@ -94,6 +99,21 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
                                     f"without heartbeat)") from None
     if code:
         sys.exit(code)
+
+
+def _web_thread(db, config, clock, web: bool, once: bool, host: str, port: int, token_file: str | None):
+    """--web: the observer's page on a thread of the service (bound now, so a busy port is exit 2)."""
+    if not web:
+        return None
+    if once:
+        raise InputError("web", "cannot be combined with --once (the page needs a running service)")
+    from scheduler.cli.web import web_options_from_cli
+    from scheduler.web.app import create_app
+    from scheduler.web.server import WebThread, bind
+
+    opts = web_options_from_cli(host, port, token_file, prefix="web-")
+    sock = bind(opts, field="web-port")
+    return WebThread(create_app(db, config, clock=clock, token=opts.token), sock, opts)
 
 
 @click.command()
@@ -182,40 +202,12 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
 def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
     """Is the service alive (since when, pid, last heartbeat), the active plan, the last
     conditions report, pending re-plan orders."""
-    from sqlalchemy import select
-
-    from scheduler.db import plans, store
-    from scheduler.db.models import ReplanOrder
-    from scheduler.service.lock import read_lock
+    from scheduler.report.status import status_document
 
     _use_db(c, db_url)
-    db = c.db()
-    info = read_lock(db)
-    if info is None:
-        service = {"alive": False, "state": "stopped", "why": "no service holds this database"}
-    else:
-        why = info.stale_reason()
-        service = {"alive": why is None, "state": "running" if why is None else "dead", **info.as_dict()}
-        if why:
-            service["why"] = why
-    with db.session() as s:
-        plan = plans.active_plan(s)
-        plan_d = None if plan is None else {
-            "version": plan.id, "night": plan.night.isoformat(), "reason": plan.reason,
-            "created_at": iso(plan.created_at), "planned_from": iso(plan.planned_from),
-            "solver_status": plan.solver_status, "entries": len(plan.entries),
-            "conditions_report": plan.conditions_report_id,
-        }
-        rep = store.latest_conditions(s)
-        rep_d = None if rep is None else {
-            "report": rep.id, "source": rep.source, "issued_at": iso(rep.issued_at),
-            "received_at": iso(rep.received_at), "samples": rep.n_samples,
-        }
-        pending = [plans.order_dict(o) for o in plans.pending_orders(s)]
-        last = s.scalar(select(ReplanOrder).where(ReplanOrder.done_at.is_not(None))
-                        .order_by(ReplanOrder.done_at.desc()).limit(1))
-        last_d = plans.order_dict(last) if last is not None else None
-    data = {"service": service, "plan": plan_d, "conditions": rep_d, "pending_orders": pending, "last_order": last_d}
+    data = status_document(c.db())
+    service, plan_d, rep_d = data["service"], data["plan"], data["conditions"]
+    pending, last_d = data["pending_orders"], data["last_order"]
     if as_json:
         echo_json(data)
         return

@@ -9,7 +9,8 @@ Jobs (all but the lock heartbeat share one worker thread, so re-plans never over
   lock       every few seconds, on its own thread: refresh the service lock's heartbeat
 
 SIGTERM and SIGINT stop it cleanly: running jobs finish, the lock row is deleted. The process
-opens no network port; everything it shares goes through the database.
+opens no network port (unless --web serves the observer's page from it, on its own thread);
+everything it shares goes through the database.
 """
 
 from __future__ import annotations
@@ -34,7 +35,7 @@ MAINTENANCE_S = 60.0
 
 class Service:
     def __init__(self, db: Database, config: ObservatoryConfig, *, log: EventLog, clock: Clock,
-                 watch: Path | None = None, poll_s: float = 2.0, time_limit_s: float | None = None):
+                 watch: Path | None = None, poll_s: float = 2.0, time_limit_s: float | None = None, web=None):
         self.db = db
         self.config = config
         self.log = log
@@ -48,6 +49,7 @@ class Service:
         self.exit_code = 0
         self._scheduler = None
         self._why_stop = "lock lost"
+        self.web = web  # a scheduler.web.server.WebThread, started and stopped with the service
 
     # ------------------------------------------------------------------ job wrapper
 
@@ -129,6 +131,9 @@ class Service:
         self._started("serve")
         try:
             sched.start()
+            if self.web is not None:
+                self.web.start()
+                self.log.info("web_started", url=self.web.url)
             while not self._stop.wait(0.5):
                 # A library may reset SIGINT/SIGTERM at the C level (some solvers do after a solve in
                 # a worker thread); re-arm ours so Ctrl-C always stops cleanly.
@@ -137,6 +142,8 @@ class Service:
             self.log.info("service_stopping", why=self._why_stop)
             sched.shutdown(wait=True)  # lets a running build finish (bounded by the solver time limit)
         finally:
+            if self.web is not None:
+                self.web.stop()
             for sig, handler in previous.items():
                 signal.signal(sig, handler)
             if self.lock.held:

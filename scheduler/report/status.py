@@ -1,0 +1,47 @@
+"""The service's state as plain data: the `nightplan status --json` document (also `GET /api/status`).
+
+Is a service alive (since when, pid, last heartbeat), the active plan, the newest conditions
+report, pending re-plan orders and the last one done. Reads the database only.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import select
+
+from scheduler.db.session import Database
+from scheduler.model.timegrid import iso
+
+
+def status_document(db: Database) -> dict[str, Any]:
+    from scheduler.db import plans, store
+    from scheduler.db.models import ReplanOrder
+    from scheduler.service.lock import read_lock
+
+    info = read_lock(db)
+    if info is None:
+        service = {"alive": False, "state": "stopped", "why": "no service holds this database"}
+    else:
+        why = info.stale_reason()
+        service = {"alive": why is None, "state": "running" if why is None else "dead", **info.as_dict()}
+        if why:
+            service["why"] = why
+    with db.session() as s:
+        plan = plans.active_plan(s)
+        plan_d = None if plan is None else {
+            "version": plan.id, "night": plan.night.isoformat(), "reason": plan.reason,
+            "created_at": iso(plan.created_at), "planned_from": iso(plan.planned_from),
+            "solver_status": plan.solver_status, "entries": len(plan.entries),
+            "conditions_report": plan.conditions_report_id,
+        }
+        rep = store.latest_conditions(s)
+        rep_d = None if rep is None else {
+            "report": rep.id, "source": rep.source, "issued_at": iso(rep.issued_at),
+            "received_at": iso(rep.received_at), "samples": rep.n_samples,
+        }
+        pending = [plans.order_dict(o) for o in plans.pending_orders(s)]
+        last = s.scalar(select(ReplanOrder).where(ReplanOrder.done_at.is_not(None))
+                        .order_by(ReplanOrder.done_at.desc()).limit(1))
+        last_d = plans.order_dict(last) if last is not None else None
+    return {"service": service, "plan": plan_d, "conditions": rep_d, "pending_orders": pending, "last_order": last_d}
