@@ -86,3 +86,21 @@ def test_charging_rule_per_outcome():
     assert charged_hours("failed", "program", achieved_exposure_s=None, **kw) == 0.5
     assert charged_hours("done", None, planned_s=None, request_exposure_s=1800.0, achieved_exposure_s=None) == 0.5
     assert completion(3, 4) == 0.75 and completion(0, 0) == 0.0
+
+
+def test_request_factors_compose_the_base_value():
+    from scheduler.model.request import RequestSpec
+    from scheduler.solve.factors import request_factors
+
+    specs = [RequestSpec(program="A", target="a", ra_deg=1.0, dec_deg=0.0, band="V", exposure_s=600.0, priority=9),
+             RequestSpec(program="B", target="b", ra_deg=2.0, dec_deg=0.0, band="V", exposure_s=3600.0, priority=5),
+             RequestSpec(program="Z", target="z", ra_deg=3.0, dec_deg=0.0, band="V", exposure_s=3600.0, priority=5)]
+    progs = {"A": ProgramState("A", 1, weight=1.5, hours_allocated=10, hours_charged=0),
+             "B": ProgramState("B", 3, hours_allocated=10, hours_charged=10)}
+    f = request_factors(specs, progs, [1, 60, 3])
+    assert list(f.tier) == [1, 3, 2]
+    assert f.row(0) == {"tier": 1, "program_weight": 1.5, "priority_weight": 16.0, "exposure_h": 600 / 3600,
+                        "opportunities_left": 1, "urgency": 4.0, "balance": 1.0}
+    assert math.isclose(f.base[0], 1.5 * 16 * (1 / 6) * 4.0)
+    assert f.base[1] == 0.0  # B is past its allocation
+    assert math.isclose(f.base[2], 1.0 * 1.0 * 1.0 * 2.0)  # Z unknown: weight 1, tier 2, 3 nights left -> 2

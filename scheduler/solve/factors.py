@@ -136,3 +136,51 @@ def tier_budgets(total_s: float, work: Mapping[int, int], floor_s: float = 0.5) 
     proven tier did not use flows to the next."""
     total = max(1, sum(max(0, int(w)) for w in work.values()))
     return {t: max(floor_s, total_s * max(0, int(w)) / total) for t, w in work.items()}
+
+
+# --------------------------------------------------------------------------- per request
+
+@dataclass(frozen=True)
+class RequestFactors:
+    """The factors of every request (rows follow the request list); merit is per start time and
+    comes from feasibility. ``base`` = weight x priority weight x exposure hours x urgency x
+    balance, the value of an execution before merit."""
+
+    tier: np.ndarray  # [n_r] int
+    weight: np.ndarray  # [n_r] program weight
+    priority_weight: np.ndarray
+    exposure_h: np.ndarray  # the request's exposure, hours
+    opportunities_left: np.ndarray  # [n_r] int: nights, tonight included
+    urgency: np.ndarray
+    balance: np.ndarray  # 0: the program is past its allocation and not planned
+
+    @property
+    def base(self) -> np.ndarray:
+        return self.weight * self.priority_weight * self.exposure_h * self.urgency * self.balance
+
+    def row(self, i: int) -> dict[str, float | int]:
+        return {"tier": int(self.tier[i]), "program_weight": float(self.weight[i]),
+                "priority_weight": float(self.priority_weight[i]), "exposure_h": float(self.exposure_h[i]),
+                "opportunities_left": int(self.opportunities_left[i]), "urgency": float(self.urgency[i]),
+                "balance": float(self.balance[i])}
+
+
+def request_factors(specs: Sequence, programs: Mapping[str, ProgramState], opportunities_left: Sequence[int], *,
+                    priority_ratio: float = 2.0, urgency_max: float = 4.0, balance_max: float = 2.0,
+                    allow_overfill: bool = False) -> RequestFactors:
+    """Factors of each request. A program missing from ``programs`` is tier 2, weight 1, unbalanced."""
+    bal = balance_factors(programs.values(), balance_max, allow_overfill)
+    n_left = np.asarray(opportunities_left, dtype=np.int64)
+    if n_left.shape != (len(specs),):
+        raise ValueError(f"opportunities_left has shape {n_left.shape}; expected ({len(specs)},)")
+    prog = [programs.get(s.program) for s in specs]
+    return RequestFactors(
+        tier=np.array([p.tier if p else DEFAULT_TIER for p in prog], dtype=np.int64),
+        weight=np.array([p.weight if p else 1.0 for p in prog], dtype=np.float64),
+        priority_weight=np.asarray(priority_weight(np.array([s.priority for s in specs], dtype=np.float64),
+                                                   priority_ratio), dtype=np.float64).reshape(len(specs)),
+        exposure_h=np.array([s.exposure_s / 3600.0 for s in specs], dtype=np.float64),
+        opportunities_left=n_left,
+        urgency=np.asarray(urgency_factor(n_left, urgency_max), dtype=np.float64).reshape(len(specs)),
+        balance=np.array([bal.get(s.program, 1.0) for s in specs], dtype=np.float64),
+    )
