@@ -55,7 +55,8 @@ from scheduler.constraints.feasibility import start_windows, static_layer
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import utc
-from scheduler.sky.ephemeris import night_frame, sky_from_frame
+from scheduler.sky.airmass import kasten_young_1989
+from scheduler.sky.ephemeris import SkyGrid, _targets_cirs, night_frame
 from scheduler.sky.night import SUNSET_ALT_DEG, Night
 
 _BLOCK = 128  # requests per static_layer call: [128, 60 nights x ~85 instants] arrays, ~10 MB each
@@ -164,6 +165,34 @@ def _coarse_grid(config: ObservatoryConfig, nights: Sequence[date]) -> _CoarseGr
                        dark_all[:, k0:k1 + 1].ravel(), t.shape[1], step)
 
 
+def _coarse_sky(grid: _CoarseGrid, ra: np.ndarray, dec: np.ndarray) -> SkyGrid:
+    """The SkyGrid of these targets on the coarse grid, with what the static layer reads.
+
+    The frame's rotation taken to the targets by matrix products: up component -> altitude
+    (arcsin; a few milliarcseconds from ephemeris' arctan2 at the zenith); the Sun and Moon
+    taken back to CIRS so each separation is one dot product. No azimuth (nan): nothing here
+    reads it."""
+    f = grid.frame
+    # float32 throughout: 1e-7 relative, a few arcseconds at worst (at the zenith), and half the time
+    v = _targets_cirs(ra, dec, f.t_mid_unix, f.location).astype(np.float32)  # [n_tg, 3]
+    up = np.ascontiguousarray(f.rot[:, 2, :], dtype=np.float32)  # [n_t, 3]
+    sun_c = np.einsum("nji,nj->ni", f.rot, f.sun_vec).astype(np.float32)
+    moon_c = np.einsum("nji,nj->ni", f.rot, f.moon_vec).astype(np.float32)
+
+    def angle_deg(fn, cos_or_sin):
+        x = np.clip(cos_or_sin, -1.0, 1.0, out=cos_or_sin)
+        return np.degrees(fn(x, out=x), out=x)
+
+    alt = angle_deg(np.arcsin, v @ up.T)
+    return SkyGrid(
+        night=grid.night, ra_deg=ra, dec_deg=dec, alt_deg=alt,
+        az_deg=np.broadcast_to(np.float32(np.nan), alt.shape), airmass=kasten_young_1989(alt).astype(np.float32),
+        sun_alt_deg=f.sun_alt_deg, sun_sep_deg=angle_deg(np.arccos, v @ sun_c.T),
+        moon_alt_deg=f.moon_alt_deg, moon_illum=f.moon_illum, moon_phase_angle_deg=f.moon_phase_angle_deg,
+        moon_sep_deg=angle_deg(np.arccos, v @ moon_c.T),
+    )
+
+
 def _coarse_steps(config: ObservatoryConfig, specs: Sequence[RequestSpec], step_s: int) -> np.ndarray:
     """Instants after the first that a start needs: max(ceil(duration / step) - 1, 0)."""
     d = np.array([config.instrument_for(r.band, r.instrument).setup_s + r.next_exposure_s for r in specs])
@@ -184,8 +213,7 @@ def feasible_nights(config: ObservatoryConfig, requests: Sequence[RequestSpec], 
         keys = [(float(r.ra_deg), float(r.dec_deg)) for r in block]
         uniq = list(dict.fromkeys(keys))
         pos = {kk: i for i, kk in enumerate(uniq)}
-        sky = sky_from_frame(frame, grid.night, np.array([u[0] for u in uniq]), np.array([u[1] for u in uniq]),
-                             azimuth=False)
+        sky = _coarse_sky(grid, np.array([u[0] for u in uniq]), np.array([u[1] for u in uniq]))
         st = static_layer(block, np.array([pos[kk] for kk in keys], dtype=np.int64), sky, config)
         ok = (st.reasons == 0) & grid.dark[None, :]
         ok = ok.reshape(len(block) * n_n, grid.n_k)

@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import threading
 from collections import OrderedDict
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -146,33 +146,25 @@ class _TargetRows:
     moon_sep: np.ndarray
 
 
-def _target_rows(frame: _NightFrame, v_cirs: np.ndarray, azimuth: bool = True) -> _TargetRows:
-    """azimuth=False: no azimuth (a read-only nan array), altitude as arcsin of the up component
-    (a few milliarcseconds from arctan2 near the zenith): for counts that read no azimuth."""
+def _sep_deg(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Angle between unit vectors a [k, n_t, 3] and b [n_t, 3], degrees."""
+    return np.degrees(np.arccos(np.clip(np.einsum("knj,nj->kn", a, b), -1.0, 1.0)))
+
+
+def _target_rows(frame: _NightFrame, v_cirs: np.ndarray) -> _TargetRows:
     n_tg, n_t = v_cirs.shape[0], frame.rot.shape[0]
-    names = ("alt", "az", "airmass", "sun_sep", "moon_sep") if azimuth else ("alt", "airmass", "sun_sep", "moon_sep")
-    out = {k: np.empty((n_tg, n_t), dtype=np.float32) for k in names}
-    rx, ry, rz = (np.ascontiguousarray(frame.rot[:, i, :]) for i in range(3))  # [n_t, 3] rows of each rotation
-    # The Sun's and Moon's directions taken back to CIRS (rot is orthonormal): a separation is
-    # then one dot product per target and time, the same angle as in AltAz.
-    sun_c = np.einsum("nji,nj->ni", frame.rot, frame.sun_vec)
-    moon_c = np.einsum("nji,nj->ni", frame.rot, frame.moon_vec)
-    for i in range(0, n_tg, _CHUNK):  # chunks over targets bound memory; every time at once (matrix products)
-        v = v_cirs[i:i + _CHUNK]
+    out = {k: np.empty((n_tg, n_t), dtype=np.float32) for k in ("alt", "az", "airmass", "sun_sep", "moon_sep")}
+    for i in range(0, n_tg, _CHUNK):  # chunks over targets bound memory; every time at once
+        v = np.einsum("nij,kj->kni", frame.rot, v_cirs[i:i + _CHUNK])  # [k, n_t, 3]
+        x, y, z = v[..., 0], v[..., 1], v[..., 2]
+        alt = np.degrees(np.arctan2(z, np.hypot(x, y)))
         s = slice(i, i + _CHUNK)
-        z = v @ rz.T  # [k, n_t] AltAz components
-        if azimuth:
-            x, y = v @ rx.T, v @ ry.T
-            alt = np.degrees(np.arctan2(z, np.hypot(x, y)))
-            out["az"][s] = np.degrees(np.arctan2(y, x)) % 360.0
-        else:
-            alt = np.degrees(np.arcsin(np.clip(z, -1.0, 1.0)))
         out["alt"][s] = alt
+        out["az"][s] = np.degrees(np.arctan2(y, x)) % 360.0
         out["airmass"][s] = kasten_young_1989(alt)
-        out["sun_sep"][s] = np.degrees(np.arccos(np.clip(v @ sun_c.T, -1.0, 1.0)))
-        out["moon_sep"][s] = np.degrees(np.arccos(np.clip(v @ moon_c.T, -1.0, 1.0)))
-    if not azimuth:
-        out["az"] = np.broadcast_to(np.float32(np.nan), (n_tg, n_t))
+        v /= np.linalg.norm(v, axis=-1, keepdims=True)
+        out["sun_sep"][s] = _sep_deg(v, frame.sun_vec)
+        out["moon_sep"][s] = _sep_deg(v, frame.moon_vec)
     return _TargetRows(**out)
 
 
@@ -246,27 +238,20 @@ def night_frame(site: Site, night: Night, support_s: float | None = None) -> _Ni
     sun_vec = np.einsum("nij,nj->ni", rot, _unit(lerp(sun_c)))
     moon_vec = np.einsum("nij,nj->ni", rot, _unit(lerp(moon_c)))
     phase = lerp(f.moon_phase_angle_deg[:, None])[:, 0]
-    return _NightFrame(
-        t_mid_unix=float(0.5 * (t[0] + t[-1])), location=f.location, rot=rot,
+    return replace(
+        f, t_mid_unix=float(0.5 * (t[0] + t[-1])), rot=rot,
         sun_alt_deg=np.degrees(np.arcsin(np.clip(sun_vec[:, 2], -1.0, 1.0))), sun_vec=sun_vec,
         moon_alt_deg=np.degrees(np.arcsin(np.clip(moon_vec[:, 2], -1.0, 1.0))), moon_vec=moon_vec,
         moon_illum=0.5 * (1.0 + np.cos(np.radians(phase))), moon_phase_angle_deg=phase,
     )
 
 
-def sky_from_frame(frame: _NightFrame, night: Night, ra_deg, dec_deg, azimuth: bool = True) -> SkyGrid:
-    """The SkyGrid of these targets on a frame made by ``night_frame`` for the same ``night``.
-    azimuth=False leaves az_deg nan (faster; for callers that read no azimuth)."""
-    ra, dec = _check_coords(ra_deg, dec_deg)
-    rows = _target_rows(frame, _targets_cirs(ra, dec, frame.t_mid_unix, frame.location) if ra.size else np.empty((0, 3)),
-                        azimuth)
-    return _grid(night, frame, ra, dec, rows)
-
-
 def compute_sky(site: Site, night: Night, ra_deg, dec_deg) -> SkyGrid:
     """Alt/az/airmass and Sun/Moon geometry of all targets (ICRS degrees) on the night's grid."""
-    _check_coords(ra_deg, dec_deg)
-    return sky_from_frame(_night_frame(site, night), night, ra_deg, dec_deg)
+    ra, dec = _check_coords(ra_deg, dec_deg)
+    frame = _night_frame(site, night)
+    rows = _target_rows(frame, _targets_cirs(ra, dec, frame.t_mid_unix, frame.location) if ra.size else np.empty((0, 3)))
+    return _grid(night, frame, ra, dec, rows)
 
 
 # --------------------------------------------------------------------------- cache
