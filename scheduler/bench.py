@@ -1,4 +1,4 @@
-"""Benchmark: python -m scheduler.bench [--sizes 100,500,2000] [--quick] [--out docs]
+"""Benchmark: python -m scheduler.bench [--sizes 100,500,2000] [--quick] [--effort N] [--seed N] [--out docs]
 
 Deterministic generated queues (seeded RNG; invented programs, targets and limits; bands U..Q
 from the starter config) on one night at the starter config's (fictional) site, 1-minute
@@ -6,6 +6,10 @@ grid, with a generated forecast. For each size: build time split into sky / feas
 model / solve, peak memory, objective, bound, gap, fraction of dark time used, mean airmass of
 planned time and science value next to the greedy baseline. Also a re-plan after a
 conditions change (sky grid reused) and a sky section. Writes docs/benchmarks.md and .json.
+
+By default each build runs against its wall-clock limit (10 s / 60 s, as a user's build does).
+--effort N bounds every build by a deterministic work budget instead (BuildOptions.effort):
+the plans and objectives are then the same on any machine, only the times differ.
 """
 
 from __future__ import annotations
@@ -121,7 +125,15 @@ def _dark_steps(sky) -> int:
     return int(np.count_nonzero(sky.sun_alt_deg <= -12.0))
 
 
-def run_size(config, night, n: int, *, time_limit_s: float, seed: int = SEED) -> dict:
+def _options(time_limit_s: float, effort: int | None, search_seed: int, **kw):
+    from scheduler.planning.pipeline import BuildOptions
+    if effort is not None:
+        return BuildOptions(effort=effort, seed=search_seed, **kw)
+    return BuildOptions(time_limit_s=time_limit_s, seed=search_seed, **kw)
+
+
+def run_size(config, night, n: int, *, time_limit_s: float, seed: int = SEED, effort: int | None = None,
+             search_seed: int = 0) -> dict:
     """One end-to-end build of an n-request queue (sky computed here, inside the time budget)."""
     from scheduler.conditions.grid import conditions_on_grid
     from scheduler.planning.pipeline import build_plan, target_rows_for
@@ -134,7 +146,8 @@ def run_size(config, night, n: int, *, time_limit_s: float, seed: int = SEED) ->
     ra, dec, _ = target_rows_for(reqs)
     sky = compute_sky(config.site, night, ra, dec)
     sky_s = time.perf_counter() - t0
-    res = build_plan(config, reqs, weights, night, cond, sky=sky, time_limit_s=time_limit_s - sky_s)
+    res = build_plan(config, reqs, weights, night, cond, sky=sky,
+                     options=_options(time_limit_s - sky_s, effort, search_seed))
     total = time.perf_counter() - t0
     timings = dict(res.timings)
     timings["sky"] = sky_s
@@ -150,19 +163,21 @@ def run_size(config, night, n: int, *, time_limit_s: float, seed: int = SEED) ->
     return row, (reqs, weights, sky, cond, res)
 
 
-def _child(n: int, time_limit_s: float, replan_limit_s: float | None) -> dict:
+def _child(n: int, time_limit_s: float, replan_limit_s: float | None, effort: int | None = None,
+           search_seed: int = 0) -> dict:
     """Run one size in a fresh process so its peak RSS is its own."""
     config = starter_config()
     from scheduler.sky.night import compute_night
     night = compute_night(config.site, BENCH_DATE, 60)
-    row, base = run_size(config, night, n, time_limit_s=time_limit_s)
+    row, base = run_size(config, night, n, time_limit_s=time_limit_s, effort=effort, search_seed=search_seed)
     out = {"row": row, "dark_steps": _dark_steps(base[2])}
     if replan_limit_s is not None:
-        out["replan"] = run_replan(config, night, base, time_limit_s=replan_limit_s)
+        out["replan"] = run_replan(config, night, base, time_limit_s=replan_limit_s, effort=effort,
+                                   search_seed=search_seed)
     return out
 
 
-def run_replan(config, night, base, *, time_limit_s: float) -> dict:
+def run_replan(config, night, base, *, time_limit_s: float, effort: int | None = None, search_seed: int = 0) -> dict:
     """Conditions change mid-night: re-plan from 3 h after dusk, sky grid reused, previous plan kept stable."""
     from scheduler.conditions.grid import conditions_on_grid
     from scheduler.planning.pipeline import build_plan
@@ -171,20 +186,23 @@ def run_replan(config, night, base, *, time_limit_s: float) -> dict:
     now = datetime.fromtimestamp(float(night.times_unix[0]) + 3 * 3600 + 20, tz=timezone.utc)
     cond2 = conditions_on_grid(generate_forecast(night, SEED, shift=0.3), night.times_unix, config.defaults)
     t0 = time.perf_counter()
-    r2 = build_plan(config, reqs, weights, night, cond2, sky=sky, now=now, previous_entries=list(res.entries),
-                    time_limit_s=time_limit_s)
+    r2 = build_plan(config, reqs, weights, night, cond2, sky=sky,
+                    options=_options(time_limit_s, effort, search_seed, now=now, previous_entries=list(res.entries)))
     total = time.perf_counter() - t0
     # Stability against the plan in force: its entries still ahead at the re-plan time, which of
     # them the new conditions leave feasible where they stand, and which the new plan keeps
     # within the stability window (2 min, the model's "stays") or at exactly the same minute.
+    # Matched by request and time: execution numbers count what is still owed.
     from scheduler.constraints.feasibility import evaluate
     from scheduler.planning.pipeline import target_rows_for
     feas2 = evaluate(reqs, target_rows_for(reqs)[2], sky, cond2, config)
     row_of = {r.id: i for i, r in enumerate(reqs)}
     ahead = [e for e in res.entries if e.start_step >= r2.now_step]
     still = [e for e in ahead if feas2.ok[row_of[e.request_id], e.start_step:e.end_step].all()]
-    new_start = {(e.request_id, e.execution): e.start_step for e in r2.entries}
-    moved = [abs(new_start.get((e.request_id, e.execution), -10**6) - e.start_step) for e in ahead]
+    new_starts: dict[int, list[int]] = {}
+    for e in r2.entries:
+        new_starts.setdefault(e.request_id, []).append(e.start_step)
+    moved = [min((abs(s - e.start_step) for s in new_starts.get(e.request_id, ())), default=10**6) for e in ahead]
     later = [e for e in r2.entries if e.start_step >= r2.now_step]
     return {
         "requests": len(reqs), "total_s": total, "timings": r2.timings, "status": r2.solver_status,
@@ -264,6 +282,9 @@ def write_docs(out: Path, data: dict) -> None:
         "in docs/solver.md). Machine: " + data["machine"] + f". Night {data['night']}, "
         f"{data['n_times']} steps of {data['step_s']} s; dark (Sun < -12 deg) {data['dark_hours']:.1f} h.",
         "",
+        (f"Each build bounded by a deterministic effort of {data['effort']} (seed {data.get('seed', 0)}), not by its "
+         "time limit." if data.get("effort") else f"Each build bounded by its time limit (seed {data.get('seed', 0)})."),
+        "",
         "Columns: seconds per stage (solve = hint search + CP-SAT); dark used = share of the time with the Sun",
         "below -12 deg covered by entries; mean X = airmass over planned time; vs greedy = objective over greedy.",
         "",
@@ -327,7 +348,14 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="sizes 100,500 and short time limits")
     ap.add_argument("--out", default=str(Path(__file__).resolve().parents[1] / "docs"))
     ap.add_argument("--no-write", action="store_true")
+    ap.add_argument("--effort", type=int, default=None,
+                    help="bound each build by this deterministic work budget instead of its time limit")
+    ap.add_argument("--seed", type=int, default=0, help="seed of the randomized searches (default 0)")
     a = ap.parse_args(argv)
+    if a.effort is not None:
+        from scheduler.solve.budget import MAX_EFFORT
+        if not 1 <= a.effort <= MAX_EFFORT:
+            ap.error(f"--effort: must be an integer from 1 to {MAX_EFFORT}")
     config = starter_config()
     from scheduler.sky.night import compute_night
     night = compute_night(config.site, BENCH_DATE, 60)
@@ -339,14 +367,14 @@ def main(argv=None) -> int:
         limits = {n: 3.0 for n in sizes}
     data = {"machine": f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}",
             "night": str(BENCH_DATE), "n_times": night.n_times, "step_s": night.step_s, "sizes": [],
-            "quick": a.quick}
+            "quick": a.quick, "effort": a.effort, "seed": a.seed}
     import multiprocessing as mp
     ctx = mp.get_context("spawn")
     dark_steps = 0
     for n in sizes:
         replan_limit = (3.0 if a.quick else 4.5) if n == 500 else None  # margin under the 5 s target
         with ctx.Pool(1) as pool:
-            out = pool.apply(_child, (n, limits[n], replan_limit))
+            out = pool.apply(_child, (n, limits[n], replan_limit, a.effort, a.seed))
         row = out["row"]
         dark_steps = out["dark_steps"]
         data["sizes"].append(row)

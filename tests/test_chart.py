@@ -20,7 +20,7 @@ from scheduler.db.session import open_db
 from scheduler.model.config import load_config
 from scheduler.model.errors import InputError
 from scheduler.report import chart
-from test_web import CLOCK, make_planned_folder
+from test_web import make_planned_folder
 
 
 @pytest.fixture(scope="module")
@@ -33,7 +33,6 @@ def inputs(planned):
     """(doc, night, config, samples, sky) of the plan, read once."""
     from scheduler.db import plans
     from scheduler.report.export import plan_document
-    from scheduler.sky.ephemeris import compute_sky
     from scheduler.sky.night import compute_night
 
     config = load_config(planned / "observatory.toml")

@@ -12,7 +12,7 @@ import pytest
 from scheduler.planning.pipeline import build_plan
 from scheduler.solve.checker import check_plan
 
-from test_solver import CFG, T0, make_cond, make_night, make_sky, req
+from test_solver import CFG, T0, effort, make_cond, make_night, make_sky, req
 
 N_T = 240
 
@@ -28,7 +28,7 @@ def scene():
     reqs = [req(0, exposure_min=30, priority=9, not_before=T0, not_after=T0 + timedelta(minutes=150)),
             req(1, band="K", exposure_min=30, priority=8, max_pwv_mm=3.0),
             req(2, band="R", exposure_min=20, priority=7, repeats=2, min_spacing_s=1800)]
-    res = build_plan(CFG, reqs, {"P1": 1.0}, night, cond, sky=sky, time_limit_s=2)
+    res = build_plan(CFG, reqs, {"P1": 1.0}, night, cond, sky=sky, options=effort())
     specs = {r.id: r for r in reqs}
     rows = {r.id: i for i, r in enumerate(reqs)}
     return night, sky, cond, specs, rows, res

@@ -11,11 +11,12 @@ import numpy as np
 import pytest
 
 import scheduler.planning.pipeline as pipeline
-from scheduler.planning.pipeline import build_plan
+from scheduler.model.errors import InputError
+from scheduler.planning.pipeline import BuildOptions, build_plan
 from scheduler.solve.cpsat import SolveOutcome
 from scheduler.solve.objective import VALUE_SCALE
 
-from test_solver import CFG, T0, assert_clean, make_cond, make_night, make_sky, random_scene, req
+from test_solver import CFG, T0, TEST_EFFORT, assert_clean, effort, make_cond, make_night, make_sky, random_scene, req
 
 N_T = 300
 
@@ -23,7 +24,7 @@ N_T = 300
 @pytest.fixture(scope="module")
 def base():
     night, sky, cond, reqs, w = random_scene(31, 14, N_T)
-    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort())
     assert_clean(res)
     assert len(res.entries) >= 4
     return night, sky, cond, reqs, w, res
@@ -37,7 +38,7 @@ def test_replan_keeps_the_entry_in_progress_and_starts_nothing_before_now(base):
     night, sky, cond, reqs, w, res = base
     cur = res.entries[1]
     now = _now_inside(night, cur)
-    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, now=now, previous_entries=list(res.entries), time_limit_s=2)
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort(now=now, previous_entries=list(res.entries)))
     assert_clean(res2)
     kept = [e for e in res2.entries if e.start_step < res2.now_step]
     assert len(kept) == 1
@@ -51,7 +52,7 @@ def test_replan_keeps_the_entry_in_progress_and_starts_nothing_before_now(base):
 def test_replan_with_unchanged_conditions_keeps_the_plan(base):
     night, sky, cond, reqs, w, res = base
     now = _now_inside(night, res.entries[0])
-    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, now=now, previous_entries=list(res.entries), time_limit_s=2)
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort(now=now, previous_entries=list(res.entries)))
     assert_clean(res2)
     old = {(e.request_id, e.execution): e.start_step for e in res.entries}
     moved = [e for e in res2.entries if (e.request_id, e.execution) not in old
@@ -70,7 +71,7 @@ def test_frozen_entries_stay_and_storage_form_without_steps_is_accepted(base, se
     now = e1.start - timedelta(minutes=5)  # e1 starts inside the 15-minute freeze horizon
     stored = [replace(e, start_step=-1, end_step=-1) for e in res.entries]  # storage keeps times only
     cond = replace(cond, seeing_arcsec=cond.seeing_arcsec + seeing_up)
-    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, now=now, previous_entries=stored, time_limit_s=2)
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort(now=now, previous_entries=stored))
     assert_clean(res2)
     same = [e for e in res2.entries if (e.request_id, e.execution) == (e1.request_id, e1.execution)]
     assert len(same) == 1 and same[0].start_step == e1.start_step and same[0].fixed
@@ -83,7 +84,7 @@ def test_entry_in_progress_is_dropped_when_the_dome_closes(base):
     closed = np.asarray(cond.dome_open).copy()
     closed[cur.start_step:] = False
     cond2 = replace(cond, dome_open=closed)
-    res2 = build_plan(CFG, reqs, w, night, cond2, sky=sky, now=now, previous_entries=list(res.entries), time_limit_s=2)
+    res2 = build_plan(CFG, reqs, w, night, cond2, sky=sky, options=effort(now=now, previous_entries=list(res.entries)))
     assert_clean(res2)
     assert res2.entries == ()
     reasons = dict(res2.unscheduled)
@@ -100,7 +101,7 @@ def test_unscheduled_reasons():
             req(1, exposure_min=10),  # never above the altitude limit
             req(2, band="Q", exposure_min=10, max_pwv_mm=1.0),  # PWV 5 mm all night
             req(3, exposure_min=60, priority=1)]  # feasible, but there is no room
-    res = build_plan(CFG, reqs, {"P1": 1.0}, night, cond, sky=sky, time_limit_s=2)
+    res = build_plan(CFG, reqs, {"P1": 1.0}, night, cond, sky=sky, options=effort())
     assert_clean(res)
     why = dict(res.unscheduled)
     assert [e.request_id for e in res.entries] == [1]
@@ -114,7 +115,7 @@ def test_greedy_plan_kept_when_cp_sat_finds_nothing(base, monkeypatch):
         return SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.01, 0, 0)
 
     monkeypatch.setattr(pipeline, "solve_problem", nothing)
-    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort())
     assert_clean(res)
     assert res.used_greedy and res.solver_status == "GREEDY"
     assert "plan kept" in res.message
@@ -141,7 +142,44 @@ def test_sky_grid_must_hold_the_targets(base):
     stranger = req(0, exposure_min=10, id=500)
     stranger = replace(stranger, ra_deg=333.0)
     with pytest.raises(ValueError, match="no row for target"):
-        build_plan(CFG, reqs + [stranger], w, night, cond, sky=sky, time_limit_s=1)
+        build_plan(CFG, reqs + [stranger], w, night, cond, sky=sky, options=effort())
+
+
+def test_same_inputs_effort_and_seed_give_the_identical_plan(base):
+    """The deterministic work budget: no stage reads the clock, so two builds agree exactly."""
+    night, sky, cond, reqs, w, _ = base
+    a, b = (build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort(seed=5)) for _ in range(2))
+    assert_clean(a)
+    assert a.entries == b.entries and a.objective == b.objective and a.bound == b.bound
+    assert a.solver_status == b.solver_status and a.unscheduled == b.unscheduled
+    work = ("randomized_runs", "ruin_recreate_iterations", "lagrangian_iterations", "sequence_bound_iterations")
+    assert [a.stats[k] for k in work] == [b.stats[k] for k in work]
+    assert a.stats["effort"] == TEST_EFFORT and a.stats["time_limit_s"] is None and a.stats["solver_deterministic_limit"] > 0
+
+
+def test_work_grows_with_effort(base):
+    night, sky, cond, reqs, w, _ = base
+    one = build_plan(CFG, reqs, w, night, cond, sky=sky, options=BuildOptions(effort=1))
+    three = build_plan(CFG, reqs, w, night, cond, sky=sky, options=BuildOptions(effort=3))
+    assert_clean(one)
+    assert_clean(three)
+    assert three.stats["randomized_runs"] == 3 * one.stats["randomized_runs"] > 0
+    assert three.stats["solver_deterministic_limit"] == pytest.approx(3 * one.stats["solver_deterministic_limit"])
+
+
+@pytest.mark.parametrize("bad", [0, -1, 2.5, "3", True, 10**6])
+def test_effort_must_be_a_whole_number_in_range(bad):
+    with pytest.raises(InputError, match="effort"):
+        BuildOptions(effort=bad)
+
+
+def test_wall_clock_budget_still_plans(base):
+    """The default budget is the clock; what it finds varies, what it returns is always checked."""
+    night, sky, cond, reqs, w, _ = base
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, options=BuildOptions(time_limit_s=1.0))
+    assert_clean(res)
+    assert res.entries and res.objective >= res.greedy_objective - 1e-9
+    assert res.stats["time_limit_s"] == 1.0 and res.stats["effort"] is None
 
 
 def test_empty_queue():
@@ -150,6 +188,7 @@ def test_empty_queue():
     assert res.solver_status == "EMPTY" and res.entries == () and res.violations == ()
 
 
+@pytest.mark.slow
 def test_real_sky_and_forecast_end_to_end():
     """compute_sky + conditions_on_grid + evaluate + solver + checker on a generated queue."""
     from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
@@ -159,7 +198,7 @@ def test_real_sky_and_forecast_end_to_end():
     night = compute_night(CFG.site, BENCH_DATE, 60)
     reqs, w = generate_queue(CFG, 40, 7, night)
     cond = conditions_on_grid(generate_forecast(night, 7), night.times_unix, CFG.defaults)
-    res = build_plan(CFG, reqs, w, night, cond, time_limit_s=3)
+    res = build_plan(CFG, reqs, w, night, cond, options=effort())
     assert_clean(res)
     assert len(res.entries) >= 3
     assert res.objective >= res.greedy_objective - 1e-9
@@ -178,7 +217,7 @@ def test_periodic_window_and_partial_exposure():
     periodic = req(0, exposure_min=15, priority=10, period_epoch=T0, period_days=0.2, phase_min=0.5, phase_max=0.6)
     partial = replace(req(1, exposure_min=60, priority=9), partial_exposure_s=45 * 60.0)
     filler = req(2, exposure_min=90, priority=4)
-    res = build_plan(CFG, [periodic, partial, filler], {"P1": 1.0}, night, cond, sky=sky, time_limit_s=2)
+    res = build_plan(CFG, [periodic, partial, filler], {"P1": 1.0}, night, cond, sky=sky, options=effort())
     assert_clean(res)
     by = {e.request_id: e for e in res.entries}
     p = by[1]
@@ -187,6 +226,7 @@ def test_periodic_window_and_partial_exposure():
     assert q.end_step - q.start_step == 18
 
 
+@pytest.mark.slow
 def test_sky_cache_path_matches_a_computed_grid():
     from scheduler.bench import BENCH_DATE, generate_forecast, generate_queue
     from scheduler.conditions.grid import conditions_on_grid
@@ -197,10 +237,10 @@ def test_sky_cache_path_matches_a_computed_grid():
     reqs, w = generate_queue(CFG, 25, 3, night)
     cond = conditions_on_grid(generate_forecast(night, 3), night.times_unix, CFG.defaults)
     cache = SkyCache()
-    a = build_plan(CFG, reqs, w, night, cond, sky=cache, time_limit_s=2)
+    a = build_plan(CFG, reqs, w, night, cond, sky=cache, options=effort())
     assert_clean(a)
     computed = cache.targets_computed
-    b = build_plan(CFG, reqs, w, night, cond, sky=cache, time_limit_s=2)  # re-plan: no new sky rows
+    b = build_plan(CFG, reqs, w, night, cond, sky=cache, options=effort())  # re-plan: no new sky rows
     assert_clean(b)
     assert cache.targets_computed == computed
     assert b.objective >= b.greedy_objective - 1e-9
@@ -223,7 +263,7 @@ def test_a_cp_sat_plan_that_fails_the_checker_is_never_returned(base, monkeypatc
         return SolveOutcome(bad, "FEASIBLE", 1e9, 1e9, 0.0, 0.01, 0, 0)
 
     monkeypatch.setattr(pipeline, "solve_problem", lying_solver)
-    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort())
     assert res.violations == ()
     assert res.used_greedy and res.solver_status == "GREEDY"
     assert "failed the checker" in res.message
@@ -232,14 +272,14 @@ def test_a_cp_sat_plan_that_fails_the_checker_is_never_returned(base, monkeypatc
 def test_last_resort_drops_the_entries_the_checker_names(base, monkeypatch):
     night, sky, cond, reqs, w, _ = base
     real_greedy = pipeline.greedy_plan
-    monkeypatch.setattr(pipeline, "greedy_plan", lambda problem: _overlapping(problem, real_greedy(problem)))
+    monkeypatch.setattr(pipeline, "greedy_plan", lambda problem, **kw: _overlapping(problem, real_greedy(problem)))
     # the hint search finds nothing better, so the (bad) greedy plan is the floor
     monkeypatch.setattr(pipeline, "randomized_dispatch", lambda problem, **kw: ([], 0))
     monkeypatch.setattr(pipeline, "ruin_and_recreate", lambda problem, plan, **kw: (list(plan), 0))
     monkeypatch.setattr(pipeline, "insertion_plan", lambda *a, **kw: [])
     monkeypatch.setattr(pipeline, "solve_problem",
                         lambda problem, **kw: SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.0, 0, 0))
-    res = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    res = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort())
     assert res.violations == ()
     assert "checker removed 1 entries" in res.message
     assert any(why.startswith("dropped: failed the plan check") for _, why in res.unscheduled)
@@ -262,7 +302,7 @@ def generated():
     ra, dec, rows = pipeline.target_rows_for(reqs)
     sky = compute_sky(CFG.site, night, ra, dec)
     cond = conditions_on_grid(generate_forecast(night, 2), night.times_unix, CFG.defaults)
-    first = build_plan(CFG, reqs, w, night, cond, sky=sky, time_limit_s=2)
+    first = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort())
     assert_clean(first)
     cond2 = conditions_on_grid(generate_forecast(night, 2, shift=0.3), night.times_unix, CFG.defaults)
     now = datetime.fromtimestamp(float(night.times_unix[0]) + 3 * 3600 + 20, tz=timezone.utc)
@@ -271,31 +311,37 @@ def generated():
 
 
 def _kept(first, res, still=None):
-    """Previous entries after now (or those in ``still``) that start within 2 min of where they were."""
+    """Previous entries after now (or those in ``still``) that start within 2 min of where they
+    were. Matched by request and time: execution numbers count what is still owed, so a repeat
+    whose earlier execution was dropped is renumbered, yet observed at the same time."""
     ahead = still if still is not None else [e for e in first.entries if e.start_step >= res.now_step]
-    new = {(e.request_id, e.execution): e.start_step for e in res.entries}
-    return ahead, [e for e in ahead if abs(new.get((e.request_id, e.execution), -99) - e.start_step) <= 2]
+    new: dict[int, list[int]] = {}
+    for e in res.entries:
+        new.setdefault(e.request_id, []).append(e.start_step)
+    return ahead, [e for e in ahead if any(abs(s - e.start_step) <= 2 for s in new.get(e.request_id, ()))]
 
 
-def _still_feasible(g, now_step):
+def _still_feasible(g, now_step, first=None):
     """Previous entries after now whose whole span is still feasible under the changed conditions."""
     idx = {r.id: i for i, r in enumerate(g["reqs"])}
-    return [e for e in g["first"].entries if e.start_step >= now_step
+    return [e for e in (first or g["first"]).entries if e.start_step >= now_step
             and g["feas2"].ok[idx[e.request_id], e.start_step:e.end_step].all()]
 
 
+@pytest.mark.slow
 def test_generated_replan_with_unchanged_conditions_keeps_the_plan_unless_worth_more(generated):
     """Unchanged conditions: the previous plan still holds. The re-plan is worth at least keeping
     all of it (with the stability bonus), and keeps most of it: the time-limited search may find a
-    plan that pays for moving an entry or two (the first plan had only 2 s), never a worse one."""
+    plan that pays for moving an entry or two (the first plan had a small effort), never a worse one."""
     from scheduler.constraints.feasibility import evaluate
     from scheduler.solve.greedy import greedy_plan
-    from scheduler.solve.problem import build_problem, objective_of
+    from scheduler.solve.objective import objective_of
+    from scheduler.solve.problem import build_problem
 
     g = generated
     first = g["first"]
-    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond"], sky=g["sky"], now=g["now"],
-                     previous_entries=list(first.entries), time_limit_s=2)
+    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond"], sky=g["sky"], options=effort(now=g["now"],
+                     previous_entries=list(first.entries)))
     assert_clean(res)
     ahead, kept = _kept(first, res)
     assert len(ahead) >= 5 and len(kept) >= len(ahead) // 2
@@ -308,17 +354,19 @@ def test_generated_replan_with_unchanged_conditions_keeps_the_plan_unless_worth_
     assert res.objective >= sum(objective_of(P, keep_all)) / VALUE_SCALE - 1e-6
 
 
+@pytest.mark.slow
 def test_replan_after_a_small_change_is_worth_at_least_keeping_what_still_fits(generated):
     """Keeping every previous entry still feasible where it stands and dispatching around them is
     a valid plan of the same model (each kept entry earns 0.2 x its value): the re-plan may only
     differ from it by being worth more."""
     from scheduler.solve.greedy import greedy_plan
-    from scheduler.solve.problem import build_problem, objective_of
+    from scheduler.solve.objective import objective_of
+    from scheduler.solve.problem import build_problem
 
     g = generated
     first = g["first"]
-    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond2"], sky=g["sky"], now=g["now"],
-                     previous_entries=list(first.entries), time_limit_s=2)
+    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond2"], sky=g["sky"], options=effort(now=g["now"],
+                     previous_entries=list(first.entries)))
     assert_clean(res)
     assert len(_still_feasible(g, res.now_step)) >= 4  # the change leaves something worth keeping
     assert res.stability_bonus > 0
@@ -329,21 +377,27 @@ def test_replan_after_a_small_change_is_worth_at_least_keeping_what_still_fits(g
     assert res.objective >= sum(objective_of(P, kept_all)) / VALUE_SCALE - 1e-6
 
 
-def test_replan_floor_is_the_previous_plan_filled_around(generated, monkeypatch):
+@pytest.mark.parametrize("first_effort_seed", [None, pytest.param((2, 2), marks=pytest.mark.slow)])
+def test_replan_floor_is_the_previous_plan_filled_around(generated, monkeypatch, first_effort_seed):
     """With the searches finding nothing better and CP-SAT returning nothing, a re-plan must still
     keep every previous entry that remains feasible where it stands (the previous plan seeds the
-    search and is part of the floor), not fall back to a from-scratch dispatch."""
+    search and is part of the floor), not fall back to a from-scratch dispatch. A property of any
+    first plan: effort 2, seed 2 gives one where a repeat's earlier execution no longer fits."""
     g = generated
     first = g["first"]
+    if first_effort_seed is not None:
+        e, seed = first_effort_seed
+        first = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond"], sky=g["sky"],
+                           options=BuildOptions(effort=e, seed=seed))
     monkeypatch.setattr(pipeline, "randomized_dispatch", lambda problem, **kw: (pipeline.greedy_plan(problem), 0))
     monkeypatch.setattr(pipeline, "ruin_and_recreate", lambda problem, plan, **kw: (list(plan), 0))
     monkeypatch.setattr(pipeline, "insertion_plan", lambda *a, **kw: [])
     monkeypatch.setattr(pipeline, "solve_problem",
                         lambda problem, **kw: SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.0, 0, 0))
-    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond2"], sky=g["sky"], now=g["now"],
-                     previous_entries=list(first.entries), time_limit_s=2)
+    res = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond2"], sky=g["sky"], options=effort(now=g["now"],
+                     previous_entries=list(first.entries)))
     assert_clean(res)
-    still = _still_feasible(g, res.now_step)
+    still = _still_feasible(g, res.now_step, first)
     _, kept = _kept(first, res, still)
     assert len(still) >= 4 and len(kept) == len(still)
     assert res.used_greedy and "previous plan" in res.message

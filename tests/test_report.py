@@ -9,6 +9,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import re
 import shutil
 import struct
 from datetime import datetime, timedelta
@@ -181,6 +182,35 @@ def test_why_displaced_request_names_the_entry_that_holds_its_time(planned):
     win = cli_json("plan", "why", str(WIN_HIGH), cwd=planned)
     assert win["state"] == "scheduled" and win["entries"][0]["request_id"] == WIN_HIGH
     assert "04:00:00Z" <= win["entries"][0]["start"][11:] and win["entries"][0]["end"][11:] <= "04:45:00Z"
+
+
+@pytest.mark.slow
+def test_why_altitude_and_airmass_come_from_the_same_time(planned, tmp_path):
+    """A target rising late (RA 12h, Dec -27: airmass under 1.3 only from about 07:50 UTC, shortly
+    before dawn) with a window that closes at 07:30, asked about after a mid-night re-plan. The
+    altitude figure is read where only the altitude fails (before 07:30); the airmass printed next
+    to it must be the airmass there, not the lower one of the dawn the window excludes."""
+    from scheduler.sky.airmass import kasten_young_1989
+
+    for name in ("observatory.toml", "nightplan.sqlite"):
+        shutil.copy2(planned / name, tmp_path / name)
+    rid = run_cli("request", "add", "--program", "STAR-1", "--target", "LATE-RISER", "--ra", "180", "--dec", "-27",
+                  "--band", "V", "--exposure", "300", "--max-airmass", "1.3", "--not-after", "2026-12-17T07:30:00Z",
+                  cwd=tmp_path, check=True).stdout
+    rid = re.search(r"\d+", rid).group(0)
+    run_cli("plan", "build", "--night", NIGHT, "--time-limit", "2", "--now", "2026-12-17T02:00:00Z",
+            "--reason", "mid-night re-plan", cwd=tmp_path, check=True)
+    res = cli_json("plan", "why", rid, cwd=tmp_path)
+    assert res["plan_version"] == 2 and res["state"] == "never_feasible" and res["binding"] == ["ALTITUDE"]
+    text = res["details"]["ALTITUDE"]
+    m = re.search(r"highest altitude ([\d.]+) deg at (\d\d:\d\d) UTC.*lowest airmass ([\d.]+)", text)
+    assert m, text
+    alt, at, airmass = float(m.group(1)), m.group(2), float(m.group(3))
+    assert "02:00" <= at <= "07:30"
+    # Kasten & Young (1989) at the printed altitude (rounded to 0.1 deg); over the 1.3 it allows
+    assert airmass == pytest.approx(float(kasten_young_1989(alt)), abs=0.01)
+    assert airmass > 1.3
+    assert res["closest"]["time"][11:16] == at
 
 
 def test_why_unknown_request_is_a_clean_error(planned):

@@ -12,7 +12,6 @@ import json
 import os
 import re
 import select
-import shutil
 import signal
 import subprocess
 import sys
@@ -20,7 +19,6 @@ import tempfile
 import time
 import urllib.error
 import urllib.request
-from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np

@@ -11,7 +11,6 @@ import click
 
 from scheduler.cli.main import Ctx, echo_json, pass_ctx
 from scheduler.model.errors import InputError
-from scheduler.model.timegrid import iso
 
 POLL_RANGE = (0.2, 600.0)
 

@@ -2,33 +2,16 @@
 
 CONTRACT: Feasibility is the solver's, the checker's and `plan why`'s input.
 
-Two layers, both plain numpy over [requests x times] (no loop over time):
+Every constraint is one entry of constraints/catalog.py (its Reason bit, mask, wording and
+explanation); this module evaluates the catalog in two layers, plain numpy over
+[requests x times] (no loop over time):
 
-``static_layer`` (once per night and queue): what depends only on geometry and the clock.
-  ALTITUDE  altitude below telescope.min_altitude_deg, above max_altitude_deg (zenith blind
-            spot of an alt-az mount), below the horizon, or airmass over the request's max_airmass.
-  TWILIGHT  Sun above the band's twilight limit (band.sun_alt_limit_deg).
-  MOON_SEP  closer to the Moon than min_moon_sep_deg while the Moon is above the horizon (a
-            set Moon lights nothing).
-  SUN       closer to the Sun than safety.sun_avoidance_deg (at any Sun altitude).
-  WINDOW    the step [t, t + step) not inside [not_before, not_after], or the periodic event's
-            phase ((t - epoch) / period) mod 1 outside [phase_min, phase_max] at the start or end
-            of the step (phase_min > phase_max means the range wraps through phase 0).
-  SKY_BRIGHTNESS  Moon illuminated fraction over max_moon_illum while the Moon is up, or the
-            modelled sky (sky.physics.sky_brightness_mag: dark sky + Moon + twilight) brighter
-            than min_sky_mag. Bands without a sky model (thermal infrared) give nan and never fail.
-
-``evaluate`` adds what depends on the conditions grid.
-  SEEING        site seeing (500 nm, zenith) over max_seeing_arcsec.
-  RESOLUTION    delivered FWHM (seeing scaled to band and airmass, diffraction, instrument, AO)
-                over resolution_arcsec.
-  PWV           over max_pwv_mm.
-  TRANSMISSION  below TRANSMISSION_FLOOR = 0.1: under a tenth of the light the exposure is not
-                worth taking (common practice; no published source), whatever the request says.
-  CLOUD         cloud extinction over max_cloud_mag.
-  CLOSURE       dome closed, wind over safety.max_wind_ms or humidity over max_humidity_pct.
-  NIGHT_END     set at start times whose duration runs past the end of the grid. It explains a
-                False in start_ok and does not clear ``ok`` (ok is about the step itself).
+``static_layer`` (once per night and queue): the STATIC constraints, which depend only on
+  geometry and the clock (altitude, twilight, Moon, Sun, sky brightness, time window).
+``evaluate`` adds the CONDITIONS constraints (seeing, resolution, PWV, transmission, cloud,
+  closure), then the START one (NIGHT_END: set at start times whose duration runs past the end
+  of the grid; it explains a False in start_ok and does not clear ``ok``, which is about the
+  step itself).
 
 duration_steps = ceil((instrument.setup_s + request.next_exposure_s) / step);
 start_ok[r, t] = ok at every grid instant of [t, t + duration], both ends included, so an
@@ -60,35 +43,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from datetime import datetime
-from enum import IntFlag
-from typing import Sequence
+from typing import Mapping, Sequence
 
 import numpy as np
 
 from scheduler.conditions.grid import ConditionsGrid
+from scheduler.constraints import catalog
+from scheduler.constraints.catalog import MOON_UP_ALT_DEG, TRANSMISSION_FLOOR, Grid, Reason  # noqa: F401 (re-exported)
 from scheduler.model.config import Band, Instrument, ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.sky import physics
 from scheduler.sky.ephemeris import SkyGrid
-
-
-class Reason(IntFlag):
-    """One bit per constraint that fails at a time (0 = feasible)."""
-
-    ALTITUDE = 1 << 0  # below the telescope's limit, in the zenith blind spot, or beyond max_airmass
-    TWILIGHT = 1 << 1  # Sun too high for the band
-    MOON_SEP = 1 << 2
-    SKY_BRIGHTNESS = 1 << 3  # sky too bright in the band (Moon, twilight), or Moon too illuminated
-    SEEING = 1 << 4
-    RESOLUTION = 1 << 5  # delivered FWHM in the band worse than needed
-    PWV = 1 << 6
-    TRANSMISSION = 1 << 7
-    CLOUD = 1 << 8
-    CLOSURE = 1 << 9  # dome closed, wind or humidity over the limit
-    SUN = 1 << 10  # within the sun-avoidance angle
-    WINDOW = 1 << 11  # outside the absolute or periodic time window
-    NIGHT_END = 1 << 12  # (start only) the whole exposure does not fit before the grid ends
 
 
 @dataclass(frozen=True)
@@ -105,16 +70,13 @@ class Feasibility:
     sky_mag: np.ndarray  # [n_r, n_t] sky brightness in the band, mag/arcsec^2 (nan if not modelled)
 
 
-TRANSMISSION_FLOOR = 0.1  # common practice: below a tenth of the light, do not expose
 SEEING_WASTE_WEIGHT = 0.5
 WATER_WASTE_WEIGHT = 0.25
-MOON_UP_ALT_DEG = 0.0
-_NIGHT_END = np.uint16(Reason.NIGHT_END)
 
 
 def reason_names(bits: int) -> list[str]:
     """Names of the Reason bits set in ``bits`` (for `plan why` and reports)."""
-    return [r.name for r in Reason if int(bits) & int(r)]
+    return catalog.names(bits)
 
 
 @dataclass(frozen=True)
@@ -138,10 +100,7 @@ class StaticLayer:
     airmass_min: np.ndarray  # [n_r] lowest finite airmass on the grid (inf if never up)
     sky_mag: np.ndarray  # [n_r, n_t] float32
     duration_steps: np.ndarray  # [n_r] int64
-    max_seeing: np.ndarray  # [n_r] nan = no limit (a comparison with nan never fails)
-    resolution: np.ndarray
-    max_pwv: np.ndarray
-    max_cloud: np.ndarray
+    limits: Mapping[str, np.ndarray]  # request field -> [n_r], nan = no limit (catalog.LIMIT_FIELDS)
     t_ideal: np.ndarray  # [n_r] band transmission at zenith, no water, no cloud
     groups: tuple[_Group, ...]
 
@@ -155,89 +114,26 @@ def _limit(requests: Sequence[RequestSpec], name: str) -> np.ndarray:
                     dtype=np.float64)
 
 
-def _unix(t: datetime | None, missing: float) -> float:
-    return missing if t is None else t.timestamp()
-
-
 def _flag(reasons: np.ndarray, mask: np.ndarray, bit: Reason) -> None:
     """reasons |= bit where mask (mask broadcasts to reasons)."""
     reasons |= mask.astype(np.uint16) * np.uint16(bit)
 
 
-def _in_phase(phase: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    plain = (phase >= lo) & (phase <= hi)
-    wrapped = (phase >= lo) | (phase <= hi)
-    return np.where(lo <= hi, plain, wrapped)
-
-
-def static_layer(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyGrid,
-                 config: ObservatoryConfig) -> StaticLayer:
-    """Masks that depend only on geometry and time; compute once per night and queue."""
-    rows = np.asarray(target_rows, dtype=np.int64)
-    n_r = len(requests)
-    if rows.shape != (n_r,):
-        raise ValueError(f"target_rows has shape {rows.shape}; expected ({n_r},), one row per request")
-    if n_r and (rows.min() < 0 or rows.max() >= sky.n_targets):
-        raise ValueError("target_rows point outside the SkyGrid")
-    t = np.asarray(sky.night.times_unix, dtype=np.float64)
-    n_t = t.shape[0]
-    step = float(sky.night.step_s)
-    tel = config.telescope
-
-    alt = sky.alt_deg[rows]
-    airmass = np.asarray(sky.airmass[rows], dtype=np.float64)
-    reasons = np.zeros((n_r, n_t), dtype=np.uint16)
-
-    # ALTITUDE
-    max_am = _limit(requests, "max_airmass")
-    with np.errstate(invalid="ignore"):
-        bad_alt = (alt < tel.min_altitude_deg) | (alt > tel.max_altitude_deg) | ~np.isfinite(airmass) \
-            | (airmass > max_am[:, None])
-    _flag(reasons, bad_alt, Reason.ALTITUDE)
-
-    # TWILIGHT, per band limit
-    sun_limit = np.array([config.band(r.band).sun_alt_limit_deg for r in requests], dtype=np.float64)
-    _flag(reasons, sky.sun_alt_deg[None, :] > sun_limit[:, None], Reason.TWILIGHT)
-
-    # SUN avoidance
-    _flag(reasons, sky.sun_sep_deg[rows] < config.safety.sun_avoidance_deg, Reason.SUN)
-
-    # MOON_SEP and Moon illumination, only while the Moon is up
-    moon_up = sky.moon_alt_deg > MOON_UP_ALT_DEG
-    min_sep = _limit(requests, "min_moon_sep_deg")
-    with np.errstate(invalid="ignore"):
-        _flag(reasons, moon_up[None, :] & (sky.moon_sep_deg[rows] < min_sep[:, None]), Reason.MOON_SEP)
-        max_illum = _limit(requests, "max_moon_illum")
-        _flag(reasons, moon_up[None, :] & (sky.moon_illum[None, :] > max_illum[:, None]), Reason.SKY_BRIGHTNESS)
-
-    # WINDOW: absolute, then periodic
-    nb = np.array([_unix(r.not_before, -np.inf) for r in requests], dtype=np.float64)
-    na = np.array([_unix(r.not_after, np.inf) for r in requests], dtype=np.float64)
-    _flag(reasons, (t[None, :] < nb[:, None]) | (t[None, :] + step > na[:, None]), Reason.WINDOW)
-    per = np.array([i for i, r in enumerate(requests) if r.period_days is not None and r.period_epoch is not None],
-                   dtype=np.int64)
-    if per.size:
-        sub = [requests[i] for i in per]
-        epoch = np.array([r.period_epoch.timestamp() for r in sub])[:, None]
-        period = np.array([r.period_days * 86400.0 for r in sub])[:, None]
-        lo = np.array([r.phase_min for r in sub], dtype=np.float64)[:, None]
-        hi = np.array([r.phase_max for r in sub], dtype=np.float64)[:, None]
-        ph0 = np.mod((t[None, :] - epoch) / period, 1.0)
-        ph1 = np.mod((t[None, :] + step - epoch) / period, 1.0)
-        out = ~(_in_phase(ph0, lo, hi) & _in_phase(ph1, lo, hi))
-        reasons[per] |= out.astype(np.uint16) * np.uint16(Reason.WINDOW)
-
-    # groups by (band, instrument); sky brightness per group
+def _groups(requests: Sequence[RequestSpec], config: ObservatoryConfig) -> tuple[_Group, ...]:
     keyed: dict[tuple[str, str], list[int]] = {}
     for i, r in enumerate(requests):
         inst = config.instrument_for(r.band, r.instrument)
         keyed.setdefault((r.band, inst.name), []).append(i)
-    groups = tuple(
+    return tuple(
         _Group(config.band(b), config.instrument_for(b, name), np.array(idx, dtype=np.int64))
         for (b, name), idx in keyed.items()
     )
-    sky_mag = np.full((n_r, n_t), np.nan, dtype=np.float32)
-    t_ideal = np.ones(n_r, dtype=np.float64)
+
+
+def _sky_brightness(groups: Sequence[_Group], rows: np.ndarray, sky: SkyGrid, shape: tuple[int, int]):
+    """(sky_mag [n_r, n_t] float32, nan where the band has no sky model; t_ideal [n_r])."""
+    sky_mag = np.full(shape, np.nan, dtype=np.float32)
+    t_ideal = np.ones(shape[0], dtype=np.float64)
     for g in groups:
         tg = rows[g.rows]
         t_ideal[g.rows] = float(physics.transmission(g.band, 0.0, 1.0, 0.0))
@@ -246,24 +142,39 @@ def static_layer(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: 
         sky_mag[g.rows] = physics.sky_brightness_mag(
             g.band, sky.moon_phase_angle_deg[None, :], sky.moon_sep_deg[tg], sky.moon_alt_deg[None, :],
             sky.alt_deg[tg], sky.sun_alt_deg[None, :])
-    min_sky = _limit(requests, "min_sky_mag")
-    with np.errstate(invalid="ignore"):
-        _flag(reasons, sky_mag < min_sky[:, None], Reason.SKY_BRIGHTNESS)
+    return sky_mag, t_ideal
 
-    finite = np.where(np.isfinite(airmass), airmass, np.inf)
-    airmass_min = finite.min(axis=1) if n_t else np.full(n_r, np.inf)
 
+def static_layer(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyGrid,
+                 config: ObservatoryConfig) -> StaticLayer:
+    """The catalog's STATIC constraints; compute once per night and queue."""
+    rows = np.asarray(target_rows, dtype=np.int64)
+    n_r = len(requests)
+    if rows.shape != (n_r,):
+        raise ValueError(f"target_rows has shape {rows.shape}; expected ({n_r},), one row per request")
+    if n_r and (rows.min() < 0 or rows.max() >= sky.n_targets):
+        raise ValueError("target_rows point outside the SkyGrid")
+    n_t = sky.night.times_unix.shape[0]
+    step = float(sky.night.step_s)
+    airmass = np.asarray(sky.airmass[rows], dtype=np.float64)
+    groups = _groups(requests, config)
+    sky_mag, t_ideal = _sky_brightness(groups, rows, sky, (n_r, n_t))
     durations = np.array([
         max(1, math.ceil((config.instrument_for(r.band, r.instrument).setup_s + r.next_exposure_s) / step - 1e-9))
         for r in requests], dtype=np.int64)
+    limits = {name: _limit(requests, name) for name in catalog.LIMIT_FIELDS}
+    grid = Grid(requests=requests, config=config, sky=sky, rows=rows, airmass=airmass, sky_mag=sky_mag,
+                limits=limits, duration_steps=durations)
+    reasons = np.zeros((n_r, n_t), dtype=np.uint16)
+    for c in catalog.of_layer(catalog.STATIC):
+        _flag(reasons, c.fails(grid), c.reason)
 
+    finite = np.where(np.isfinite(airmass), airmass, np.inf)
+    airmass_min = finite.min(axis=1) if n_t else np.full(n_r, np.inf)
     return StaticLayer(
         request_ids=np.array([-1 if r.id is None else r.id for r in requests], dtype=np.int64),
         target_row=rows, step_s=step, reasons=reasons, airmass=airmass, airmass_min=airmass_min,
-        sky_mag=sky_mag, duration_steps=durations,
-        max_seeing=_limit(requests, "max_seeing_arcsec"), resolution=_limit(requests, "resolution_arcsec"),
-        max_pwv=_limit(requests, "max_pwv_mm"), max_cloud=_limit(requests, "max_cloud_mag"),
-        t_ideal=t_ideal, groups=groups,
+        sky_mag=sky_mag, duration_steps=durations, limits=limits, t_ideal=t_ideal, groups=groups,
     )
 
 
@@ -285,7 +196,8 @@ def start_windows(ok: np.ndarray, duration_steps: np.ndarray) -> tuple[np.ndarra
 
 def evaluate(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyGrid, cond: ConditionsGrid,
              config: ObservatoryConfig, static: StaticLayer | None = None) -> Feasibility:
-    """Full feasibility: the static layer (computed here unless given) plus the conditions layers."""
+    """Full feasibility: the static layer (computed here unless given), then the catalog's
+    CONDITIONS and START constraints."""
     st = static if static is not None else static_layer(requests, target_rows, sky, config)
     n_r, n_t = st.shape
     ids = np.array([-1 if r.id is None else r.id for r in requests], dtype=np.int64)
@@ -298,16 +210,6 @@ def evaluate(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyG
     seeing = np.asarray(cond.seeing_arcsec, dtype=np.float64)
     pwv = np.asarray(cond.pwv_mm, dtype=np.float64)
     cloud = np.asarray(cond.cloud_mag, dtype=np.float64)
-    safety = config.safety
-    reasons = st.reasons.copy()
-
-    closure = ~np.asarray(cond.dome_open, dtype=bool) | (cond.wind_ms > safety.max_wind_ms) \
-        | (cond.humidity_pct > safety.max_humidity_pct)
-    _flag(reasons, closure[None, :], Reason.CLOSURE)
-    _flag(reasons, seeing[None, :] > st.max_seeing[:, None], Reason.SEEING)
-    _flag(reasons, pwv[None, :] > st.max_pwv[:, None], Reason.PWV)
-    _flag(reasons, cloud[None, :] > st.max_cloud[:, None], Reason.CLOUD)
-
     fwhm = np.empty((n_r, n_t), dtype=np.float64)
     trans = np.empty((n_r, n_t), dtype=np.float64)
     ap = config.telescope.aperture_m
@@ -316,14 +218,17 @@ def evaluate(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyG
             x = st.airmass[g.rows]
             fwhm[g.rows] = physics.delivered_fwhm_arcsec(seeing[None, :], x, g.band, g.instrument, ap)
             trans[g.rows] = physics.transmission(g.band, pwv[None, :], x, cloud[None, :])
-        # below the horizon ALTITUDE says it all; no image or transmission reason on top
-        up = np.isfinite(st.airmass)
-        _flag(reasons, up & (fwhm > st.resolution[:, None]), Reason.RESOLUTION)
-    _flag(reasons, up & (trans < TRANSMISSION_FLOOR), Reason.TRANSMISSION)
 
+    grid = Grid(requests=requests, config=config, sky=sky, rows=st.target_row, airmass=st.airmass,
+                sky_mag=st.sky_mag, limits=st.limits, duration_steps=st.duration_steps, cond=cond,
+                fwhm=fwhm, transmission=trans)
+    reasons = st.reasons.copy()
+    for c in catalog.of_layer(catalog.CONDITIONS):
+        _flag(reasons, c.fails(grid), c.reason)
     ok = reasons == 0
-    start_ok, fits = start_windows(ok, st.duration_steps)
-    reasons |= (~fits).astype(np.uint16) * _NIGHT_END
+    start_ok, _ = start_windows(ok, st.duration_steps)
+    for c in catalog.of_layer(catalog.START):  # about start times: they leave ``ok`` alone
+        _flag(reasons, c.fails(grid), c.reason)
 
     merit = _merit(st, ok, seeing, pwv, fwhm, trans, config)
     return Feasibility(
@@ -347,15 +252,15 @@ def _merit(st: StaticLayer, ok: np.ndarray, seeing: np.ndarray, pwv: np.ndarray,
         m_air = st.airmass_min[:, None] / st.airmass
         m_t = trans / st.t_ideal[:, None]
 
-        r_see = _ratio(seeing[None, :], st.max_seeing[:, None])
-        r_res = _ratio(fwhm, st.resolution[:, None])
+        r_see = _ratio(seeing[None, :], st.limits["max_seeing_arcsec"][:, None])
+        r_res = _ratio(fwhm, st.limits["resolution_arcsec"][:, None])
         r = np.fmax(r_see, r_res)  # fmax ignores nan (no limit)
-        no_limit = np.isnan(st.max_seeing) & np.isnan(st.resolution)
+        no_limit = np.isnan(st.limits["max_seeing_arcsec"]) & np.isnan(st.limits["resolution_arcsec"])
         if no_limit.any():
             r[no_limit] = seeing[None, :] / d.seeing_arcsec
         w_see = 1.0 - np.clip(r, 0.0, 1.0)
 
-        ref_pwv = np.where(np.isnan(st.max_pwv), d.pwv_mm, st.max_pwv)
+        ref_pwv = np.where(np.isnan(st.limits["max_pwv_mm"]), d.pwv_mm, st.limits["max_pwv_mm"])
         r_w = np.where(ref_pwv[:, None] > 0, pwv[None, :] / np.maximum(ref_pwv[:, None], 1e-12), 1.0)
         w_water = 1.0 - np.clip(r_w, 0.0, 1.0)
 

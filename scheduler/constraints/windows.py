@@ -3,7 +3,8 @@
 ``binding_constraint`` reads one request's reason bitmask row: the binding constraint is the
 one that, if it alone were lifted, would open the most time (a constraint that is the only
 failure somewhere); when every time fails two or more constraints, it is the one failing
-most often. "Closest" is the time with the fewest failing constraints.
+most often. "Closest" is the time with the fewest failing constraints. The constraints and
+their wording are the catalog's (constraints/catalog.py).
 """
 
 from __future__ import annotations
@@ -14,30 +15,13 @@ from typing import Any, Sequence
 import numpy as np
 
 from scheduler.conditions.grid import conditions_on_grid
+from scheduler.constraints.catalog import CATALOG
+from scheduler.constraints.feasibility import Feasibility, evaluate, reason_names
 from scheduler.model.config import ObservatoryConfig
-from scheduler.constraints.feasibility import Feasibility, Reason, evaluate, reason_names
 from scheduler.model.request import RequestSpec
-from scheduler.model.timegrid import iso
+from scheduler.model.timegrid import iso, runs, utc
 from scheduler.sky.ephemeris import SkyGrid, compute_sky
 from scheduler.sky.night import Night, night_for
-from scheduler.model.timegrid import runs, utc
-
-# Human wording of each constraint.
-DESCRIPTION = {
-    Reason.ALTITUDE: "altitude/airmass (telescope limits, zenith blind spot, max_airmass)",
-    Reason.TWILIGHT: "twilight (Sun too high for the band)",
-    Reason.MOON_SEP: "Moon separation",
-    Reason.SKY_BRIGHTNESS: "sky brightness / Moon illumination",
-    Reason.SEEING: "seeing (max_seeing_arcsec)",
-    Reason.RESOLUTION: "delivered resolution in the band (resolution_arcsec)",
-    Reason.PWV: "water vapour (max_pwv_mm)",
-    Reason.TRANSMISSION: "atmospheric transmission below the floor",
-    Reason.CLOUD: "cloud extinction (max_cloud_mag)",
-    Reason.CLOSURE: "dome closed (operator, wind or humidity)",
-    Reason.SUN: "sun avoidance",
-    Reason.WINDOW: "time window (not_before/not_after or periodic phase)",
-    Reason.NIGHT_END: "the exposure does not fit before the night ends",
-}
 
 
 def binding_constraint(reasons_row: np.ndarray) -> dict[str, Any]:
@@ -45,23 +29,23 @@ def binding_constraint(reasons_row: np.ndarray) -> dict[str, Any]:
     r = np.asarray(reasons_row, dtype=np.int64)
     if r.size == 0:
         return {"constraint": None, "description": "the night has no grid times", "closest_index": None}
-    best_bit, best_opened = None, 0
+    best, best_opened = None, 0
     counts = {}
-    for bit in Reason:
-        has = (r & int(bit)) != 0
-        counts[bit] = int(has.sum())
-        opened = int(((r & ~int(bit)) == 0).sum() - (r == 0).sum())
+    for c in CATALOG:
+        bit = int(c.reason)
+        counts[c] = int(((r & bit) != 0).sum())
+        opened = int(((r & ~bit) == 0).sum() - (r == 0).sum())
         if opened > best_opened:
-            best_bit, best_opened = bit, opened
-    if best_bit is None:
-        best_bit = max(counts, key=lambda b: counts[b])
-        if counts[best_bit] == 0:
+            best, best_opened = c, opened
+    if best is None:
+        best = max(counts, key=lambda c: counts[c])
+        if counts[best] == 0:
             return {"constraint": None, "description": "feasible", "closest_index": int(np.argmax(r == 0))}
     n_fail = np.array([bin(int(x)).count("1") for x in r])
     closest = int(np.argmin(n_fail))
     return {
-        "constraint": best_bit.name,
-        "description": DESCRIPTION[best_bit],
+        "constraint": best.name,
+        "description": best.wording,
         "alone_opens_steps": best_opened,
         "closest_index": closest,
         "closest_failing": reason_names(int(r[closest])),

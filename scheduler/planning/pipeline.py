@@ -1,17 +1,24 @@
 """The pure orchestration: requests + night + conditions -> a checked night plan.
 
-config + queue + conditions -> sky grid -> feasibility -> problem -> greedy + CP-SAT -> plan
--> independent checker. No database, no files, no clock: ``now`` is an argument. Used by the
-CLI, the service, the demo and the benchmark.
+config + queue + conditions -> sky grid -> feasibility -> problem -> searches + bounds + CP-SAT
+-> plan -> independent checker. No database, no files: ``now`` is an option, and the clock is
+read only to keep a wall-clock time limit (BuildOptions.effort replaces it by a deterministic
+work budget). Used by the CLI, the service, the demo and the benchmark.
 
-PlanEntry and PlanResult (the contract for storage and reports) are defined in
-scheduler/solve/problem.py and re-exported here.
+``build_plan`` runs named stages, each a function of the one before:
+
+    prepare_problem -> search_for_plans -> bound_objective -> insertion by prices
+    -> optimise_with_cpsat -> choose_plan -> check_and_finalise
+
+PlanEntry and PlanResult (the contract for storage and reports) live in scheduler/model/plan.py
+and are re-exported here.
 """
 
 from __future__ import annotations
 
 import math
 import time
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Callable, Sequence
 
@@ -19,19 +26,387 @@ import numpy as np
 
 from scheduler.conditions.grid import ConditionsGrid
 from scheduler.model.config import ObservatoryConfig
+from scheduler.model.plan import PlanEntry, PlanResult
 from scheduler.model.request import ACTIVE_STATUSES, RequestSpec
+from scheduler.model.timegrid import utc
 from scheduler.sky.ephemeris import SkyGrid
 from scheduler.sky.night import Night
+from scheduler.solve.bounds import LagrangianResult, lagrangian_bound, sequence_bound
+from scheduler.solve.budget import CpSatBudget, WorkBudget, check_effort
 from scheduler.solve.checker import check_plan, true_transition_s
-from scheduler.solve.cpsat import lagrangian_bound, sequence_bound, solve_problem
-from scheduler.solve.greedy import dense_tables, greedy_plan, insertion_plan, randomized_dispatch, ruin_and_recreate
-from scheduler.model.plan import PlanEntry, PlanResult
-from scheduler.solve.objective import VALUE_SCALE
-from scheduler.solve.problem import Placement, Problem, build_problem, check_model_feasible, objective_of
+from scheduler.solve.cpsat import SolveOutcome, solve_problem
+from scheduler.solve.greedy import DispatchTables, dispatch_tables, greedy_plan
+from scheduler.solve.heuristics import insertion_plan, randomized_dispatch, ruin_and_recreate
+from scheduler.solve.objective import VALUE_SCALE, objective_of, plan_value
+from scheduler.solve.problem import Placement, Problem, build_problem, check_model_feasible
 from scheduler.solve.transitions import slew_s as _slew_s
-from scheduler.model.timegrid import utc
 
-__all__ = ["build_plan", "PlanEntry", "PlanResult", "target_rows_for"]
+__all__ = ["BuildOptions", "build_plan", "PlanEntry", "PlanResult", "target_rows_for", "entries_on_grid"]
+
+
+@dataclass(frozen=True)
+class BuildOptions:
+    """How to build a plan. ``BuildOptions()`` plans the whole night within the config's limits.
+
+    now: re-plan from this time (nothing new starts before it; the entry in progress is kept).
+    previous_entries: the plan in force, for the entry in progress, the freeze horizon, the
+      stability bonus and the search's seed plan (storage form with steps -1 is accepted).
+    time_limit_s: wall-clock budget of the build (default config.planning.time_limit_s).
+    effort: instead of the clock, a deterministic work budget (an integer >= 1): every search,
+      bound and CP-SAT does ``effort`` units of work (solve/budget.py) and nothing reads the
+      clock, so the same inputs, effort and seed give the identical plan on any machine.
+      time_limit_s is then not used.
+    seed: seeds the randomized searches (and CP-SAT).
+    gap_tolerance: stop once the proven relative gap is below this (default from the config).
+    freeze_horizon_min: entries starting this soon after now keep their start (default from
+      the config).
+    num_workers: CP-SAT workers (default: all cores; one under ``effort``).
+    progress: called with a short line at each stage and each CP-SAT solution.
+    k_best_arcs, bucket_steps: model size (candidate predecessors per execution; merit
+      bucket width in grid steps, 1 = exact).
+    """
+
+    now: datetime | None = None
+    previous_entries: Sequence[PlanEntry] | None = None
+    time_limit_s: float | None = None
+    effort: int | None = None
+    seed: int = 0
+    gap_tolerance: float | None = None
+    freeze_horizon_min: float | None = None
+    num_workers: int | None = None
+    progress: Callable[[str], None] | None = None
+    k_best_arcs: int = 10
+    bucket_steps: int = 10
+
+    def __post_init__(self):
+        if self.effort is not None:
+            check_effort(self.effort)
+
+
+@dataclass
+class _Build:
+    """One build in progress: the options resolved against the config, the budget (its clock
+    starts here), the timings and the progress line."""
+
+    config: ObservatoryConfig
+    night: Night
+    options: BuildOptions
+    budget: WorkBudget
+    gap_tolerance: float
+    now_step: int
+    timings: dict = field(default_factory=lambda: dict.fromkeys(("sky", "feasibility", "model", "solve", "check"), 0.0))
+    cpsat_budget: CpSatBudget | None = None
+
+    @classmethod
+    def start(cls, config: ObservatoryConfig, night: Night, options: BuildOptions) -> _Build:
+        p = config.planning
+        limit = p.time_limit_s if options.time_limit_s is None else options.time_limit_s
+        tol = p.gap_tolerance if options.gap_tolerance is None else options.gap_tolerance
+        now_step = 0 if options.now is None else night.step_of(options.now)
+        return cls(config, night, options, WorkBudget(limit, options.effort), float(tol), now_step)
+
+    def say(self, msg: str) -> None:
+        if self.options.progress:
+            self.options.progress(msg)
+
+
+@dataclass
+class Prepared:
+    """The problem and what it was built from (rows of ``feasibility`` follow ``requests``)."""
+
+    requests: list[RequestSpec]
+    sky: SkyGrid
+    rows: np.ndarray  # each request's row in the sky grid
+    feasibility: object
+    cond: ConditionsGrid
+    previous: list[PlanEntry]
+    problem: Problem
+    tables: DispatchTables
+    greedy: list[Placement]
+    greedy_value: int
+
+
+class PlanPool:
+    """The best model-feasible plan found so far: the CP-SAT hint, and the floor the build
+    returns when CP-SAT finds nothing better."""
+
+    def __init__(self, problem: Problem, plan: list[Placement], label: str):
+        self.problem = problem
+        self.plan, self.label, self.value = plan, label, plan_value(problem, plan)
+        self.randomized_runs = 0
+        self.ruin_recreate_iterations = 0
+
+    def consider(self, label: str, plan: list[Placement]) -> None:
+        value = plan_value(self.problem, plan)
+        if value > self.value and not check_model_feasible(self.problem, plan):
+            self.plan, self.label, self.value = plan, label, value
+
+    def kept_what(self) -> str:
+        return "greedy plan kept" if self.label == "greedy" else f"best heuristic plan kept ({self.label})"
+
+
+@dataclass(frozen=True)
+class Bounds:
+    lagrangian: LagrangianResult
+    sequence: int
+    sequence_iterations: int
+    upper: int  # the tightest valid bound (integer objective units)
+    warning: str | None = None
+
+
+@dataclass(frozen=True)
+class Choice:
+    """The plan the build settles on before the checker, and how it was found."""
+
+    plan: list[Placement]
+    status: str
+    objective: float
+    bound: float
+    gap: float
+    used_greedy: bool
+    message: str = ""
+
+
+def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_weights: dict[str, float],
+               night: Night, cond: ConditionsGrid, *, sky=None, options: BuildOptions | None = None,
+               feasibility=None, static=None) -> PlanResult:
+    """Build a checked night plan.
+
+    sky: a SkyGrid holding every request's target, or a SkyCache, or None (computed here).
+    options: BuildOptions (now, previous plan, time limit or effort, seed, ...).
+    feasibility / static: precomputed Feasibility (rows = the active requests in order) or the
+      feasibility static layer, to reuse on a re-plan.
+    """
+    run = _Build.start(config, night, options or BuildOptions())
+    reqs = active_requests(requests)
+    if not reqs:
+        return PlanResult((), (), "EMPTY", 0.0, 0.0, 0.0, 0.0, 0.0, False, run.timings, (), now_step=run.now_step,
+                          message="no active requests")
+    prep = prepare_problem(run, reqs, program_weights, cond, sky, feasibility, static)
+    t0 = time.perf_counter()  # searches and bounds are optimisation: counted in "solve"
+    pool, first_bound = search_for_plans(run, prep)
+    bounds = bound_objective(run, prep, pool, first_bound)
+    lag = bounds.lagrangian
+    pool.consider("price-guided insertion", insertion_plan(prep.problem, lag.order, lag.preferred, prep.tables))
+    search_s = time.perf_counter() - t0
+    outcome = optimise_with_cpsat(run, prep, pool, bounds)
+    run.timings["solve"] = search_s + (outcome.runtime_s if outcome else 0.0)
+    choice = choose_plan(prep, pool, bounds, outcome)
+    return check_and_finalise(run, prep, pool, bounds, outcome, choice, search_s)
+
+
+def active_requests(requests: Sequence[RequestSpec]) -> list[RequestSpec]:
+    """The requests the planner considers, each with a unique id (max id + 1, ... where missing)."""
+    reqs = [r for r in requests if r.status in ACTIVE_STATUSES]
+    used = {r.id for r in reqs if r.id is not None}
+    nxt = max(used, default=0) + 1
+    out = []
+    for r in reqs:
+        if r.id is None:
+            while nxt in used:
+                nxt += 1
+            r = r.with_(id=nxt)
+            used.add(nxt)
+        out.append(r)
+    return out
+
+
+def prepare_problem(run: _Build, reqs: list[RequestSpec], program_weights: dict[str, float], cond: ConditionsGrid,
+                    sky, feasibility, static) -> Prepared:
+    """Stage 1: sky grid, feasibility, the Problem, and the greedy dispatch (baseline and floor)."""
+    config, night, opts = run.config, run.night, run.options
+    t0 = time.perf_counter()
+    run.say(f"sky: {len(reqs)} requests")
+    sky_grid, rows = _sky_rows(sky, config, night, reqs)
+    run.timings["sky"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    run.say("feasibility")
+    if feasibility is None:
+        from scheduler.constraints.feasibility import evaluate
+        feasibility = evaluate(reqs, rows, sky_grid, cond, config, static)
+    run.timings["feasibility"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    run.say("model")
+    step = int(night.step_s)
+    prev = entries_on_grid(opts.previous_entries, night) if opts.previous_entries else []
+    freeze_min = config.planning.freeze_horizon_min if opts.freeze_horizon_min is None else opts.freeze_horizon_min
+    problem = build_problem(
+        config, reqs, program_weights, feasibility, sky_grid.alt_deg[rows], sky_grid.az_deg[rows], step_s=step,
+        now_step=run.now_step, previous=prev, freeze_steps=int(math.ceil(freeze_min * 60 / step)),
+        bucket_steps=opts.bucket_steps)
+    tables = dispatch_tables(problem)
+    greedy = greedy_plan(problem, tables=tables)
+    run.timings["model"] = time.perf_counter() - t0
+    return Prepared(reqs, sky_grid, rows, feasibility, cond, prev, problem, tables, greedy,
+                    plan_value(problem, greedy))
+
+
+def search_for_plans(run: _Build, prep: Prepared) -> tuple[PlanPool, LagrangianResult]:
+    """Stage 2: randomized dispatch, the previous plan filled around (re-planning), then
+    ruin-and-recreate from the best, stopping once within the gap tolerance of a first
+    time-indexed bound (returned too: the bound stage starts from it)."""
+    P, budget = prep.problem, run.budget
+    run.say("hint search")
+    pool = PlanPool(P, prep.greedy, "greedy")
+    b = budget.randomized_dispatch()
+    rnd, pool.randomized_runs = randomized_dispatch(P, runs=b.iterations, time_limit_s=b.time_limit_s,
+                                                    seed=run.options.seed, tables=prep.tables)
+    pool.consider("randomized dispatch", rnd)
+    if prep.previous:
+        # the previous plan seeds the search: its still-feasible part, with the dispatch filling
+        # what the change left empty (alone it would lose to any full plan and never be improved)
+        pool.consider("previous plan", greedy_plan(P, keep=_previous_hint(P, prep.previous), tables=prep.tables))
+    b = budget.lagrangian()
+    first = lagrangian_bound(P, pool.value, iterations=b.iterations, time_limit_s=b.time_limit_s)
+    b = budget.ruin_and_recreate()
+    rr, pool.ruin_recreate_iterations = ruin_and_recreate(
+        P, pool.plan, iterations=b.iterations, time_limit_s=b.time_limit_s, seed=run.options.seed,
+        stop_at=(1.0 - run.gap_tolerance) * first.bound, tables=prep.tables)
+    pool.consider(pool.label + " + ruin-and-recreate", rr)
+    return pool, first
+
+
+def bound_objective(run: _Build, prep: Prepared, pool: PlanPool, first: LagrangianResult) -> Bounds:
+    """Stage 3: the time-indexed bound again (a better target gives better steps), then the
+    sequence bound from its prices. A bound below a plan in hand would be a bug: it is ignored
+    and reported."""
+    P, budget = prep.problem, run.budget
+    b = budget.lagrangian()
+    second = lagrangian_bound(P, pool.value, iterations=b.iterations, time_limit_s=b.time_limit_s)
+    lag = second if second.bound < first.bound else first
+    b = budget.sequence()
+    seq, seq_its = sequence_bound(P, pool.value, mu0=lag.reduced, sectors=16, iterations=b.iterations,
+                                  time_limit_s=b.time_limit_s)
+    upper = min(lag.bound, seq)
+    if upper < pool.value:
+        warning = f"bound {upper / VALUE_SCALE:.3f} below plan {pool.value / VALUE_SCALE:.3f}; ignored"
+        return Bounds(lag, seq, seq_its, max(lag.bound, pool.value), warning)
+    return Bounds(lag, seq, seq_its, upper)
+
+
+def optimise_with_cpsat(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> SolveOutcome | None:
+    """Stage 4: CP-SAT on the whole model, hinted with the best plan so far and capped by the
+    bound. None when there is nothing to optimise."""
+    run.say(f"greedy objective {prep.greedy_value / VALUE_SCALE:.3f}; solving")
+    if not prep.problem.execs:
+        return None
+    run.cpsat_budget = limits = run.budget.cpsat()
+    opts = run.options
+    model_s = [0.0]
+    outcome = solve_problem(
+        prep.problem, time_limit_s=limits.time_limit_s, deterministic_time_s=limits.deterministic_time_s,
+        gap_tolerance=run.gap_tolerance, hint=pool.plan, k_best=opts.k_best_arcs,
+        upper_bound=max(bounds.upper, pool.value), num_workers=opts.num_workers, seed=opts.seed,
+        progress=opts.progress, model_timer=lambda s: model_s.__setitem__(0, s))
+    run.timings["model"] += model_s[0]
+    return outcome
+
+
+def choose_plan(prep: Prepared, pool: PlanPool, bounds: Bounds, outcome: SolveOutcome | None) -> Choice:
+    """Stage 5: CP-SAT's plan when it is at least the floor, else the floor: the best
+    model-feasible plan of the searches (the greedy or better). On a re-plan that is the one
+    seeded by the previous plan, so a short budget never throws the plan's stability away."""
+    floor = pool.value / VALUE_SCALE
+    if outcome is not None and outcome.status in ("OPTIMAL", "FEASIBLE") and outcome.objective >= floor - 1e-9:
+        status = outcome.status if prep.problem.execs else "EMPTY"
+        return Choice(outcome.placements, status, outcome.objective, outcome.bound, outcome.gap, False)
+    if outcome is None:
+        bound, gap, message = floor, 0.0, "nothing to optimise"
+    else:
+        bound = max(min(outcome.bound, bounds.upper / VALUE_SCALE), floor)
+        gap = (bound - floor) / max(abs(bound), 1e-9)
+        message = (f"CP-SAT returned {outcome.status} with objective {outcome.objective:.3f} below "
+                   f"{floor:.3f}: {pool.kept_what()}" if outcome.status in ("OPTIMAL", "FEASIBLE")
+                   else f"CP-SAT returned {outcome.status}: {pool.kept_what()}")
+    status = "GREEDY" if prep.problem.execs else "EMPTY"
+    return Choice(pool.plan, status, floor, bound, gap, True, message)
+
+
+def check_and_finalise(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds, outcome: SolveOutcome | None,
+                       choice: Choice, search_s: float) -> PlanResult:
+    """Stage 6: entries with their predicted values, the independent checker (a failing CP-SAT
+    plan falls back to the floor; as a last resort the entries it names are dropped), the
+    reasons for what is not planned, and the result."""
+    t0 = time.perf_counter()
+    choice, entries, violations, dropped = _checked(run, prep, pool, choice)
+    run.timings["check"] = time.perf_counter() - t0
+    stab = objective_of(prep.problem, choice.plan)[1]
+    return PlanResult(
+        entries=tuple(entries), unscheduled=tuple(sorted(_unscheduled(prep.problem, entries, dropped))),
+        solver_status=choice.status, objective=float(choice.objective), bound=float(choice.bound),
+        gap=float(choice.gap), runtime_s=float(outcome.runtime_s if outcome else 0.0),
+        greedy_objective=float(prep.greedy_value / VALUE_SCALE), used_greedy=choice.used_greedy,
+        timings=run.timings, violations=tuple(violations),
+        stability_bonus=float(stab / VALUE_SCALE) if not dropped else 0.0, now_step=run.now_step,
+        message=choice.message, stats=_stats(run, prep, pool, bounds, outcome, len(entries), search_s),
+    )
+
+
+def _checked(run: _Build, prep: Prepared, pool: PlanPool, choice: Choice):
+    """(choice, entries, violations, dropped) after the checker has had its say."""
+    config, now_step = run.config, run.now_step
+    spec_by_id = {int(r.id): r for r in prep.requests}
+    row_by_id = {int(r.id): int(prep.rows[i]) for i, r in enumerate(prep.requests)}
+
+    def entries_and_violations(plan):
+        entries = _entries(prep.problem, plan, prep.feasibility, prep.sky, prep.rows, prep.cond, config, run.night)
+        return entries, check_plan(entries, spec_by_id, row_by_id, prep.sky, prep.cond, config, now_step=now_step)
+
+    entries, violations = entries_and_violations(choice.plan)
+    if violations and not choice.used_greedy:
+        message = f"CP-SAT plan failed the checker ({violations[0]}); {pool.kept_what()}"
+        choice = replace(choice, plan=pool.plan, status="GREEDY", objective=pool.value / VALUE_SCALE,
+                         used_greedy=True, message=message)
+        entries, violations = entries_and_violations(pool.plan)
+    dropped: list[tuple[int, str]] = []
+    if violations:
+        entries, violations, dropped = _drop_failing(entries, violations, spec_by_id, row_by_id, prep.sky,
+                                                     prep.cond, config, now_step)
+        message = (choice.message + "; " if choice.message else "") + f"checker removed {len(dropped)} entries"
+        choice = replace(choice, objective=sum(e.value for e in entries), message=message)
+    return choice, entries, violations, dropped
+
+
+def _unscheduled(problem: Problem, entries: Sequence[PlanEntry], dropped: list[tuple[int, str]]) -> list[tuple[int, str]]:
+    """(request id, reason) for every request not fully planned."""
+    planned: dict[int, int] = {}
+    for e in entries:
+        planned[e.request_id] = planned.get(e.request_id, 0) + 1
+    out: list[tuple[int, str]] = list(problem.dropped_fixed) + dropped
+    out += list(problem.unscheduled.items())
+    for i, spec in enumerate(problem.requests):
+        rid = int(problem.request_ids[i])
+        n = planned.get(rid, 0)
+        want = spec.remaining_repeats
+        if n == 0:
+            out.append((rid, "displaced"))
+        elif n < want:
+            out.append((rid, f"displaced ({n} of {want} executions planned)"))
+    return out
+
+
+def _stats(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds, outcome: SolveOutcome | None,
+           n_entries: int, search_s: float) -> dict:
+    """Model size, where the plan came from, the bounds, the work done and the limits used."""
+    P, lag, cp = prep.problem, bounds.lagrangian, run.cpsat_budget
+    return {
+        "requests": len(prep.requests), "in_model": len(P.requests), "executions": len(P.execs),
+        "arcs": outcome.n_arcs if outcome else 0, "buckets": outcome.n_buckets if outcome else 0,
+        "hint": pool.label, "hint_objective": pool.value / VALUE_SCALE, "lagrangian_bound": lag.bound / VALUE_SCALE,
+        "sequence_bound": bounds.sequence / VALUE_SCALE if bounds.sequence_iterations else None,
+        "sequence_bound_iterations": bounds.sequence_iterations,
+        **({"bound_warning": bounds.warning} if bounds.warning else {}),
+        "lagrangian_iterations": lag.iterations, "hint_search_s": search_s, "randomized_runs": pool.randomized_runs,
+        "ruin_recreate_iterations": pool.ruin_recreate_iterations, "greedy_entries": len(prep.greedy),
+        "entries": n_entries, "now_step": run.now_step,
+        "time_limit_s": None if run.budget.deterministic else run.budget.time_limit_s,
+        "solver_time_limit_s": cp.time_limit_s if cp else None, "gap_tolerance": run.gap_tolerance,
+        "effort": run.budget.effort, "seed": run.options.seed,
+        "solver_deterministic_limit": cp.deterministic_time_s if cp else None,
+        "solver_deterministic_time": outcome.deterministic_s if outcome else 0.0,
+    }
 
 
 def target_rows_for(requests: Sequence[RequestSpec]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -62,7 +437,6 @@ def _sky_rows(sky, config: ObservatoryConfig, night: Night, requests: Sequence[R
 
 def entries_on_grid(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntry]:
     """Previous entries with grid steps recomputed from their times (storage does not keep steps)."""
-    from dataclasses import replace
     t0, step = float(night.times_unix[0]), float(night.step_s)
     out = []
     for e in entries:
@@ -117,209 +491,11 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
             pe, pspec, prow = prev
             a1, z1 = sky.alt_deg[prow, min(pe.end_step, night.n_times - 1)], sky.az_deg[prow, min(pe.end_step, night.n_times - 1)]
             a2, z2 = sky.alt_deg[row, s], sky.az_deg[row, s]
-            from dataclasses import replace
             entry = replace(entry, slew_s=float(_slew_s(config, a1, z1, a2, z2)),
                             transition_s=true_transition_s(config, sky, pe, pspec, prow, entry, spec, row))
         out.append(entry)
         prev = (entry, spec, row)
     return out
-
-
-def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_weights: dict[str, float],
-               night: Night, cond: ConditionsGrid, *, sky=None, now: datetime | None = None,
-               previous_entries: Sequence[PlanEntry] | None = None, time_limit_s: float | None = None,
-               gap_tolerance: float | None = None, progress: Callable[[str], None] | None = None,
-               feasibility=None, static=None, num_workers: int | None = None,
-               k_best_arcs: int = 10, bucket_steps: int = 10) -> PlanResult:
-    """Build a checked night plan.
-
-    sky: a SkyGrid holding every request's target, or a SkyCache, or None (computed here).
-    now: re-plan from this time (nothing new starts before it; the entry in progress is kept).
-    previous_entries: the active plan, for the in-progress entry, the freeze horizon
-      (config.planning.freeze_horizon_min), the stability bonus and the hint.
-    time_limit_s: wall-clock budget for the whole build (default config.planning.time_limit_s);
-      CP-SAT gets what is left after sky, feasibility and model, less a small margin (at least 1 s).
-    gap_tolerance: stop once the proven relative gap is below this (default config.planning.gap_tolerance).
-    feasibility / static: precomputed Feasibility (rows = requests after filtering) or the
-      feasibility static layer, to reuse on a re-plan.
-    """
-    t_start = time.perf_counter()
-    say = progress or (lambda _msg: None)
-    limit = float(config.planning.time_limit_s if time_limit_s is None else time_limit_s)
-    tol = float(config.planning.gap_tolerance if gap_tolerance is None else gap_tolerance)
-    timings = {"sky": 0.0, "feasibility": 0.0, "model": 0.0, "solve": 0.0, "check": 0.0}
-    step = int(night.step_s)
-    now_step = 0 if now is None else night.step_of(now)
-
-    # Requests the planner considers; ids must be unique (assign where missing).
-    reqs = [r for r in requests if r.status in ACTIVE_STATUSES]
-    used = {r.id for r in reqs if r.id is not None}
-    nxt = max(used, default=0) + 1
-    fixed_ids = []
-    for r in reqs:
-        if r.id is None:
-            while nxt in used:
-                nxt += 1
-            fixed_ids.append(r.with_(id=nxt))
-            used.add(nxt)
-        else:
-            fixed_ids.append(r)
-    reqs = fixed_ids
-    prev = entries_on_grid(previous_entries, night) if previous_entries else []
-
-    if not reqs:
-        return PlanResult((), (), "EMPTY", 0.0, 0.0, 0.0, 0.0, 0.0, False, timings, (), now_step=now_step,
-                          message="no active requests")
-
-    t0 = time.perf_counter()
-    say(f"sky: {len(reqs)} requests")
-    sky_grid, rows = _sky_rows(sky, config, night, reqs)
-    timings["sky"] = time.perf_counter() - t0
-
-    t0 = time.perf_counter()
-    say("feasibility")
-    if feasibility is None:
-        from scheduler.constraints.feasibility import evaluate
-        feasibility = evaluate(reqs, rows, sky_grid, cond, config, static)
-    feas = feasibility
-    timings["feasibility"] = time.perf_counter() - t0
-
-    t0 = time.perf_counter()
-    say("model")
-    problem = build_problem(
-        config, reqs, program_weights, feas, sky_grid.alt_deg[rows], sky_grid.az_deg[rows], step_s=step,
-        now_step=now_step, previous=prev, freeze_steps=int(math.ceil(config.planning.freeze_horizon_min * 60 / step)),
-        bucket_steps=bucket_steps)
-    greedy = greedy_plan(problem)
-    g_sci, g_stab = objective_of(problem, greedy)
-    timings["model"] = time.perf_counter() - t0
-    t0 = time.perf_counter()  # the hint search is optimisation: counted in "solve"
-    say("hint search")
-    hint, hint_from, hint_obj = greedy, "greedy", g_sci + g_stab
-    rnd, n_rnd = randomized_dispatch(problem, runs=400, time_limit_s=max(0.2, 0.1 * limit))
-    candidates = [("randomized dispatch", rnd)]
-    if prev:
-        # the previous plan seeds the search: its still-feasible part, with the dispatch filling
-        # what the change left empty (alone it would lose to any full plan and never be improved)
-        candidates.append(("previous plan", greedy_plan(problem, keep=_previous_hint(problem, prev))))
-
-    def consider(label, plan_c):
-        nonlocal hint, hint_from, hint_obj
-        val = sum(objective_of(problem, plan_c))
-        if val > hint_obj and not check_model_feasible(problem, plan_c):
-            hint, hint_from, hint_obj = plan_c, label, val
-
-    for label, plan_c in candidates:
-        consider(label, plan_c)
-    lag = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.05 * limit))
-    rr, n_rr = ruin_and_recreate(problem, hint, iterations=10**6,
-                                 time_limit_s=max(0.3, 0.45 * (limit - (time.perf_counter() - t_start))),
-                                 stop_at=(1.0 - tol) * lag.bound)
-    consider(hint_from + " + ruin-and-recreate", rr)
-    lag2 = lagrangian_bound(problem, hint_obj, time_limit_s=max(0.2, 0.05 * limit))  # better target, better steps
-    if lag2.bound < lag.bound:
-        lag = lag2
-    seq_bound, seq_its = sequence_bound(problem, hint_obj, mu0=lag.reduced, sectors=16, iterations=60,
-                                        time_limit_s=max(0.3, 0.12 * limit))
-    upper = min(lag.bound, seq_bound)
-    bound_warning = None
-    if upper < hint_obj:  # a bound below a plan we hold would be a bug: fall back, and say so
-        bound_warning = f"bound {upper / VALUE_SCALE:.3f} below plan {hint_obj / VALUE_SCALE:.3f}; ignored"
-        upper = max(lag.bound, hint_obj)
-    consider("price-guided insertion", insertion_plan(problem, lag.order, lag.preferred, dense_tables(problem)[1]))
-    search_s = time.perf_counter() - t0
-    say(f"greedy objective {(g_sci + g_stab) / VALUE_SCALE:.3f}; solving")
-
-    # CP-SAT overruns its limit by a few hundred ms on big models (loading, response): keep a margin
-    budget = max(1.0, 0.9 * (limit - (time.perf_counter() - t_start)) - 0.3)
-    model_s = [0.0]
-    outcome = None
-    if problem.execs:
-        outcome = solve_problem(problem, time_limit_s=budget, gap_tolerance=tol, hint=hint, k_best=k_best_arcs,
-                                upper_bound=max(upper, hint_obj),
-                                num_workers=num_workers, progress=progress,
-                                model_timer=lambda s: model_s.__setitem__(0, s))
-        timings["model"] += model_s[0]
-    timings["solve"] = search_s + (outcome.runtime_s if outcome else 0.0)
-    greedy_obj = (g_sci + g_stab) / VALUE_SCALE
-    # The floor is the best model-feasible plan of the hint search (the greedy or better): on a
-    # re-plan it is the one seeded by the previous plan, so falling back to the plain greedy
-    # would throw the plan's stability away whenever CP-SAT finds nothing in a short budget.
-    fallback, fallback_obj = hint, hint_obj / VALUE_SCALE
-    kept_what = "greedy plan kept" if hint_from == "greedy" else f"best heuristic plan kept ({hint_from})"
-    used_greedy = False
-    message = ""
-    if outcome is not None and outcome.status in ("OPTIMAL", "FEASIBLE") and outcome.objective >= fallback_obj - 1e-9:
-        plan, status = outcome.placements, outcome.status
-        objective, bound, gap = outcome.objective, outcome.bound, outcome.gap
-    else:
-        plan, status, used_greedy = fallback, "GREEDY", True
-        objective = fallback_obj
-        if outcome is None:
-            bound, gap = objective, 0.0
-            message = "nothing to optimise"
-        else:
-            bound = max(min(outcome.bound, upper / VALUE_SCALE), objective)
-            gap = (bound - objective) / max(abs(bound), 1e-9)
-            message = (f"CP-SAT returned {outcome.status} with objective {outcome.objective:.3f} below "
-                       f"{fallback_obj:.3f}: {kept_what}" if outcome.status in ("OPTIMAL", "FEASIBLE")
-                       else f"CP-SAT returned {outcome.status}: {kept_what}")
-    if not problem.execs:
-        status = "EMPTY"
-
-    t0 = time.perf_counter()
-    entries = _entries(problem, plan, feas, sky_grid, rows, cond, config, night)
-    spec_by_id = {int(r.id): r for r in reqs}
-    row_by_id = {int(r.id): int(rows[i]) for i, r in enumerate(reqs)}
-    violations = check_plan(entries, spec_by_id, row_by_id, sky_grid, cond, config, now_step=now_step)
-    dropped: list[tuple[int, str]] = []
-    if violations and not used_greedy:
-        g_entries = _entries(problem, fallback, feas, sky_grid, rows, cond, config, night)
-        g_viol = check_plan(g_entries, spec_by_id, row_by_id, sky_grid, cond, config, now_step=now_step)
-        message = f"CP-SAT plan failed the checker ({violations[0]}); {kept_what}"
-        entries, violations, used_greedy, status, objective = g_entries, g_viol, True, "GREEDY", fallback_obj
-        plan = fallback
-    if violations:
-        entries, violations, dropped = _drop_failing(entries, violations, spec_by_id, row_by_id, sky_grid, cond,
-                                                     config, now_step)
-        message = (message + "; " if message else "") + f"checker removed {len(dropped)} entries"
-        objective = sum(e.value for e in entries)
-    timings["check"] = time.perf_counter() - t0
-
-    planned: dict[int, int] = {}
-    for e in entries:
-        planned[e.request_id] = planned.get(e.request_id, 0) + 1
-    unscheduled: list[tuple[int, str]] = list(problem.dropped_fixed) + dropped
-    for rid, why in problem.unscheduled.items():
-        unscheduled.append((rid, why))
-    for i, spec in enumerate(problem.requests):
-        rid = int(problem.request_ids[i])
-        n = planned.get(rid, 0)
-        want = spec.remaining_repeats
-        if n == 0:
-            unscheduled.append((rid, "displaced"))
-        elif n < want:
-            unscheduled.append((rid, f"displaced ({n} of {want} executions planned)"))
-    stab = sum(problem.stability_coef(p.exec_index) for p in plan
-               if problem.execs[p.exec_index].prev_start is not None
-               and abs(p.start - problem.execs[p.exec_index].prev_start) <= problem.stability_window)
-    stats = {
-        "requests": len(reqs), "in_model": len(problem.requests), "executions": len(problem.execs),
-        "arcs": outcome.n_arcs if outcome else 0, "buckets": outcome.n_buckets if outcome else 0,
-        "hint": hint_from, "hint_objective": hint_obj / VALUE_SCALE, "lagrangian_bound": lag.bound / VALUE_SCALE,
-        "sequence_bound": seq_bound / VALUE_SCALE if seq_its else None, "sequence_bound_iterations": seq_its,
-        **({"bound_warning": bound_warning} if bound_warning else {}),
-        "lagrangian_iterations": lag.iterations, "hint_search_s": search_s, "randomized_runs": n_rnd, "ruin_recreate_iterations": n_rr, "greedy_entries": len(greedy), "entries": len(entries), "now_step": now_step,
-        "time_limit_s": limit, "solver_time_limit_s": budget, "gap_tolerance": tol,
-    }
-    return PlanResult(
-        entries=tuple(entries), unscheduled=tuple(sorted(unscheduled)), solver_status=status,
-        objective=float(objective), bound=float(bound), gap=float(gap),
-        runtime_s=float(outcome.runtime_s if outcome else 0.0), greedy_objective=float(greedy_obj),
-        used_greedy=used_greedy, timings=timings, violations=tuple(violations),
-        stability_bonus=float(stab / VALUE_SCALE) if not dropped else 0.0, now_step=now_step, message=message,
-        stats=stats,
-    )
 
 
 def _drop_failing(entries, violations, spec_by_id, row_by_id, sky, cond, config, now_step):

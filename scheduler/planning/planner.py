@@ -86,14 +86,13 @@ class Planner:
     def build(self, inputs: PlanInputs, night: Night, *, now: datetime | None = None,
               time_limit_s: float | None = None, progress: Callable[[str], None] | None = None,
               use_previous: bool = True) -> tuple[PlanResult, ConditionsGrid]:
-        from scheduler.planning.pipeline import build_plan
+        from scheduler.planning.pipeline import BuildOptions, build_plan
 
         cond = self.conditions(night, inputs.samples, inputs.report_id)
         result = build_plan(
-            self.config, inputs.specs, inputs.weights, night, cond,
-            sky=self.sky_cache, now=now,
-            previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
-            time_limit_s=time_limit_s, progress=progress,
+            self.config, inputs.specs, inputs.weights, night, cond, sky=self.sky_cache,
+            options=BuildOptions(now=now, previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
+                                 time_limit_s=time_limit_s, progress=progress),
         )
         return result, cond
 

@@ -7,7 +7,8 @@ become the new plan version's reason. Material changes:
 - conditions: a closure (dome, wind, humidity) or a seeing / PWV / cloud change beyond the
   configured thresholds from now on (``conditions.change.compare``);
 - a planned entry, from now to its end, no longer passes its request's constraints under the
-  new conditions (named with the constraint and, for seeing, PWV and cloud, the numbers);
+  new conditions (named in the constraint catalog's words, with the numbers for seeing, PWV
+  and cloud);
 - a new request, feasible tonight after now, that outranks the least valuable entry still to
   come (science value: program weight x priority x exposure), or any new target of
   opportunity, or any new feasible request when nothing is left in the plan;
@@ -25,7 +26,8 @@ import numpy as np
 from scheduler.conditions.change import compare
 from scheduler.conditions.grid import ConditionsGrid
 from scheduler.model.config import ObservatoryConfig
-from scheduler.constraints.feasibility import Feasibility, Reason, evaluate, static_layer
+from scheduler.constraints.catalog import STEP_BITS, STEP_CONSTRAINTS
+from scheduler.constraints.feasibility import Feasibility, evaluate, static_layer
 from scheduler.model.request import RequestSpec
 from scheduler.sky.ephemeris import SkyCache
 from scheduler.sky.night import Night
@@ -62,25 +64,9 @@ def conditions_changes(config: ObservatoryConfig, night: Night, old: ConditionsG
 
 
 def _why(bits: int, spec: RequestSpec, cond: ConditionsGrid, a: int, b: int) -> str:
-    """The failing constraints over steps [a, b), with the numbers for the weather ones."""
-    parts, covered = [], 0
-    if bits & Reason.PWV and spec.max_pwv_mm is not None:
-        parts.append(f"PWV up to {float(np.max(cond.pwv_mm[a:b])):.1f} mm over its {spec.max_pwv_mm:g} mm limit")
-        covered |= Reason.PWV
-    if bits & Reason.SEEING and spec.max_seeing_arcsec is not None:
-        parts.append(f"seeing up to {float(np.max(cond.seeing_arcsec[a:b])):.2f} arcsec over its "
-                     f"{spec.max_seeing_arcsec:g} arcsec limit")
-        covered |= Reason.SEEING
-    if bits & Reason.CLOUD and spec.max_cloud_mag is not None:
-        parts.append(f"cloud up to {float(np.max(cond.cloud_mag[a:b])):.2f} mag over its "
-                     f"{spec.max_cloud_mag:g} mag limit")
-        covered |= Reason.CLOUD
-    if bits & Reason.CLOSURE:
-        parts.append("closure (dome closed, or wind or humidity over the limit)")
-        covered |= Reason.CLOSURE
-    parts += [r.name.lower().replace("_", " ") for r in Reason
-              if r != Reason.NIGHT_END and bits & r and not r & covered]
-    return ", ".join(parts)
+    """The failing constraints over steps [a, b), in the catalog's words (with the numbers for
+    the weather ones)."""
+    return ", ".join(c.breach(spec, cond, a, b) for c in STEP_CONSTRAINTS if bits & int(c.reason))
 
 
 def entry_failures(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, entries: Sequence[Planned],
@@ -93,15 +79,14 @@ def entry_failures(config: ObservatoryConfig, night: Night, sky_cache: SkyCache,
     ids = sorted({e.request_id for e in todo})
     row_of = {rid: i for i, rid in enumerate(ids)}
     feas = feasibility_for(config, night, sky_cache, [specs[i] for i in ids], cond)
-    times = night.times_unix
     out = []
     for e in sorted(todo, key=lambda e: e.start):
-        a = max(int(np.searchsorted(times, e.start.timestamp(), side="left")), i0)
-        b = int(np.searchsorted(times, e.end.timestamp(), side="left"))
+        a = max(night.step_of(e.start), i0)
+        b = night.step_of(e.end)
         r = row_of[e.request_id]
         if b <= a or feas.ok[r, a:b].all():
             continue
-        bits = int(np.bitwise_or.reduce(feas.reasons[r, a:b].astype(np.int64) & ~int(Reason.NIGHT_END)))
+        bits = int(np.bitwise_or.reduce(feas.reasons[r, a:b].astype(np.int64) & STEP_BITS))
         spec = specs[e.request_id]
         out.append(f"request {e.request_id} ({spec.target}) planned {hhmm(e.start)[:5]}-{hhmm(e.end)} no longer "
                    f"feasible: {_why(bits, spec, cond, a, b) or 'constraints fail'}")

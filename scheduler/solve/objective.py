@@ -1,20 +1,47 @@
 """The objective: what one execution of a request is worth. The one home of the science value
-(program weight, priority, exposure, merit buckets) and of the integer scale CP-SAT works in.
-Pure: imports only the ground floor."""
+(program weight, priority, exposure, merit buckets), of the stability bonus a re-plan pays for
+keeping an entry near its previous start, and of the integer scale CP-SAT works in.
+
+Science value of one execution started at grid step s (docs/solver.md):
+
+    value = program_weight * (priority / 5) * (exposure_s / 3600) * merit(s)
+
+read on merit buckets (the bucket's lowest merit counts for every start in it), as the integer
+coefficient round(VALUE_SCALE * value), at least 1. On a re-plan an execution that starts
+within ``stability_window`` steps of its previous start earns a further
+round(stability_weight * its value at the previous start).
+
+Every search, bound and the CP-SAT model read values from here, so they all optimise the same
+number. Pure: imports only the ground floor (the Problem is read through its attributes).
+"""
 
 from __future__ import annotations
+
+from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
 
 from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import consecutive_runs
 
+if TYPE_CHECKING:  # annotations only: problem.py imports this module
+    from scheduler.solve.problem import Placement, Problem
+
 VALUE_SCALE = 10_000  # objective units per unit of science value (integer objective for CP-SAT)
+STABILITY_WEIGHT = 0.2  # bonus for staying, as a share of the execution's value (common practice)
+STABILITY_WINDOW_STEPS = 2  # "stays": starts within this many grid steps of its previous start
 
 
 def science_base_value(spec: RequestSpec, program_weights: dict[str, float]) -> float:
+    """The value of one execution before merit: weight x priority/5 x exposure hours."""
     w = float(program_weights.get(spec.program, 1.0))
     return w * (spec.priority / 5.0) * (spec.exposure_s / 3600.0)
+
+
+def value_coef(base: float, merit: float) -> int:
+    """Integer objective coefficient of one execution of base value ``base`` at ``merit``
+    (at least 1: a planned execution is never worth nothing)."""
+    return max(1, int(round(VALUE_SCALE * base * merit)))
 
 
 def merit_buckets(starts_mask: np.ndarray, merit: np.ndarray, base: float, bucket_steps: int):
@@ -24,8 +51,50 @@ def merit_buckets(starts_mask: np.ndarray, merit: np.ndarray, base: float, bucke
     for lo, hi in consecutive_runs(np.flatnonzero(starts_mask)):
         for b0 in range(lo, hi + 1, bucket_steps):
             b1 = min(hi, b0 + bucket_steps - 1)
-            m = float(np.min(merit[b0:b1 + 1]))
             lo_l.append(b0)
             hi_l.append(b1)
-            coef_l.append(max(1, int(round(VALUE_SCALE * base * m))))
+            coef_l.append(value_coef(base, float(np.min(merit[b0:b1 + 1]))))
     return (np.array(lo_l, dtype=np.int64), np.array(hi_l, dtype=np.int64), np.array(coef_l, dtype=np.int64))
+
+
+def stability_coef(problem: Problem, e: int) -> int:
+    """The bonus execution ``e`` earns for starting within the stability window of its previous
+    start (0 when it has none, is kept exactly anyway, or this is not a re-plan)."""
+    ex = problem.execs[e]
+    if ex.prev_start is None or ex.fixed_start is not None or problem.stability_weight <= 0:
+        return 0
+    try:
+        c = ex.coef_at(ex.prev_start)
+    except ValueError:  # the previous start is no longer feasible: the bonus of its best bucket
+        c = int(ex.bucket_coef.max()) if ex.bucket_coef.size else 0
+    return int(round(problem.stability_weight * c))
+
+
+def start_values(problem: Problem, e: int) -> tuple[np.ndarray, np.ndarray]:
+    """(starts, values): the starts execution ``e`` may take (only its kept start when it is
+    kept) and the objective coefficient of each, stability bonus included."""
+    ex = problem.execs[e]
+    starts = ex.starts if ex.fixed_start is None else np.array([ex.fixed_start], dtype=np.int64)
+    b = np.searchsorted(ex.bucket_lo, starts, side="right") - 1
+    values = ex.bucket_coef[b].astype(np.int64)
+    bonus = stability_coef(problem, e)
+    if bonus:
+        values = values + bonus * (np.abs(starts - ex.prev_start) <= problem.stability_window)
+    return starts, values
+
+
+def objective_of(problem: Problem, plan: Sequence[Placement]) -> tuple[int, int]:
+    """(science objective, stability bonus) of a plan, in integer objective units."""
+    sci = 0
+    stab = 0
+    for p in plan:
+        ex = problem.execs[p.exec_index]
+        sci += ex.coef_at(p.start)
+        if ex.prev_start is not None and abs(p.start - ex.prev_start) <= problem.stability_window:
+            stab += stability_coef(problem, p.exec_index)
+    return sci, stab
+
+
+def plan_value(problem: Problem, plan: Sequence[Placement]) -> int:
+    """The model objective of a plan: science value plus stability bonus (integer units)."""
+    return sum(objective_of(problem, plan))

@@ -2,33 +2,26 @@
 
 ``build_problem`` turns feasibility/merit arrays + requests + program weights (+ a previous
 plan when re-planning) into a ``Problem``: one node per request execution with its feasible
-start steps, its value per start (merit buckets), and the transition bounds between requests.
-The greedy dispatcher and the CP-SAT model both read a Problem; neither touches I/O.
-
-Science value of one execution started at step s (documented in docs/solver.md):
-
-    value = program_weight * (priority / 5) * (exposure_s / 3600) * merit(s)
-
-priority runs 1..10 with 10 the most important; merit in (0, 1] comes from feasibility.
-merit(s) is read on buckets of ``bucket_steps`` consecutive feasible starts: the bucket's lowest
-merit counts for every start in it (conservative; bucket_steps=1 is exact). The objective is
-integer: round(VALUE_SCALE * value).
+start steps, its value per start (merit buckets, valued by solve/objective.py), and the
+transition bounds between requests (solve/transitions.py). The heuristics, the bounds and the
+CP-SAT model all read a Problem; none touches I/O.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Sequence
+from typing import NamedTuple, Sequence
 
 import numpy as np
 
+from scheduler.constraints.catalog import STEP_CONSTRAINTS
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.plan import PlanEntry
-from scheduler.solve.objective import VALUE_SCALE, merit_buckets, science_base_value
+from scheduler.solve.objective import (STABILITY_WEIGHT, STABILITY_WINDOW_STEPS, merit_buckets, science_base_value,
+                                      stability_coef, value_coef)
 from scheduler.solve.transitions import pair_transition_steps
-
 
 
 # --------------------------------------------------------------------------- problem
@@ -81,15 +74,8 @@ class Problem:
         return int(self.T[self.execs[a].req, self.execs[b].req])
 
     def stability_coef(self, e: int) -> int:
-        ex = self.execs[e]
-        if ex.prev_start is None or ex.fixed_start is not None or self.stability_weight <= 0:
-            return 0
-        s = ex.prev_start
-        try:
-            c = ex.coef_at(s)
-        except ValueError:
-            c = int(ex.bucket_coef.max()) if ex.bucket_coef.size else 0
-        return int(round(self.stability_weight * c))
+        """The stability bonus of execution e (defined in objective.stability_coef)."""
+        return stability_coef(self, e)
 
 
 def _sliding_all(ok: np.ndarray, d: int) -> np.ndarray:
@@ -102,11 +88,8 @@ def _sliding_all(ok: np.ndarray, d: int) -> np.ndarray:
     return out
 
 
-_REASON_LABELS = {
-    1 << 0: "altitude", 1 << 1: "twilight", 1 << 2: "moon separation", 1 << 3: "sky brightness",
-    1 << 4: "seeing", 1 << 5: "resolution", 1 << 6: "pwv", 1 << 7: "transmission", 1 << 8: "cloud",
-    1 << 9: "closure", 1 << 10: "sun avoidance", 1 << 11: "window", 1 << 12: "night end",
-}
+# The solver's words for each constraint are the catalog's labels ("never feasible: <label>").
+_REASON_LABELS = {int(c.reason): c.label for c in STEP_CONSTRAINTS}  # NIGHT_END is about starts, not steps
 
 
 def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step: int, duration: int,
@@ -118,10 +101,10 @@ def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step:
         return "never feasible: night over"
     if ok.any():
         return f"never feasible: no window of {duration * step_s / 60:.0f} min"
-    always = [lab for bit, lab in _REASON_LABELS.items() if bit != 1 << 12 and np.all(r & bit)]
+    always = [lab for bit, lab in _REASON_LABELS.items() if np.all(r & bit)]
     if always:
         return "never feasible: " + always[0]
-    counts = {lab: int(np.count_nonzero(r & bit)) for bit, lab in _REASON_LABELS.items() if bit != 1 << 12}
+    counts = {lab: int(np.count_nonzero(r & bit)) for bit, lab in _REASON_LABELS.items()}
     top = sorted((c, lab) for lab, c in counts.items() if c)[::-1][:2]
     return "never feasible: " + " + ".join(lab for _, lab in top)
 
@@ -129,16 +112,26 @@ def never_feasible_reason(reasons_row: np.ndarray, ok_row: np.ndarray, now_step:
 def failing_constraint(reasons: np.ndarray) -> str:
     """The constraint that fails most often over these steps (its label)."""
     r = np.asarray(reasons).astype(np.int64)
-    counts = [(int(np.count_nonzero(r & bit)), lab) for bit, lab in _REASON_LABELS.items() if bit != 1 << 12]
+    counts = [(int(np.count_nonzero(r & bit)), lab) for bit, lab in _REASON_LABELS.items()]
     n, lab = max(counts)
     return lab if n else "unknown"
+
+
+class _ExecutionPlan(NamedTuple):
+    """What build_problem decides for one execution before its value buckets are cut."""
+
+    duration: int
+    starts: np.ndarray
+    fixed_start: int | None
+    in_progress: bool
+    prev_start: int | None
 
 
 def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], program_weights: dict[str, float],
                   feas, alt: np.ndarray, az: np.ndarray, *, step_s: int, now_step: int = 0,
                   previous: Sequence[PlanEntry] | None = None, freeze_steps: int = 0,
-                  stability_weight: float = 0.2, stability_window: int = 2, bucket_steps: int = 10,
-                  transition_bucket_steps: int = 15) -> Problem:
+                  stability_weight: float = STABILITY_WEIGHT, stability_window: int = STABILITY_WINDOW_STEPS,
+                  bucket_steps: int = 10, transition_bucket_steps: int = 15) -> Problem:
     """Build the Problem. ``feas`` rows follow ``requests``; alt/az are [n_req, n_t] per request.
 
     previous: entries of the previous plan. One that started before now and ends after it is
@@ -146,115 +139,162 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
     ``freeze_steps`` of now keeps its start if that start is still feasible; the others only
     guide the solution (stability bonus, hint).
     """
-    n_all, n_t = feas.ok.shape
-    prev_by_req: dict[int, list[PlanEntry]] = {}
-    for e in previous or ():
-        if e.end_step > now_step:
-            prev_by_req.setdefault(int(e.request_id), []).append(e)
-    for v in prev_by_req.values():
-        v.sort(key=lambda e: e.start_step)
-
+    n_t = feas.ok.shape[1]
+    prev_by_req = _previous_by_request(previous, now_step)
     keep: list[int] = []
+    plans: list[list[_ExecutionPlan]] = []
     unscheduled: dict[int, str] = {}
     dropped_fixed: list[tuple[int, str]] = []
-    exec_specs: list[list[tuple[int, np.ndarray, int | None, bool, int | None]]] = []
     for r, spec in enumerate(requests):
         rid = int(feas.request_ids[r]) if spec.id is None else int(spec.id)
-        n_rep = spec.remaining_repeats
         prevs = prev_by_req.get(rid, [])
-        if n_rep <= 0 and not prevs:
+        if spec.remaining_repeats <= 0 and not prevs:
             continue
-        inst = config.instrument_for(spec.band, spec.instrument)
-        d0 = int(feas.duration_steps[r])
-        d_full = max(d0, int(math.ceil((inst.setup_s + spec.exposure_s) / step_s - 1e-9)))
-        so0 = feas.start_ok[r].copy()
-        so0[:now_step] = False
-        so_full = so0 if d_full == d0 else _sliding_all(feas.ok[r], d_full)
-        so_full[:now_step] = False
-        spacing = int(math.ceil((spec.min_spacing_s or 0.0) / step_s - 1e-9))
-        execs_r = []
-        pi = 0
-        # In progress: kept exactly while its remaining steps stay feasible.
-        if prevs and prevs[0].start_step < now_step:
-            p = prevs[0]
-            pi = 1
-            if feas.ok[r, now_step:p.end_step].all():
-                execs_r.append((p.end_step - p.start_step, np.array([p.start_step]), p.start_step, True, p.start_step))
-            else:
-                dropped_fixed.append((rid, "interrupted: " + failing_constraint(feas.reasons[r, now_step:p.end_step])))
-        n_left = max(0, n_rep - len(execs_r))
-        for k in range(n_left):
-            d = d0 if (k == 0 and not execs_r) else d_full
-            mask = so0 if d == d0 else so_full
-            p = prevs[pi] if pi < len(prevs) else None
-            pi += 1
-            fixed = None
-            prev_start = p.start_step if p is not None else None
-            if p is not None and now_step <= p.start_step < now_step + freeze_steps and mask[p.start_step]:
-                fixed = p.start_step
-            execs_r.append((d, np.flatnonzero(mask), fixed, False, prev_start))
-        # Cap executions at what can fit (start-to-start spacing >= max(duration, min_spacing)).
-        free = [x for x in execs_r if not x[3]]
-        if free and free[0][1].size:
-            span = int(free[0][1][-1] - free[0][1][0])
-            cap = 1 + span // max(1, max(free[0][0], spacing))
-            free = free[:cap]
-        elif free:
-            free = []
-        execs_r = [x for x in execs_r if x[3]] + free
-        if not execs_r:
-            if dropped_fixed and dropped_fixed[-1][0] == rid:
-                continue  # already reported as interrupted
+        setup_s = config.instrument_for(spec.band, spec.instrument).setup_s
+        lst, interrupted = _request_executions(spec, r, feas, prevs, setup_s=setup_s, step_s=step_s,
+                                               now_step=now_step, freeze_steps=freeze_steps)
+        if interrupted is not None:
+            dropped_fixed.append((rid, interrupted))
+        if lst:
+            keep.append(r)
+            plans.append(lst)
+        elif interrupted is None:
+            d0 = int(feas.duration_steps[r])
             unscheduled[rid] = never_feasible_reason(feas.reasons[r], feas.ok[r], now_step, d0, step_s)
-            continue
-        keep.append(r)
-        exec_specs.append(execs_r)
 
     reqs = [requests[r] for r in keep]
-    n = len(reqs)
     rows = np.array(keep, dtype=np.int64)
     insts = [config.instrument_for(s.band, s.instrument).name for s in reqs]
-    bands = [s.band for s in reqs]
     base = np.array([science_base_value(s, program_weights) for s in reqs], dtype=np.float64)
-    spacing = np.array([int(math.ceil((s.min_spacing_s or 0.0) / step_s - 1e-9)) for s in reqs], dtype=np.int64)
+    execs = _executions(plans, rows, feas.merit, base, now_step, n_t, bucket_steps)
+    start_ok, end_ok = _start_and_end_masks(execs, len(reqs), n_t)
+    alt_m, az_m = (alt[rows], az[rows]) if reqs else (alt[:0], az[:0])
+    T, tmax = pair_transition_steps(config, step_s, alt_m, az_m, insts, [s.band for s in reqs], end_ok, start_ok,
+                                    bucket_steps=transition_bucket_steps)
+    _release_clashing_fixed(execs, T)
+    return Problem(
+        config=config, step_s=step_s, n_t=n_t, now_step=now_step, requests=reqs,
+        request_ids=np.array([int(feas.request_ids[r]) if requests[r].id is None else int(requests[r].id)
+                              for r in keep], dtype=np.int64),
+        feas_rows=rows, base_value=base, instruments=insts, bands=[s.band for s in reqs],
+        spacing_steps=np.array([_steps(s.min_spacing_s or 0.0, step_s) for s in reqs], dtype=np.int64),
+        T=T, tmax=tmax, execs=execs, mean_az=_mean_azimuths(az_m, start_ok),
+        stability_weight=stability_weight if previous else 0.0,
+        stability_window=stability_window, unscheduled=unscheduled, dropped_fixed=dropped_fixed,
+    )
 
+
+def _steps(seconds: float, step_s: int) -> int:
+    """A duration in whole grid steps, rounded up (float noise ignored)."""
+    return int(math.ceil(seconds / step_s - 1e-9))
+
+
+def _previous_by_request(previous: Sequence[PlanEntry] | None, now_step: int) -> dict[int, list[PlanEntry]]:
+    """Entries of the previous plan not yet over, by request id, in order of start."""
+    out: dict[int, list[PlanEntry]] = {}
+    for e in previous or ():
+        if e.end_step > now_step:
+            out.setdefault(int(e.request_id), []).append(e)
+    for v in out.values():
+        v.sort(key=lambda e: e.start_step)
+    return out
+
+
+def _request_executions(spec: RequestSpec, r: int, feas, prevs: list[PlanEntry], *, setup_s: float, step_s: int,
+                        now_step: int, freeze_steps: int) -> tuple[list[_ExecutionPlan], str | None]:
+    """The executions of one request tonight, and why its entry in progress was interrupted
+    (None if it was not). The first execution still owed may be shorter (partial exposure
+    credited); later ones need the full setup + exposure."""
+    d0 = int(feas.duration_steps[r])
+    d_full = max(d0, _steps(setup_s + spec.exposure_s, step_s))
+    so0 = feas.start_ok[r].copy()
+    so0[:now_step] = False
+    so_full = so0 if d_full == d0 else _sliding_all(feas.ok[r], d_full)
+    so_full[:now_step] = False
+    out: list[_ExecutionPlan] = []
+    interrupted = None
+    pi = 0
+    # In progress: kept exactly while its remaining steps stay feasible.
+    if prevs and prevs[0].start_step < now_step:
+        p = prevs[0]
+        pi = 1
+        if feas.ok[r, now_step:p.end_step].all():
+            out.append(_ExecutionPlan(p.end_step - p.start_step, np.array([p.start_step]), p.start_step, True,
+                                      p.start_step))
+        else:
+            interrupted = "interrupted: " + failing_constraint(feas.reasons[r, now_step:p.end_step])
+    queue = list(prevs[pi:])
+    for k in range(max(0, spec.remaining_repeats - len(out))):
+        d = d0 if (k == 0 and not out) else d_full
+        mask = so0 if d == d0 else so_full
+        # Previous entries are matched to the executions still owed in order; one that can no
+        # longer start where it stood yields to the next one that can (else that one, kept
+        # where it stands, would have to wait for a repeat that cannot come first).
+        while len(queue) > 1 and not _can_start(mask, queue[0]) and _can_start(mask, queue[1]):
+            queue.pop(0)
+        p = queue.pop(0) if queue else None
+        fixed = None
+        if p is not None and now_step <= p.start_step < now_step + freeze_steps and mask[p.start_step]:
+            fixed = p.start_step
+        out.append(_ExecutionPlan(d, np.flatnonzero(mask), fixed, False, p.start_step if p is not None else None))
+    # Cap executions at what can fit (start-to-start spacing >= max(duration, min_spacing)); a
+    # repeat with no feasible start (the first may be shorter: partial exposure credited) ends
+    # the list, since repeats run in order.
+    free = [x for x in out if not x.in_progress]
+    empty = [i for i, x in enumerate(free) if x.starts.size == 0]
+    free = free[:empty[0]] if empty else free
+    if free and free[0].starts.size:
+        span = int(free[0].starts[-1] - free[0].starts[0])
+        spacing = _steps(spec.min_spacing_s or 0.0, step_s)
+        free = free[:1 + span // max(1, max(free[0].duration, spacing))]
+    else:
+        free = []
+    return [x for x in out if x.in_progress] + free, interrupted
+
+
+def _can_start(mask: np.ndarray, entry: PlanEntry) -> bool:
+    return 0 <= entry.start_step < mask.size and bool(mask[entry.start_step])
+
+
+def _executions(plans: list[list[_ExecutionPlan]], rows: np.ndarray, merit_all: np.ndarray, base: np.ndarray,
+                now_step: int, n_t: int, bucket_steps: int) -> list[Execution]:
+    """Execution nodes with their value buckets (objective.merit_buckets)."""
     execs: list[Execution] = []
-    for i, (r, lst) in enumerate(zip(keep, exec_specs)):
-        merit = np.asarray(feas.merit[r], dtype=np.float64)
-        for k, (d, starts, fixed, in_prog, prev_start) in enumerate(lst):
-            if in_prog:
-                s = int(starts[0])
+    for i, (r, lst) in enumerate(zip(rows, plans)):
+        merit = np.asarray(merit_all[r], dtype=np.float64)
+        for k, x in enumerate(lst):
+            if x.in_progress:
+                s = int(x.starts[0])
                 m = float(merit[s]) if 0 <= s < n_t and merit[s] > 0 else float(merit[now_step:].max(initial=0.0))
-                coef = np.array([max(1, int(round(VALUE_SCALE * base[i] * max(m, 1e-6))))])
-                execs.append(Execution(i, k, d, starts, starts.copy(), starts.copy(), coef, fixed, True, prev_start))
+                coef = np.array([value_coef(base[i], max(m, 1e-6))])
+                execs.append(Execution(i, k, x.duration, x.starts, x.starts.copy(), x.starts.copy(), coef,
+                                       x.fixed_start, True, x.prev_start))
                 continue
             mask = np.zeros(n_t, dtype=bool)
-            mask[starts] = True
+            mask[x.starts] = True
             lo, hi, coef = merit_buckets(mask, merit, base[i], max(1, bucket_steps))
-            execs.append(Execution(i, k, d, starts, lo, hi, coef, fixed, False, prev_start))
+            execs.append(Execution(i, k, x.duration, x.starts, lo, hi, coef, x.fixed_start, False, x.prev_start))
+    return execs
 
-    # Transition bounds between requests from where each can end to where each can start.
+
+def _start_and_end_masks(execs: list[Execution], n: int, n_t: int) -> tuple[np.ndarray, np.ndarray]:
+    """[n_req, n_t] masks: where each request can start, and where it can end (its last step is t-1)."""
     end_ok = np.zeros((n, n_t), dtype=bool)
     start_ok = np.zeros((n, n_t), dtype=bool)
     for ex in execs:
         start_ok[ex.req, ex.starts[(ex.starts >= 0) & (ex.starts < n_t)]] = True
         ends = ex.starts + ex.duration
         end_ok[ex.req, ends[ends < n_t]] = True
-    T, tmax = pair_transition_steps(config, step_s, alt[rows] if n else alt[:0], az[rows] if n else az[:0],
-                                    insts, bands, end_ok, start_ok, bucket_steps=transition_bucket_steps)
-    _release_clashing_fixed(execs, T)
-    mean_az = np.zeros(n)
-    for r in range(n):
-        a = np.radians(az[rows[r]][start_ok[r]]) if start_ok[r].any() else np.radians(az[rows[r]])
-        mean_az[r] = np.degrees(np.arctan2(np.sin(a).mean(), np.cos(a).mean())) % 360.0 if a.size else 0.0
-    return Problem(
-        config=config, step_s=step_s, n_t=n_t, now_step=now_step, requests=reqs,
-        request_ids=np.array([int(feas.request_ids[r]) if requests[r].id is None else int(requests[r].id)
-                              for r in keep], dtype=np.int64),
-        feas_rows=rows, base_value=base, instruments=insts, bands=bands, spacing_steps=spacing,
-        T=T, tmax=tmax, execs=execs, mean_az=mean_az, stability_weight=stability_weight if previous else 0.0,
-        stability_window=stability_window, unscheduled=unscheduled, dropped_fixed=dropped_fixed,
-    )
+    return start_ok, end_ok
+
+
+def _mean_azimuths(az: np.ndarray, start_ok: np.ndarray) -> np.ndarray:
+    """Circular mean azimuth of each request over its feasible starts (all steps if none)."""
+    out = np.zeros(az.shape[0])
+    for r in range(az.shape[0]):
+        a = np.radians(az[r][start_ok[r]]) if start_ok[r].any() else np.radians(az[r])
+        out[r] = np.degrees(np.arctan2(np.sin(a).mean(), np.cos(a).mean())) % 360.0 if a.size else 0.0
+    return out
 
 
 def _release_clashing_fixed(execs: list[Execution], T: np.ndarray) -> None:
@@ -307,15 +347,3 @@ def check_model_feasible(problem: Problem, plan: Sequence[Placement]) -> list[st
             if b.start - a.start < max(problem.execs[a.exec_index].duration, int(problem.spacing_steps[r])):
                 errs.append(f"request {r}: spacing")
     return errs
-
-
-def objective_of(problem: Problem, plan: Sequence[Placement]) -> tuple[int, int]:
-    """(science objective, stability bonus) in integer objective units."""
-    sci = 0
-    stab = 0
-    for p in plan:
-        ex = problem.execs[p.exec_index]
-        sci += ex.coef_at(p.start)
-        if ex.prev_start is not None and abs(p.start - ex.prev_start) <= problem.stability_window:
-            stab += problem.stability_coef(p.exec_index)
-    return sci, stab

@@ -1,16 +1,16 @@
-"""Time between two consecutive plan entries: slew, settle, instrument or filter change.
+"""Transition bounds between consecutive plan entries: slew, settle, instrument or filter change.
 
-Two views of the same physics:
-
-* ``transition_s`` / ``transition_steps``: the TRUE transition from where the previous target
-  is when its entry ends to where the next target is when its entry starts (the plan checker
-  and the greedy's final polish use this).
 * ``pair_transition_steps``: an upper bound per ordered pair of requests, valid at every pair
-  of times at which the two can follow each other tonight (the CP-SAT model and the greedy
-  use this). It is computed on time buckets: in each bucket the positions a target can have
-  are boxed (azimuth centre +- half width on the circle, altitude min..max), the slew between
-  two boxes is bounded by the largest distance between them, and the pair's bound is the
-  largest over the buckets where a handover between them is possible.
+  of times at which the two can follow each other tonight (the CP-SAT model, the dispatch and
+  the bounds use this). It is computed on time buckets: in each bucket the positions a target
+  can have are boxed (azimuth centre +- half width on the circle, altitude min..max), the slew
+  between two boxes is bounded by the largest distance between them, and the pair's bound is
+  the largest over the buckets where a handover between them is possible.
+* ``worst_transition_steps``: a bound into an entry from anything at any time (tmax).
+* ``slew_s``: the axis motion between two positions (reported on each plan entry).
+
+The TRUE transition of a finished plan is recomputed apart, by the checker
+(checker.true_transition_s), which must not share this code.
 
 Slew model (physics sheet, telescope motion): both axes move at once, so the slew takes
 max(d_az / rate_az, d_alt / rate_alt); azimuth takes the short way (no cable wrap modelled);
@@ -37,19 +37,6 @@ def az_distance_deg(az1, az2):
     return np.minimum(d, 360.0 - d)
 
 
-def change_s(config: ObservatoryConfig, inst_from: str | None, band_from: str | None,
-             inst_to: str, band_to: str) -> float:
-    """Instrument or filter change before the next entry (0 when nothing changes)."""
-    if inst_from is None:
-        return 0.0
-    new = _instrument(config, inst_to)
-    if inst_from != inst_to:
-        return float(new.instrument_change_s)
-    if band_from != band_to:
-        return float(new.filter_change_s)
-    return 0.0
-
-
 def _instrument(config: ObservatoryConfig, name: str):
     for inst in config.instruments:
         if inst.name == name:
@@ -63,12 +50,6 @@ def slew_s(config: ObservatoryConfig, alt1, az1, alt2, az2):
     daz = az_distance_deg(az1, az2)
     dalt = np.abs(np.asarray(alt2, dtype=np.float64) - np.asarray(alt1, dtype=np.float64))
     return np.maximum(daz / tel.slew_rate_az_deg_s, dalt / tel.slew_rate_alt_deg_s)
-
-
-def transition_s(config: ObservatoryConfig, alt1, az1, inst_from, band_from, alt2, az2, inst_to, band_to) -> float:
-    """True transition in seconds: slew + settle + instrument/filter change."""
-    return float(slew_s(config, alt1, az1, alt2, az2)) + config.telescope.settle_s + change_s(
-        config, inst_from, band_from, inst_to, band_to)
 
 
 def seconds_to_steps(seconds, step_s: int):

@@ -7,7 +7,6 @@ Used by `nightplan web` (uvicorn in the main thread, its own signal handling) an
 from __future__ import annotations
 
 import ipaddress
-import os
 import socket
 import stat
 import threading
