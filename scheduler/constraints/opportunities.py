@@ -316,3 +316,6 @@ class OpportunityCache:
                 d = self._v[(ck, rk)]
                 out[i] = [d[n] for n in nights]
         return out
+
+
+SHARED_CACHE = OpportunityCache()  # the process's cache: builds that are not handed one use it

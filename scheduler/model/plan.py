@@ -39,6 +39,12 @@ class PlanEntry:
     band: str = ""
     instrument: str = ""
     fixed: bool = False  # kept from the previous plan (in progress or inside the freeze horizon)
+    # Factors of ``value`` (docs/solver.md): program tier, urgency and the remaining
+    # opportunities it came from (nights, tonight included), the program's balance factor.
+    tier: int = 2
+    urgency: float = 1.0
+    opportunities_left: int | None = None
+    balance: float = 1.0
 
 
 @dataclass(frozen=True)

@@ -158,6 +158,12 @@ class RequestFactors:
     def base(self) -> np.ndarray:
         return self.weight * self.priority_weight * self.exposure_h * self.urgency * self.balance
 
+    def take(self, rows) -> "RequestFactors":
+        """The factors of these rows only."""
+        rows = np.asarray(rows, dtype=np.int64)
+        return RequestFactors(*(getattr(self, f)[rows] for f in ("tier", "weight", "priority_weight", "exposure_h",
+                                                                 "opportunities_left", "urgency", "balance")))
+
     def row(self, i: int) -> dict[str, float | int]:
         return {"tier": int(self.tier[i]), "program_weight": float(self.weight[i]),
                 "priority_weight": float(self.priority_weight[i]), "exposure_h": float(self.exposure_h[i]),
@@ -184,3 +190,11 @@ def request_factors(specs: Sequence, programs: Mapping[str, ProgramState], oppor
         urgency=np.asarray(urgency_factor(n_left, urgency_max), dtype=np.float64).reshape(len(specs)),
         balance=np.array([bal.get(s.program, 1.0) for s in specs], dtype=np.float64),
     )
+
+
+def as_programs(programs: Mapping[str, "float | ProgramState"] | None) -> dict[str, ProgramState]:
+    """Programs as ProgramState; a plain number is a program weight (tier 2, no allocation)."""
+    out: dict[str, ProgramState] = {}
+    for code, p in (programs or {}).items():
+        out[code] = p if isinstance(p, ProgramState) else ProgramState(code, weight=float(p))
+    return out
