@@ -18,6 +18,8 @@ import click
 
 from scheduler.model.config import ObservatoryConfig, load_config, starter_config_text
 from scheduler.model.errors import InputError, NotFoundError
+from scheduler.model.request import RequestStatus
+from scheduler.report.safe_text import clean
 
 CONFIG_FILE = "observatory.toml"
 MAX_IMPORT_BYTES = 10_000_000
@@ -60,7 +62,7 @@ def echo_json(obj: Any) -> None:
 
 
 def warn(msg: str) -> None:
-    click.echo(f"nightplan: warning: {msg}", err=True)
+    click.echo(f"nightplan: warning: {clean(msg)}", err=True)
 
 
 def console():
@@ -133,7 +135,7 @@ def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float) -> None
     from scheduler.db import store
 
     prog = c.db().retrying(lambda s: store.program_dict(store.add_program(s, code, pi, hours, weight)))
-    click.echo(f"program {prog['code']} added (PI {prog['pi']}, {prog['hours']:g} h, weight {prog['weight']:g})")
+    click.echo(f"program {prog['code']} added (PI {clean(prog['pi'])}, {prog['hours']:g} h, weight {prog['weight']:g})")
 
 
 @program.command("list")
@@ -148,7 +150,7 @@ def program_list(c: Ctx, as_json: bool) -> None:
     if as_json:
         echo_json(rows)
         return
-    from rich.table import Table
+    from scheduler.report.safe_text import SafeTable as Table
 
     t = Table("code", "PI", "hours", "weight", title="programs")
     for r in rows:
@@ -294,7 +296,7 @@ def request_import(c: Ctx, file: str) -> None:
 
 
 @request.command("list")
-@click.option("--status", type=click.Choice(["queued", "planned", "done", "failed", "withdrawn", "expired"]))
+@click.option("--status", type=click.Choice([s.value for s in RequestStatus]))
 @click.option("--program", help="only this program")
 @click.option("--json", "as_json", is_flag=True, help="print a JSON array")
 @pass_ctx
@@ -307,7 +309,7 @@ def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool)
     if as_json:
         echo_json(rows)
         return
-    from rich.table import Table
+    from scheduler.report.safe_text import SafeTable as Table
 
     t = Table("id", "program", "target", "RA", "Dec", "band", "exp s", "prio", "limits", "status",
               title=f"requests ({len(rows)})")
@@ -352,7 +354,7 @@ def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> N
     for k, v in d.items():
         if k == "windows" or v is None:
             continue
-        click.echo(f"{k:>20}: {v}")
+        click.echo(f"{k:>20}: {clean(v)}")
     if night:
         w = d["windows"]
         click.echo(f"{'night':>20}: {night}")
@@ -441,7 +443,7 @@ def main(argv: list[str] | None = None) -> None:
         sys.exit(2 if e.exit_code in (1, 2) else e.exit_code)
     except (InputError, NotFoundError) as e:
         msg = e.args[0] if isinstance(e, NotFoundError) else str(e)
-        click.echo(f"nightplan: error: {msg}", err=True)
+        click.echo(f"nightplan: error: {clean(msg)}", err=True)
         sys.exit(2)
     except KeyboardInterrupt:
         click.echo("nightplan: interrupted", err=True)
@@ -453,6 +455,6 @@ def main(argv: list[str] | None = None) -> None:
 
         kind = "database" if isinstance(e, SQLAlchemyError) else type(e).__name__
         first = str(e).strip().splitlines()[0] if str(e).strip() else repr(e)
-        click.echo(f"nightplan: error: {kind}: {first[:300]} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
+        click.echo(f"nightplan: error: {kind}: {clean(first[:300])} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
         sys.exit(1)
 

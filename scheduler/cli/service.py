@@ -11,6 +11,7 @@ import click
 
 from scheduler.cli.main import Ctx, echo_json, pass_ctx
 from scheduler.model.errors import InputError
+from scheduler.report.safe_text import clean
 
 POLL_RANGE = (0.2, 600.0)
 
@@ -157,7 +158,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
         with db.session() as s:
             o = s.get(ReplanOrder, oid)
             result, version = o.result or "", o.plan_id
-        click.echo(f"order {oid} done: {result}")
+        click.echo(f"order {oid} done: {clean(result)}")
         if version is None:
             sys.exit(1)
         return
@@ -189,9 +190,9 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
 
     db.retrying(finish)
     if built is None or built.version is None:
-        click.echo(f"nightplan: error: order {oid} {result}", err=True)
+        click.echo(f"nightplan: error: order {oid} {clean(result)}", err=True)
         sys.exit(1)
-    click.echo(f"order {oid} done: {result}")
+    click.echo(f"order {oid} done: {clean(result)}")
 
 
 @click.command()
@@ -222,20 +223,20 @@ def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
         click.echo(f"plan:       version {plan_d['version']} for the night of {plan_d['night']}, "
                    f"built {plan_d['created_at']} from {plan_d['planned_from']}, {plan_d['entries']} entries, "
                    f"{plan_d['solver_status']}")
-        click.echo(f"reason:     {plan_d['reason']}")
+        click.echo(f"reason:     {clean(plan_d['reason'])}")
     else:
         click.echo("plan:       none yet")
     if rep_d:
-        click.echo(f"conditions: report {rep_d['report']} from {rep_d['source']}, issued {rep_d['issued_at']}, "
+        click.echo(f"conditions: report {rep_d['report']} from {clean(rep_d['source'])}, issued {rep_d['issued_at']}, "
                    f"received {rep_d['received_at']} ({rep_d['samples']} samples)")
     else:
         click.echo("conditions: none stored")
     click.echo(f"orders:     {len(pending)} pending")
     for o in pending:
         taken = f", taken {o['taken_at']}" if o["taken_at"] else ""
-        click.echo(f"  #{o['id']} {o['requested_at']} by {o['requested_by']}{taken}: {o['reason']}")
+        click.echo(f"  #{o['id']} {o['requested_at']} by {clean(o['requested_by'])}{taken}: {clean(o['reason'])}")
     if last_d:
-        click.echo(f"last order: #{last_d['id']} done {last_d['done_at']}: {last_d['result']}")
+        click.echo(f"last order: #{last_d['id']} done {last_d['done_at']}: {clean(last_d['result'])}")
 
 
 def register(cli: click.Group) -> None:

@@ -27,10 +27,34 @@ def alembic_config(db: Database) -> Config:
 
 
 def _with_connection(db: Database, fn) -> None:
+    """Run ``fn(cfg)`` in one transaction: a failed upgrade leaves the schema as it was.
+
+    SQLite needs two things for that. Python's driver opens a transaction only before a data
+    change, so schema changes would commit one by one: the transaction is begun explicitly.
+    Foreign-key enforcement is off meanwhile: a batch migration copies a table, drops the
+    original and renames the copy, and dropping a table others refer to fails with it on. The
+    keys are checked before the commit instead."""
     cfg = alembic_config(db)
-    with db.engine.begin() as conn:
-        cfg.attributes["connection"] = conn
-        fn(cfg)
+    sqlite = db.engine.dialect.name == "sqlite"
+    with db.engine.connect() as conn:
+        if sqlite:  # only outside a transaction does SQLite take this pragma
+            conn.exec_driver_sql("PRAGMA foreign_keys=OFF")
+            conn.commit()
+        try:
+            with conn.begin():
+                if sqlite:
+                    conn.exec_driver_sql("BEGIN IMMEDIATE")
+                cfg.attributes["connection"] = conn
+                fn(cfg)
+                if sqlite:
+                    broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                    if broken:
+                        raise RuntimeError(f"the migration left {len(broken)} broken foreign keys "
+                                           f"(first: {tuple(broken[0])}); nothing was changed")
+        finally:
+            if sqlite:
+                conn.exec_driver_sql("PRAGMA foreign_keys=ON")
+                conn.commit()
 
 
 def upgrade(db: Database, revision: str = "head") -> None:
