@@ -103,6 +103,10 @@ class StoredEntry:
     moon_sep_deg: float | None
     value: float
     fixed: bool
+    tier: int = 2
+    urgency: float = 1.0
+    opportunities_left: int | None = None
+    balance: float = 1.0
 
 
 @dataclass(frozen=True)

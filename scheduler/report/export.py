@@ -47,7 +47,7 @@ ENTRY_FIELDS = (
     "setup_s", "airmass_start", "airmass_end", "predicted_fwhm_arcsec", "predicted_pwv_mm", "transmission",
     "merit",
     "execution", "program", "instrument", "exposure_s", "transition_s", "moon_sep_deg", "value", "fixed",
-    "start_local", "end_local",
+    "start_local", "end_local", "tier", "urgency", "opportunities_left",
 )
 
 
@@ -108,6 +108,9 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
             "fixed": bool(e.fixed),
             "start_local": _local(e.start, tz),
             "end_local": _local(e.end, tz),
+            "tier": int(e.tier),
+            "urgency": _r(e.urgency, 4),
+            "opportunities_left": e.opportunities_left,
         })
 
     unscheduled = []

@@ -35,8 +35,7 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
-DEFAULT_TIER = 2
-
+from scheduler.model.program import DEFAULT_TIER, ProgramState  # noqa: F401  (re-exported: the value's input)
 
 def priority_weight(priority, ratio: float = 2.0):
     """``ratio ** (priority - 5)``; priority 1..10 (array or scalar)."""
@@ -50,25 +49,6 @@ def urgency_factor(n_left, urgency_max: float = 4.0):
     n = np.asarray(n_left, dtype=np.float64)
     u = np.where(n >= 1, 1.0 + (float(urgency_max) - 1.0) / np.maximum(n, 1.0), float(urgency_max))
     return float(u) if u.ndim == 0 else u
-
-
-@dataclass(frozen=True)
-class ProgramState:
-    """What the value needs to know of a program."""
-
-    code: str
-    tier: int = DEFAULT_TIER
-    weight: float = 1.0
-    hours_allocated: float = 0.0  # 0: no allocation, not balanced
-    hours_charged: float = 0.0
-
-    @property
-    def used_fraction(self) -> float | None:
-        return None if self.hours_allocated <= 0 else self.hours_charged / self.hours_allocated
-
-    @property
-    def past_allocation(self) -> bool:
-        return self.hours_allocated > 0 and self.hours_charged >= self.hours_allocated
 
 
 def balance_factors(programs: Iterable[ProgramState], balance_max: float = 2.0,
