@@ -47,7 +47,7 @@ ENTRY_FIELDS = (
     "setup_s", "airmass_start", "airmass_end", "predicted_fwhm_arcsec", "predicted_pwv_mm", "transmission",
     "merit",
     "execution", "program", "instrument", "exposure_s", "transition_s", "moon_sep_deg", "value", "fixed",
-    "start_local", "end_local", "tier", "urgency", "opportunities_left",
+    "start_local", "end_local", "tier", "urgency", "opportunities_left", "balance",
 )
 
 
@@ -111,6 +111,7 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
             "tier": int(e.tier),
             "urgency": _r(e.urgency, 4),
             "opportunities_left": e.opportunities_left,
+            "balance": _r(e.balance, 4),
         })
 
     unscheduled = []
