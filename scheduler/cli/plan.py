@@ -1,5 +1,5 @@
-"""Commands for queue observers and operators: `plan build|show|list|export|chart|why`, `next`,
-`record`, and `demo`. Thin: parse, call the planner or a report, print."""
+"""Commands for queue observers and operators: `plan build|show|list|export|chart|check|why`,
+`next` and `record`. Thin: parse, call the planner or a report, print."""
 
 from __future__ import annotations
 
@@ -9,18 +9,14 @@ from datetime import date, datetime, timezone
 
 import click
 
-from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from scheduler.cli.common import Ctx, console, echo_json, now_or, parse_night, pass_ctx, warn
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import OutcomeResult, RequestStatus
-from scheduler.model.timegrid import iso, parse_time
+from scheduler.model.timegrid import iso
 from scheduler.report.safe_text import cell, clean
 
 
 # --------------------------------------------------------------------------- helpers
-
-def _now(text: str | None, field: str) -> datetime:
-    return parse_time(text, field) if text else datetime.now(timezone.utc)
-
 
 def _version(version: int | None) -> int | None:
     if version is not None and version < 1:
@@ -71,7 +67,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
     reason = (reason or "").strip()
     if not reason or len(reason) > 2000:
         raise InputError("reason", "must be 1 to 2000 characters")
-    now = _now(now_text, "now")
+    now = now_or(now_text, "now")
     config = c.config()
     db = c.db()
     planner = Planner(config)
@@ -201,7 +197,7 @@ def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: st
     from scheduler.report.export import write_atomic
 
     fmt = chart_format(output)
-    at = _now(at_text, "at")
+    at = now_or(at_text, "at")
     doc, night, config = load_document(c, version)
     with c.db().session() as s:
         samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
@@ -282,7 +278,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
     from scheduler.planning.planner import Planner
     from scheduler.report.table import entry_line, hm
 
-    at = _now(at_text, "at")
+    at = now_or(at_text, "at")
     config = c.config()
     night_d = Planner(config).coming_night(at)
     with c.db().session() as s:
@@ -362,23 +358,7 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
                f"{charged_h:.2f} h charged to program {code}. The next plan build reflects it.")
 
 
-# --------------------------------------------------------------------------- demo
-
-@click.command("demo")
-@click.option("--out", "out_dir", metavar="DIR", help="folder for the demo's database, config, chart and exports "
-                                                      "(default: a new temporary folder)")
-@click.option("--time-limit", type=float, default=8.0, show_default=True, help="solver time limit per build, seconds")
-def demo(out_dir: str | None, time_limit: float) -> None:
-    """The whole job on the invented scenario: queue, forecast, plan, chart, export, re-plan."""
-    from scheduler.demo import run_demo
-
-    if not (0.1 <= time_limit <= 600):
-        raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 600 seconds")
-    run_demo(out_dir, time_limit)
-
-
 def register(cli: click.Group) -> None:
     cli.add_command(plan)
     cli.add_command(next_cmd)
     cli.add_command(record)
-    cli.add_command(demo)

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from scheduler.cli.common import Ctx, console, echo_json, parse_night, pass_ctx, warn
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso
 from scheduler.report.safe_text import clean

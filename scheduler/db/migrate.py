@@ -1,4 +1,5 @@
-"""Schema upgrades with Alembic (the scripts live in the project's migrations/ folder)."""
+"""Schema upgrades with Alembic. The scripts ship inside the package (``scheduler/db/migrations/``,
+package data), so an installed wheel finds them as a source checkout does."""
 
 from __future__ import annotations
 
@@ -11,14 +12,14 @@ from alembic.script import ScriptDirectory
 
 from scheduler.db.session import Database
 
-MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
+MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 
 
 def alembic_config(db: Database) -> Config:
     if not (MIGRATIONS_DIR / "env.py").is_file():
         raise RuntimeError(
-            f"migration scripts not found at {MIGRATIONS_DIR}; install nightplan from its source "
-            "folder with `pip install -e .`"
+            f"migration scripts not found at {MIGRATIONS_DIR}; this nightplan installation is incomplete "
+            "(reinstall it: `pip install --force-reinstall nightplan`)"
         )
     cfg = Config()
     cfg.set_main_option("script_location", str(MIGRATIONS_DIR))

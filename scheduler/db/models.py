@@ -4,7 +4,7 @@ Column types follow the annotations (``Base.type_annotation_map``): every ``date
 stored as naive UTC and read back as aware UTC (``UTCDateTime``), so SQLite and PostgreSQL
 behave alike; ``dict`` is a JSON column; a request's status and an outcome's result are their
 enums' values, held to them by a CHECK constraint (portable: no database enum type). The
-Alembic migrations in ``migrations/`` must agree with these models (tests/test_db.py compares
+Alembic migrations in ``db/migrations/`` must agree with these models (tests/test_db.py compares
 them).
 """
 
