@@ -95,9 +95,10 @@ def entry_failures(config: ObservatoryConfig, night: Night, sky_cache: SkyCache,
 
 
 def outranking_requests(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, new: Sequence[RequestSpec],
-                        remaining: Sequence[RequestSpec], weights: dict[str, float], cond: ConditionsGrid,
-                        now: datetime) -> list[str]:
-    """New requests worth a re-plan (see module doc)."""
+                        remaining: Sequence[RequestSpec], weights, cond: ConditionsGrid,
+                        now: datetime, opportunity_cache=None) -> list[str]:
+    """New requests worth a re-plan (see module doc). weights: the programs (ProgramState) or
+    plain weights; opportunity_cache: the planner's (default: the process-wide one)."""
     i0 = night.step_of(now)
     if not new or i0 >= night.n_times:
         return []
@@ -105,7 +106,8 @@ def outranking_requests(config: ObservatoryConfig, night: Night, sky_cache: SkyC
     # The planner's value (objective.value_factors): tier first, then the value before merit,
     # with urgency from the same opportunities count (tonight counted: all of these can start).
     both = list(remaining) + list(new)
-    later = count_opportunities(config, both, night.date, cache=SHARED_CACHE).future()
+    cache = opportunity_cache if opportunity_cache is not None else SHARED_CACHE
+    later = count_opportunities(config, both, night.date, cache=cache).future()
     f = value_factors(config, both, weights, 1 + later)
     key = [(-int(t), float(b)) for t, b in zip(f.tier, f.base)]
     floor = min(key[:len(remaining)], default=None)
