@@ -4,7 +4,11 @@ Pure: takes the text, returns samples; reading files and storing reports is the 
 
 CSV: a header line, then one sample per line. Columns (any order; only ``time`` is required):
 
-    time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome
+    time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome,coherence_time_ms
+
+``coherence_time_ms`` (optional) is the atmospheric coherence time tau0 at 500 nm, zenith
+(trade convention, as turbulence monitors report it); adaptive optics uses it for its
+temporal error term.
 
 JSON: either a list of sample objects with those keys, or an object
 ``{"issued": ISO-8601, "source": text, "samples": [...]}``.
@@ -31,7 +35,7 @@ from typing import Any, Iterator, Sequence
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso, parse_time
 
-COLUMNS = ("time", "seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome")
+COLUMNS = ("time", "seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome", "coherence_time_ms")
 REPORT_KEYS = ("issued", "source", "samples")
 
 MAX_BYTES = 5_000_000
@@ -46,6 +50,7 @@ LIMITS: dict[str, tuple[float, float, bool, str]] = {
     "cloud_mag": (0.0, 20.0, False, "mag"),
     "wind_ms": (0.0, 150.0, False, "m/s"),  # above any recorded surface gust (~113 m/s, from memory)
     "humidity_pct": (0.0, 100.0, False, "%"),
+    "coherence_time_ms": (0.0, 1000.0, True, "ms"),  # tau0 at 500 nm is a few ms at good sites (from memory)
 }
 DOME_VALUES = {"open": True, "closed": False}
 
@@ -61,6 +66,7 @@ class Sample:
     wind_ms: float | None = None
     humidity_pct: float | None = None
     dome_open: bool | None = None
+    coherence_time_ms: float | None = None  # tau0 at 500 nm, zenith
 
 
 @dataclass(frozen=True)
@@ -240,6 +246,7 @@ def _sample(raw: dict[str, Any], row: int, src: str) -> Sample:
         wind_ms=_number(raw, "wind_ms", row, src),
         humidity_pct=_number(raw, "humidity_pct", row, src),
         dome_open=dome_open,
+        coherence_time_ms=_number(raw, "coherence_time_ms", row, src),
     )
 
 
@@ -263,5 +270,6 @@ def samples_to_csv(samples: Sequence[Sample]) -> str:
     for s in samples:
         dome = "" if s.dome_open is None else ("open" if s.dome_open else "closed")
         vals = [s.seeing_arcsec, s.pwv_mm, s.cloud_mag, s.wind_ms, s.humidity_pct]
-        w.writerow([iso(s.time)] + ["" if v is None else f"{v:.10g}" for v in vals] + [dome])
+        tau = "" if s.coherence_time_ms is None else f"{s.coherence_time_ms:.10g}"
+        w.writerow([iso(s.time)] + ["" if v is None else f"{v:.10g}" for v in vals] + [dome, tau])
     return out.getvalue()

@@ -106,7 +106,7 @@ _KEY_FIELDS = ("ra_deg", "dec_deg", "band", "instrument", "max_airmass", "min_mo
 
 def request_key(spec: RequestSpec) -> str:
     """Hash of the request fields the count depends on (the exposure still owed included)."""
-    vals = tuple(getattr(spec, f) for f in _KEY_FIELDS) + (round(spec.next_exposure_s, 3),)
+    vals = tuple(getattr(spec, f) for f in _KEY_FIELDS) + (round(spec.next_exposure_s, 3), spec.moving)
     return hashlib.sha1(repr(vals).encode()).hexdigest()[:16]
 
 
@@ -218,14 +218,22 @@ def feasible_nights(config: ObservatoryConfig, requests: Sequence[RequestSpec], 
     out = np.zeros((n_r, n_n), dtype=bool)
     if n_r == 0 or n_n == 0:
         return out
+    # Moving targets (planets, ephemeris tables) are not counted here: their position changes
+    # night to night and the coarse grid holds fixed directions. Every night in their horizon
+    # counts, so they get no urgency from this count (a known limit, docs/solver.md).
+    moving = [i for i, r in enumerate(requests) if r.moving]
+    out[moving] = True
+    fixed = [i for i, r in enumerate(requests) if not r.moving]
+    if not fixed:
+        return out
     grid = _coarse_grid(config, nights)
     # The modelled sky brightness is read only by a request's min_sky_mag: requests without one
     # go through the same static layer with the sky model off (a missing model never fails),
     # which skips the costliest physics; the other constraints are the same code either way.
     no_sky_model = replace(config, bands={k: replace(b, dark_sky_mag=None) for k, b in config.bands.items()})
-    order = sorted(range(n_r), key=lambda i: requests[i].min_sky_mag is None)
+    order = sorted(fixed, key=lambda i: requests[i].min_sky_mag is None)
     jobs = []
-    for b0 in range(0, n_r, _BLOCK):
+    for b0 in range(0, len(order), _BLOCK):
         rows = order[b0:b0 + _BLOCK]
         for with_sky in (True, False):
             part = [i for i in rows if (requests[i].min_sky_mag is not None) == with_sky]

@@ -113,6 +113,9 @@ class Request(Base):
     status: Mapped[RequestStatus] = mapped_column(default=RequestStatus.QUEUED)
     completed_repeats: Mapped[int] = mapped_column(default=0)
     partial_exposure_s: Mapped[float] = mapped_column(default=0.0)
+    guide_star_sep_arcsec: Mapped[float | None]  # AO guide star distance (0: on axis)
+    body: Mapped[str | None] = mapped_column(String(16))  # moving target: a planet or Pluto
+    ephemeris_csv: Mapped[str | None] = mapped_column(Text)  # moving target: the PI's table, canonical CSV
     created_at: Mapped[datetime] = mapped_column(default=utcnow)
     updated_at: Mapped[datetime] = mapped_column(default=utcnow, onupdate=utcnow)
 
@@ -146,6 +149,7 @@ class ConditionsSample(Base):
     wind_ms: Mapped[float | None]
     humidity_pct: Mapped[float | None]
     dome_open: Mapped[bool | None]
+    coherence_time_ms: Mapped[float | None]  # tau0 at 500 nm, zenith
 
     report: Mapped[ConditionsReport] = relationship(back_populates="samples")
 
@@ -206,6 +210,10 @@ class PlanEntry(Base):
     urgency: Mapped[float] = mapped_column(default=1.0, server_default="1")
     opportunities_left: Mapped[int | None]
     balance: Mapped[float] = mapped_column(default=1.0, server_default="1")
+    ra_deg: Mapped[float | None]  # the target's position at the start (a moving target's own)
+    dec_deg: Mapped[float | None]
+    strehl: Mapped[float | None]  # predicted AO Strehl ratio at the start
+    surface_efficiency: Mapped[float | None]  # dish Ruze efficiency at the start
 
     plan: Mapped[Plan] = relationship(back_populates="entries")
 

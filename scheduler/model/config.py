@@ -29,6 +29,11 @@ class Site:
     longitude_deg: float
     elevation_m: float
     timezone: str
+    # Adaptive optics: mean height of the turbulence (metres above the site), for the
+    # isoplanatic angle theta0 = 0.314 r0 / h_bar. A few km at good sites (from memory).
+    turbulence_height_m: float | None = None
+    # Thermal infrared: the air temperature the sky emits at (Celsius; typical night value).
+    air_temperature_c: float = 5.0
 
 
 @dataclass(frozen=True)
@@ -40,6 +45,12 @@ class Telescope:
     slew_rate_az_deg_s: float
     slew_rate_alt_deg_s: float
     settle_s: float
+    # Dish surface accuracy (bands that are not seeing-limited): rms surface error in
+    # micrometres at night, and when sunlit (a sunlit dish deforms); Ruze efficiency below
+    # the floor refuses a band.
+    surface_rms_um: float | None = None
+    surface_rms_day_um: float | None = None  # None: the night value
+    surface_efficiency_floor: float = 0.3
 
 
 @dataclass(frozen=True)
@@ -54,6 +65,7 @@ class Band:
     dark_sky_mag: float | None = None  # V-like sky mag/arcsec^2 at zenith on a dark night
     moon_color_mag: float | None = None  # moonlight colour, band minus V (mag)
     source: str = ""
+    thermal: bool = False  # mid-infrared: the sky's own emission sets the noise
 
     @property
     def sun_alt_limit_deg(self) -> float:
@@ -68,8 +80,17 @@ class Instrument:
     filter_change_s: float  # changing band within this instrument
     instrument_change_s: float  # switching to this instrument from another
     fwhm_arcsec: float = 0.0  # instrument's own image blur, added in quadrature
-    ao_seeing_limit_arcsec: float | None = None  # adaptive optics corrects when seeing is below this
+    ao_seeing_limit_arcsec: float | None = None  # fallback switch: AO corrects when seeing is below this
     ao_min_wavelength_um: float = 1.0
+    # AO from the turbulence (takes precedence over the switch when the pitch is given):
+    ao_actuator_pitch_m: float | None = None  # actuator spacing projected on the primary
+    ao_fitting_coeff: float = 0.3  # a_F in a_F (d / r0)^(5/3); ~0.3 continuous facesheet (from memory)
+    ao_strehl_min: float = 0.3  # the corrected core counts when the Strehl ratio reaches this
+    ao_servo_lag_ms: float | None = None  # loop delay, for the temporal term (needs a coherence time)
+
+    @property
+    def ao_turbulence_model(self) -> bool:
+        return self.ao_actuator_pitch_m is not None
 
 
 @dataclass(frozen=True)
@@ -245,6 +266,8 @@ def _site(t: _Table) -> Site:
         longitude_deg=t.num("longitude_deg", -180, 180),
         elevation_m=t.num("elevation_m", -500, 9000),
         timezone=tz,
+        turbulence_height_m=t.num("turbulence_height_m", 0, 30000, required=False, lo_open=True),
+        air_temperature_c=t.num("air_temperature_c", -90, 60, 5.0),
     )
     t.done()
     return s
@@ -259,8 +282,13 @@ def _telescope(t: _Table) -> Telescope:
         slew_rate_az_deg_s=t.num("slew_rate_az_deg_s", 0, 100, lo_open=True),
         slew_rate_alt_deg_s=t.num("slew_rate_alt_deg_s", 0, 100, lo_open=True),
         settle_s=t.num("settle_s", 0, 3600),
+        surface_rms_um=t.num("surface_rms_um", 0, 1e5, required=False, lo_open=True),
+        surface_rms_day_um=t.num("surface_rms_day_um", 0, 1e5, required=False, lo_open=True),
+        surface_efficiency_floor=t.num("surface_efficiency_floor", 0, 1, 0.3),
     )
     t.done()
+    if tel.surface_rms_day_um is not None and tel.surface_rms_um is None:
+        raise ConfigError("telescope.surface_rms_day_um", "needs surface_rms_um (the night value) as well")
     if tel.max_altitude_deg <= tel.min_altitude_deg:
         raise ConfigError("telescope.max_altitude_deg", f"must be above min_altitude_deg ({tel.min_altitude_deg})")
     return tel
@@ -278,8 +306,12 @@ def _band(t: _Table) -> Band:
         dark_sky_mag=t.num("dark_sky_mag", -10, 30, required=False),
         moon_color_mag=t.num("moon_color_mag", -10, 10, required=False),
         source=t.text("source", "-"),
+        thermal=t.flag("thermal", False),
     )
     t.done()
+    if b.thermal and b.tau_dry == 0 and b.extinction_mag == 0:
+        raise ConfigError(f"{t.name}.tau_dry", "a thermal band needs a dry opacity above 0 (the sky's emissivity "
+                                               "at zero water vapour sets its best background)")
     if len(b.name) > 16 or not b.name.replace("_", "").replace("-", "").isalnum():
         raise ConfigError(f"{t.name}.name", "band names are 1-16 letters, digits, '-' or '_'")
     return b
@@ -301,6 +333,10 @@ def _instrument(t: _Table, bands: dict[str, Band]) -> Instrument:
         fwhm_arcsec=t.num("fwhm_arcsec", 0, 1e5, 0.0),
         ao_seeing_limit_arcsec=t.num("ao_seeing_limit_arcsec", 0, 10, required=False, lo_open=True),
         ao_min_wavelength_um=t.num("ao_min_wavelength_um", 0.1, 1e7, 1.0),
+        ao_actuator_pitch_m=t.num("ao_actuator_pitch_m", 0, 10, required=False, lo_open=True),
+        ao_fitting_coeff=t.num("ao_fitting_coeff", 0, 10, 0.3, lo_open=True),
+        ao_strehl_min=t.num("ao_strehl_min", 0, 1, 0.3, lo_open=True),
+        ao_servo_lag_ms=t.num("ao_servo_lag_ms", 0, 1000, required=False),
     )
     t.done()
     return inst
@@ -331,6 +367,10 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
         if any(x.name == inst.name for x in instruments):
             raise ConfigError(f"instrument[{i}].name", f"duplicate instrument {inst.name!r}")
         instruments.append(inst)
+    for i, inst in enumerate(instruments):
+        if inst.ao_turbulence_model and site.turbulence_height_m is None:
+            raise ConfigError("site.turbulence_height_m", f"is required: instrument {inst.name!r} has "
+                                                          "ao_actuator_pitch_m (allowed greater than 0 and at most 30000 m)")
     orphan = [b for b in bands if not any(b in inst.bands for inst in instruments)]
     if orphan:
         raise ConfigError("band", f"band {orphan[0]!r} is offered by no instrument")

@@ -46,6 +46,10 @@ class PlanEntry:
     urgency: float = 1.0
     opportunities_left: int | None = None
     balance: float = 1.0
+    ra_deg: float | None = None  # ICRS position at the start (a moving target's position then)
+    dec_deg: float | None = None
+    strehl: float | None = None  # predicted AO Strehl ratio at the start, where AO is modelled
+    surface_efficiency: float | None = None  # dish Ruze efficiency at the start, where it applies
 
 
 @dataclass(frozen=True)
@@ -107,6 +111,10 @@ class StoredEntry:
     urgency: float = 1.0
     opportunities_left: int | None = None
     balance: float = 1.0
+    ra_deg: float | None = None  # position at the start (moving targets: theirs then); None in older plans
+    dec_deg: float | None = None
+    strehl: float | None = None  # predicted AO Strehl ratio at the start
+    surface_efficiency: float | None = None  # dish Ruze efficiency at the start
 
 
 @dataclass(frozen=True)
@@ -120,6 +128,7 @@ class RequestLabel:
     dec_deg: float
     band: str
     instrument: str | None
+    body: str | None = None  # a moving target's body name (tables: see the request)
 
 
 @dataclass(frozen=True)

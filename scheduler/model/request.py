@@ -16,6 +16,7 @@ from typing import Any, Mapping
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso, parse_time
+from scheduler.sky.bodies import EphemerisTable, check_body, parse_ephemeris_csv, track_radec
 
 
 
@@ -53,7 +54,13 @@ IMPORT_COLUMNS = (
 EXTRA_COLUMNS = (
     "instrument", "min_spacing_s", "max_moon_illum", "min_sky_mag",
     "period_epoch", "period_days", "phase_min", "phase_max", "too",
+    "guide_star_sep_arcsec", "body", "ephemeris_file",
 )
+# Not a column: the ephemeris table's text (or a parsed EphemerisTable). The edge that reads
+# files (CLI, importer) turns ``ephemeris_file`` into this before validation.
+EPHEMERIS_KEY = "ephemeris"
+# Reference time for a body's listed position when neither not_before nor now is given.
+J2000_UNIX = 946_728_000.0
 ALL_COLUMNS = IMPORT_COLUMNS + EXTRA_COLUMNS
 
 MAX_TEXT = 200
@@ -90,10 +97,22 @@ class RequestSpec:
     phase_max: float | None = None
     priority: int = 5
     too: bool = False  # target of opportunity
+    guide_star_sep_arcsec: float | None = None  # AO guide star distance; 0 = on-axis or laser guide star
+    body: str | None = None  # moving target: a planet or Pluto by name (ra/dec: position at a reference time)
+    ephemeris: EphemerisTable | None = None  # moving target: the PI's table (ra/dec: position at a reference time)
     id: int | None = None
     status: RequestStatus = RequestStatus.QUEUED
     completed_repeats: int = 0
     partial_exposure_s: float = 0.0  # credited towards the current execution by a partial outcome
+
+    @property
+    def track(self) -> "str | EphemerisTable | None":
+        """What a moving target's position comes from (None for a fixed ICRS target)."""
+        return self.ephemeris if self.ephemeris is not None else self.body
+
+    @property
+    def moving(self) -> bool:
+        return self.body is not None or self.ephemeris is not None
 
     @property
     def remaining_repeats(self) -> int:
@@ -108,7 +127,11 @@ class RequestSpec:
         out: dict[str, Any] = {}
         for f in fields(self):
             v = getattr(self, f.name)
-            out[f.name] = iso(v) if isinstance(v, datetime) else v
+            if isinstance(v, datetime):
+                v = iso(v)
+            elif isinstance(v, EphemerisTable):
+                v = v.to_csv()
+            out[f.name] = v
         return out
 
     def with_(self, **kw: Any) -> "RequestSpec":
@@ -223,12 +246,16 @@ def _bool(raw: Mapping[str, Any], name: str) -> bool:
 
 
 def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
-                     programs: set[str] | None = None) -> RequestSpec:
+                     programs: set[str] | None = None, now: datetime | None = None) -> RequestSpec:
     """Turn raw fields (import column names; ``ra``/``dec`` or ``ra_deg``/``dec_deg``) into a RequestSpec.
 
     Raises InputError naming the first bad field. ``programs``: known program codes (None: skip).
+    The target is one of: ``ra``/``dec``; ``body`` (a planet or Pluto); ``ephemeris`` (the text of
+    an ephemeris table, or an EphemerisTable). A moving target's ra_deg/dec_deg are its position
+    at not_before, else at ``now``, else (body) J2000.0 or (table) its first row: for listings
+    only; the planner uses the position at each time.
     """
-    unknown = [k for k in raw if k not in ALL_COLUMNS and k not in ("ra_deg", "dec_deg")]
+    unknown = [k for k in raw if k not in ALL_COLUMNS and k not in ("ra_deg", "dec_deg", EPHEMERIS_KEY)]
     if unknown:
         raise InputError(unknown[0], f"unknown column; allowed: {','.join(ALL_COLUMNS)}")
     program = _text(raw, "program")
@@ -238,11 +265,13 @@ def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
     target = _text(raw, "target")
     ra_raw = raw.get("ra", raw.get("ra_deg"))
     dec_raw = raw.get("dec", raw.get("dec_deg"))
-    if ra_raw is None or ra_raw == "":
-        raise InputError("ra", "is required (degrees or hh:mm:ss.s)")
-    if dec_raw is None or dec_raw == "":
-        raise InputError("dec", "is required (degrees or ±dd:mm:ss)")
-    ra, dec = parse_ra(ra_raw), parse_dec(dec_raw)
+    body, table = _moving_target(raw, ra_raw, dec_raw)
+    if body is None and table is None:
+        if ra_raw is None or ra_raw == "":
+            raise InputError("ra", "is required (degrees or hh:mm:ss.s), unless body or ephemeris_file gives a moving target")
+        if dec_raw is None or dec_raw == "":
+            raise InputError("dec", "is required (degrees or ±dd:mm:ss)")
+        ra, dec = parse_ra(ra_raw), parse_dec(dec_raw)
 
     band_name = _text(raw, "band")
     if band_name not in config.bands:
@@ -291,6 +320,24 @@ def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
         missing = ["period_days", "period_epoch", "phase_min", "phase_max"][[v is None for v in periodic].index(True)]
         raise InputError(missing, "a periodic window needs period_epoch, period_days, phase_min and phase_max")
 
+    guide_sep = _num(raw, "guide_star_sep_arcsec", 0, 600, unit=" arcsec")
+    if guide_sep is not None and not (inst.ao_turbulence_model or inst.ao_seeing_limit_arcsec is not None):
+        raise InputError("guide_star_sep_arcsec", f"instrument {inst.name!r} has no adaptive optics; leave it empty")
+    _check_surface(config, band_name)
+
+    if table is not None:
+        for name, t in (("not_before", not_before), ("not_after", not_after)):
+            if t is not None:
+                table.require_cover(t.timestamp(), t.timestamp(), f"{name} {iso(t)}", "ephemeris_file")
+        ref = not_before or now
+        ref_unix = table.start_unix if ref is None else min(max(ref.timestamp(), table.start_unix), table.end_unix)
+    elif body is not None:
+        ref = not_before or now
+        ref_unix = J2000_UNIX if ref is None else ref.timestamp()
+    if body is not None or table is not None:
+        r, d, _ = track_radec(table if table is not None else body, [ref_unix])
+        ra, dec = float(r[0]) % 360.0, float(d[0])
+
     return RequestSpec(
         program=program, target=target, ra_deg=ra, dec_deg=dec, band=band_name,
         exposure_s=exposure, instrument=inst.name, repeats=repeats, min_spacing_s=min_spacing,
@@ -298,8 +345,42 @@ def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
         max_airmass=max_airmass, min_moon_sep_deg=min_moon, max_moon_illum=max_illum,
         min_sky_mag=min_sky, max_cloud_mag=max_cloud, not_before=not_before, not_after=not_after,
         period_epoch=epoch, period_days=period_days, phase_min=phase_min, phase_max=phase_max,
-        priority=priority, too=_bool(raw, "too"),
+        priority=priority, too=_bool(raw, "too"), guide_star_sep_arcsec=guide_sep, body=body, ephemeris=table,
     )
+
+
+def _moving_target(raw: Mapping[str, Any], ra_raw: Any, dec_raw: Any) -> tuple[str | None, EphemerisTable | None]:
+    """(body, table) from the raw fields; at most one of ra/dec, body, ephemeris may be given."""
+    body_raw = _text(raw, "body", required=False)
+    eph = raw.get(EPHEMERIS_KEY)
+    if eph is not None and not isinstance(eph, EphemerisTable) and not str(eph).strip():
+        eph = None
+    if raw.get("ephemeris_file") not in (None, "") and eph is None:
+        raise InputError("ephemeris_file", "the file was not read; `request add --ephemeris FILE` and "
+                                           "`request import` read it (a path relative to the imported file)")
+    given = [n for n, present in (("ra/dec", ra_raw not in (None, "") or dec_raw not in (None, "")),
+                                  ("body", body_raw is not None), ("ephemeris_file", eph is not None)) if present]
+    if len(given) > 1:
+        raise InputError(given[1] if given[1] != "ra/dec" else "ra",
+                         f"give one of ra/dec, body or ephemeris_file for a target, not {' and '.join(given)}")
+    body = check_body(body_raw) if body_raw is not None else None
+    table = None
+    if eph is not None:
+        table = eph if isinstance(eph, EphemerisTable) else parse_ephemeris_csv(str(eph), "ephemeris_file")
+    return body, table
+
+
+def _check_surface(config: ObservatoryConfig, band_name: str) -> None:
+    """Refuse a band where the dish's surface (Ruze) leaves less than the configured floor."""
+    from scheduler.sky.physics import night_surface_efficiency
+
+    band = config.bands[band_name]
+    tel = config.telescope
+    eff = night_surface_efficiency(band, tel)
+    if eff < tel.surface_efficiency_floor:
+        raise InputError("band", f"{band_name} ({band.wavelength_um:g} um): the dish surface ({tel.surface_rms_um:g} um rms) "
+                                 f"leaves an efficiency of {eff:.2f} (Ruze), below the floor "
+                                 f"{tel.surface_efficiency_floor:g} (telescope.surface_efficiency_floor)")
 
 
 def never_observable_reason(spec: RequestSpec, config: ObservatoryConfig) -> str | None:
@@ -310,7 +391,10 @@ def never_observable_reason(spec: RequestSpec, config: ObservatoryConfig) -> str
     from scheduler.sky.airmass import kasten_young_1989
 
     lat = config.site.latitude_deg
-    best_alt = 90.0 - abs(lat - spec.dec_deg)
+    if spec.body is not None:
+        return None  # a planet's declination sweeps the ecliptic; the sky grid decides per night
+    decs = spec.ephemeris.dec_deg if spec.ephemeris is not None else (spec.dec_deg,)
+    best_alt = max(90.0 - abs(lat - d) for d in decs)
     tel = config.telescope
     if best_alt < tel.min_altitude_deg:
         return (f"it culminates at altitude {best_alt:.1f} deg, below the telescope's limit "

@@ -1,7 +1,7 @@
 """program tier, hours charged per outcome, value factors per plan entry, opportunities cache
 
-Revision ID: 0003
-Revises: 0002
+Revision ID: 0004
+Revises: 0003
 Create Date: 2027-01-12
 
 A program gets a tier (1 = most important; existing programs: 2, the default). An outcome
@@ -16,8 +16,8 @@ from alembic import op
 import sqlalchemy as sa
 
 
-revision = '0003'
-down_revision = '0002'
+revision = '0004'
+down_revision = '0003'
 branch_labels = None
 depends_on = None
 
