@@ -7,7 +7,7 @@ test_sky_bodies); here the same physics must reach the plan. Telescopes and targ
 from __future__ import annotations
 
 from dataclasses import replace
-from datetime import date, datetime, timezone
+from datetime import date
 
 import numpy as np
 import pytest
@@ -23,7 +23,7 @@ from scheduler.sky.ephemeris import sky_for
 from scheduler.sky.night import compute_night
 from scheduler.solve.checker import check_plan
 
-from test_feasibility import CFG, T0, cond, req, sky
+from test_feasibility import CFG, cond, req, sky
 from test_solver import assert_clean, effort
 
 N_T = 40

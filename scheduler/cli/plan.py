@@ -239,7 +239,6 @@ def _plan_samples(c: Ctx, doc) -> list:
 @pass_ctx
 def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> None:
     """Why request ID is in the plan, or which constraint or which entries keep it out."""
-    import numpy as np
 
     from scheduler.conditions.grid import conditions_on_grid
     from scheduler.db import store

@@ -43,6 +43,7 @@ class ConditionsGrid:
     report_id: int | None = None
     times_unix: np.ndarray | None = None  # [n_t] the grid times these values belong to (added)
     coherence_time_ms: np.ndarray | None = None  # [n_t] tau0 at 500 nm, zenith; nan (or None) where unknown
+    report_ids: tuple[int, ...] = ()  # every report that supplied some time, newest first (merge.py)
 
     @property
     def n_times(self) -> int:
@@ -116,6 +117,7 @@ def conditions_on_grid(samples: Iterable, times_unix: np.ndarray, defaults: Cond
         seeing_arcsec=out["seeing_arcsec"], pwv_mm=out["pwv_mm"], cloud_mag=out["cloud_mag"],
         wind_ms=out["wind_ms"], humidity_pct=out["humidity_pct"], dome_open=dome_open.astype(bool),
         covered=covered, report_id=report_id, times_unix=t.copy(), coherence_time_ms=coherence,
+        report_ids=(report_id,) if report_id is not None and rows else (),
     )
 
 
