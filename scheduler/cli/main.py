@@ -409,7 +409,7 @@ def _register_optional() -> None:
     """Command groups that live in their own modules."""
     import importlib
 
-    for mod in ("scheduler.cli.sky", "scheduler.cli.plan", "scheduler.cli.service", "scheduler.cli.web"):
+    for mod in ("scheduler.cli.sky", "scheduler.cli.plan", "scheduler.cli.service", "scheduler.cli.web", "scheduler.cli.season"):
         try:
             m = importlib.import_module(mod)
         except ModuleNotFoundError as e:
