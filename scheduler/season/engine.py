@@ -11,8 +11,9 @@ A night (docs/season.md, "The simulated night"):
 1. Requests past ``not_after`` at sunset expire.
 2. The weather model draws the night: the weather that comes (on the plan grid) and the
    forecast the planner would have had. The first plan is built at sunset from the forecast.
-3. Every ``MONITOR_STEP_S`` the site reports: measured conditions up to now, the forecast for
-   the rest (the dome's last measured state holds: an operator's fact, not a forecast). The
+3. Every ``MONITOR_STEP_S`` the site reports: measured conditions up to now, the conditions
+   of now held for ``NOWCAST_HOLD_S``, the forecast after that (the dome's last measured
+   state holds: an operator's fact, not a forecast). The
    service's rule decides: a material conditions change or a planned entry no longer
    feasible, or an outcome other than the plan expected (a failure), re-plans from now with
    the plan in force as the previous plan.
@@ -45,6 +46,7 @@ from scheduler.sky.ephemeris import SkyCache
 from scheduler.sky.night import ASTRONOMICAL_ALT_DEG, Night, night_for
 
 MONITOR_STEP_S = 1800.0  # the site reports its conditions every half hour (as often as the forecast samples)
+NOWCAST_HOLD_S = 3600.0  # a report holds the conditions measured now for an hour (about the seeing's correlation time)
 DEFAULT_TIER = 2  # a program without a tier (the column may not exist yet) counts as tier 2
 
 
@@ -219,34 +221,48 @@ def _at(night: Night, step: int) -> datetime:
 
 
 def report_at(samples: tuple[Sequence[Sample], Sequence[Sample]], night: Night, step: int) -> list[Sample]:
-    """What the site reports at grid step ``step`` given (measured, forecast) samples of the
-    night: measured up to it, the forecast after it (without a dome state: the last measured
-    one holds)."""
+    """What the site reports at grid step ``step`` given the night's (measured, forecast) samples:
+    measured up to now; the conditions of now held for ``NOWCAST_HOLD_S`` (persistence, the
+    usual short-range nowcast); the forecast after that. Only measured samples carry the dome's
+    state (its last measured state holds: an operator's fact, not a forecast)."""
     measured, forecast = samples
     t_now = float(night.times_unix[0]) + step * night.step_s
-    actual = [s for s in measured if s.time.timestamp() <= t_now]
-    ahead = [replace(s, dome_open=None) for s in forecast if s.time.timestamp() > t_now]
-    return actual + ahead
+    past = [s for s in measured if s.time.timestamp() <= t_now]
+    out = list(past)
+    if past:
+        from scheduler.model.timegrid import utc
+
+        out.append(replace(past[-1], time=utc(t_now + NOWCAST_HOLD_S), dome_open=None))
+    out += [replace(s, dome_open=None) for s in forecast if s.time.timestamp() > t_now + NOWCAST_HOLD_S]
+    return out
 
 
 def simulate_night(setup: SeasonSetup, realization: int, season: SeasonDraw, i: int, specs: Sequence[RequestSpec],
                    sky_cache: SkyCache) -> tuple[tuple[RequestSpec, ...], NightOutcome]:
+    """Night ``i`` of the season: its weather drawn, then ``run_night``."""
+    cfg = setup.config
+    night = night_for(cfg.site, setup.dates[i], cfg.planning.step_s)
+    if night.n_times == 0:
+        return expire(specs, night.start), NightOutcome(night.date)
+    draw = draw_night(setup.climatology, season, i, night.times_unix, cfg.safety,
+                      realization_seed(setup.seed, realization), setup.model)
+    return run_night(setup, realization, night, draw, specs, sky_cache)
+
+
+def run_night(setup: SeasonSetup, realization: int, night: Night, draw: NightDraw, specs: Sequence[RequestSpec],
+              sky_cache: SkyCache) -> tuple[tuple[RequestSpec, ...], NightOutcome]:
+    """One night of one realization given its weather: (the queue after it, what happened)."""
     from scheduler.service.validity import Planned, conditions_changes, entry_failures, feasibility_for
 
     cfg = setup.config
-    d = setup.dates[i]
-    night = night_for(cfg.site, d, cfg.planning.step_s)
     specs = expire(specs, night.start)
-    if night.n_times == 0:
-        return specs, NightOutcome(d)
     # The whole season's targets in one call: computed once per night on this worker, then
     # every realization planning this night reads them from the cache.
     sky = sky_cache.get(cfg.site, night, np.array([s.ra_deg for s in setup.specs]),
                         np.array([s.dec_deg for s in setup.specs]))
-    draw = draw_night(setup.climatology, season, i, night.times_unix, cfg.safety,
-                      realization_seed(setup.seed, realization), setup.model)
-    actual = conditions_on_grid(draw.actual.samples(), night.times_unix, cfg.defaults)
-    forecast = conditions_on_grid(draw.forecast.samples(), night.times_unix, cfg.defaults)
+    samples = (draw.actual.samples(), draw.forecast.samples())
+    actual = conditions_on_grid(samples[0], night.times_unix, cfg.defaults)
+    forecast = conditions_on_grid(samples[1], night.times_unix, cfg.defaults)
 
     by_id = {int(s.id): s for s in specs}
     active = [s for s in specs if s.status in ACTIVE_STATUSES]
@@ -262,7 +278,6 @@ def simulate_night(setup: SeasonSetup, realization: int, season: SeasonDraw, i: 
     t = 0
     running: _Run | None = None
     unrecorded_failure = False
-    samples = (draw.actual.samples(), draw.forecast.samples())
     for c in checks:
         for e in entries:  # entries start when their time comes
             if t <= e.start_step < c and (running is None or running.finish_step <= e.start_step):
