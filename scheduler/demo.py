@@ -1,7 +1,9 @@
-"""`nightplan demo`: the whole job on the invented scenario in demo_queue/, in a fresh folder.
+"""`nightplan demo`: the whole job on the invented scenario (package data, data/demo_queue/), in a
+fresh folder.
 
 Runs the real commands in this process (the same click commands a user types, with --db and
---config pointing into the folder), so the demo goes through exactly the CLI's code paths:
+--config pointing into the folder), so the demo goes through exactly the CLI's code paths. The
+command group is passed in by `nightplan demo`, so this module never imports the command line:
 init, program add, request import, conditions load, almanac, plan build, plan show, plan
 chart, plan export, plan why, next; then the changed forecast, a re-plan with a reason naming
 the change, and what moved between the two plan versions.
@@ -20,15 +22,15 @@ import click
 
 from scheduler.model.errors import InputError
 
-DATA_DIR = Path(__file__).resolve().parents[1] / "demo_queue"
+DATA_DIR = Path(__file__).resolve().parent / "data" / "demo_queue"  # shipped in the wheel
 BEFORE_NIGHT = "T18:00:00Z"  # the first build "happens" the afternoon before, so the whole night is planned
 UPDATE_AT = "01:00:00Z"  # the forecast update arrives mid-night, the next UTC day: re-plan from then on
 
 
 def _data_dir() -> Path:
     if not (DATA_DIR / "scenario.json").is_file():
-        raise InputError("demo", f"the demo scenario was not found in {DATA_DIR}; the demo runs from a source "
-                                 "checkout of nightplan (demo_queue/ beside the scheduler package)")
+        raise InputError("demo", f"the demo scenario was not found in {DATA_DIR}; this nightplan installation "
+                                 "is incomplete (reinstall it)")
     return DATA_DIR
 
 
@@ -45,10 +47,9 @@ def _out_dir(out: str | None) -> Path:
     return p
 
 
-def run_demo(out: str | None, time_limit: float) -> dict:
+def run_demo(out: str | None, time_limit: float, cli: click.Group) -> dict:
     from sqlalchemy import select
 
-    from scheduler.cli.main import cli
     from scheduler.db import plans
     from scheduler.db.models import Plan, Request
     from scheduler.db.session import open_db

@@ -40,7 +40,7 @@ def inputs(planned):
     with db.session() as s:
         plan = plans.get_plan(s)
         night = compute_night(config.site, plan.night, config.planning.step_s)
-        doc = plan_document(s, plan, config, night)
+        doc = plan_document(plans.stored_plan(s, plan), config, night)
         samples = chart.plan_samples(s, doc["plan"]["conditions"]["report_id"])
     db.dispose()
     keys = list(dict.fromkeys((e["ra_deg"], e["dec_deg"]) for e in doc["entries"]))

@@ -16,7 +16,7 @@ def test_demo_data_is_what_the_generator_writes(tmp_path):
     import importlib.util
     import shutil
 
-    src = ROOT / "demo_queue"
+    src = ROOT / "scheduler" / "data" / "demo_queue"  # package data (the top-level demo_queue/ points here)
     copy = tmp_path / "demo_queue"
     shutil.copytree(src, copy)
     spec = importlib.util.spec_from_file_location("make_demo_copy", copy / "make_demo.py")

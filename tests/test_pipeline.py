@@ -67,7 +67,7 @@ def test_frozen_entries_stay_and_storage_form_without_steps_is_accepted(base, se
     """An entry starting within the freeze horizon keeps its start exactly, also after a small
     conditions change that leaves it feasible (the requests here have no seeing limit)."""
     night, sky, cond, reqs, w, res = base
-    e0, e1 = res.entries[0], res.entries[1]
+    e1 = res.entries[1]
     now = e1.start - timedelta(minutes=5)  # e1 starts inside the 15-minute freeze horizon
     stored = [replace(e, start_step=-1, end_step=-1) for e in res.entries]  # storage keeps times only
     cond = replace(cond, seeing_arcsec=cond.seeing_arcsec + seeing_up)

@@ -141,6 +141,53 @@ def test_show_table_has_summary_times_and_caution(planned, shown):
     assert first["start"][11:16] in out and first["start_local"][11:16] in out  # UTC and local time
 
 
+def test_plan_document_is_made_from_plain_data(tmp_path):
+    """The report takes a StoredPlan (what storage reads) and needs no database."""
+    from datetime import date
+
+    from scheduler.model.config import load_config, starter_config_text
+    from scheduler.model.plan import RequestLabel, StoredEntry, StoredPlan
+    from scheduler.report.export import plan_document
+    from scheduler.sky.night import night_for
+
+    (tmp_path / "observatory.toml").write_text(starter_config_text(), encoding="utf-8")
+    config = load_config(str(tmp_path / "observatory.toml"))
+    night = night_for(config.site, date(2026, 12, 16), config.planning.step_s)
+    t0 = night.astronomical_dusk + timedelta(minutes=30)
+
+    def entry(rid, minutes):
+        start = t0 + timedelta(minutes=minutes)
+        return StoredEntry(request_id=rid, execution=0, start=start, end=start + timedelta(minutes=20), slew_s=30.04,
+                           transition_s=45.0, setup_s=120.0, exposure_s=1080.0, airmass_start=1.23456,
+                           airmass_end=1.3, fwhm_arcsec=0.8123, pwv_mm=2.049, transmission=0.95, merit=0.81234,
+                           moon_sep_deg=None, value=2.0, fixed=False)
+
+    plan = StoredPlan(
+        version=7, night=date(2026, 12, 16), created_at=t0, reason="plain data", planned_from=night.start,
+        solver_status="OPTIMAL", objective=4.0, bound=4.0, gap=0.0, runtime_s=1.234, greedy_objective=3.0,
+        active=True, superseded_at=None, previous_version=6,
+        summary={"unscheduled": [{"request_id": 9, "reason": "never rises"}], "queue_size": 3},
+        diff={}, entries=(entry(2, 60), entry(1, 0)),
+        requests={1: RequestLabel(1, "STAR-1", "Alpha", 10.0, -30.0, "V", "imager"),
+                  9: RequestLabel(9, "STAR-2", "Gamma", 105.0, 70.0, "R", None)},
+        conditions_report_id=None, conditions=None)
+    doc = plan_document(plan, config, night)
+    assert [e["request_id"] for e in doc["entries"]] == [1, 2]  # in time order
+    first, second = doc["entries"]
+    assert (first["target"], first["program"], first["band"], first["band_wavelength_um"]) == \
+        ("Alpha", "STAR-1", "V", config.bands["V"].wavelength_um)
+    assert second["target"] is None and second["program"] is None  # a request storage could not name
+    assert first["airmass_start"] == 1.235 and first["slew_s"] == 30.0 and first["moon_sep_deg"] is None
+    assert doc["unscheduled"] == [{"request_id": 9, "reason": "never rises", "target": "Gamma", "program": "STAR-2",
+                                   "band": "R"}]
+    assert doc["plan"]["version"] == 7 and doc["plan"]["previous_version"] == 6
+    assert doc["plan"]["conditions"]["report_id"] is None and "defaults" in doc["plan"]["conditions"]["note"]
+    assert doc["site"]["name"] == config.site.name  # not stored with the plan: the configuration's
+    assert doc["summary"]["entries"] == 2 and doc["summary"]["scheduled_hours"] == round(40 / 60, 3)
+    assert doc["summary"]["queue_size"] == 3 and doc["summary"]["unscheduled"] == 1
+    assert first["start"].endswith("Z") and first["start_local"][-6] in "+-"
+
+
 def _png_size(data: bytes) -> tuple[int, int]:
     assert data[:8] == b"\x89PNG\r\n\x1a\n", "not a PNG signature"
     assert data[12:16] == b"IHDR"

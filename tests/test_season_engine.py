@@ -29,7 +29,7 @@ ROOT = Path(__file__).resolve().parents[1]
 CFG = starter_config()
 NIGHT_DATE = date(2026, 12, 16)
 NIGHT = night_for(CFG.site, NIGHT_DATE, CFG.planning.step_s)
-CLIM = read_climatology_file(ROOT / "demo_queue" / "climatology.csv")
+CLIM = read_climatology_file(ROOT / "scheduler" / "data" / "demo_queue" / "climatology.csv")
 
 
 def _transiting_ra(dec: float) -> float:

@@ -32,7 +32,7 @@ from scheduler.season.weather import (
 )
 
 ROOT = Path(__file__).resolve().parents[1]
-DEMO = ROOT / "demo_queue" / "climatology.csv"
+DEMO = ROOT / "scheduler" / "data" / "demo_queue" / "climatology.csv"
 SAFETY = starter_config().safety
 STEP_S = 120.0
 N_STEPS = 300  # a 10-hour night at 2-minute steps (the statistics do not need 1-minute steps)

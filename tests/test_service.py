@@ -240,6 +240,32 @@ def test_order_status_second_instance_and_sigterm(served, night):
     assert svc.active()["reason"] == "no service tonight"
 
 
+def test_inline_and_service_replans_share_one_time_budget(night):
+    """Every re-plan from now, inline or by the service, runs within the lower of
+    planning.time_limit_s and planning.replan_time_limit_s (scheduler/planning/replan.py)."""
+    cfg = night / "observatory.toml"
+    text = cfg.read_text(encoding="utf-8")
+    assert "replan_time_limit_s = 4 " in text
+    cfg.write_text(text.replace("replan_time_limit_s = 4 ", "replan_time_limit_s = 1.5 "), encoding="utf-8")
+    inline = run_cli("replan", "--reason", "inline budget", cwd=night, env={"NIGHTPLAN_CLOCK": CLOCK})
+    assert inline.returncode == 0, inline.stderr
+    assert "inline: plan version" in inline.stdout
+    db = open_db(str(night / "nightplan.sqlite"), create_file=False)
+    try:
+        oid = db.retrying(lambda s: plans.add_order(s, "served budget", "test").id)
+        served_once = run_cli("serve", "--once", "--clock", CLOCK, cwd=night, timeout=120)
+        assert served_once.returncode == 0, served_once.stdout + served_once.stderr
+        with db.session() as s:
+            first = s.scalar(select(Plan).where(Plan.reason == "inline budget"))
+            order = s.get(ReplanOrder, oid)
+            assert order.done_at is not None and order.plan_id is not None, order.result
+            by_service = s.get(Plan, order.plan_id)
+            limits = [plans.plan_summary(p)["stats"]["time_limit_s"] for p in (first, by_service)]
+    finally:
+        db.dispose()
+    assert limits == [1.5, 1.5]  # min(time_limit_s 2, replan_time_limit_s 1.5); inline used 2 before
+
+
 def test_kill_9_then_restart_resumes(served, night):
     (night / "feed" / "forecast.csv").write_text(forecast_csv(1.0), encoding="utf-8")
     svc = served()

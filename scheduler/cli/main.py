@@ -1,79 +1,24 @@
-"""The `nightplan` command line: parses, calls the core, prints. No science lives here.
+"""The `nightplan` command line: the root group, its command modules, and the error policy.
 
-Errors a user can fix are one line on stderr (``nightplan: error: FIELD: ...``), exit status 2,
-and nothing is written: every command that writes does it in one transaction.
+Parses, calls the core, prints; no science lives here. Errors a user can fix are one line on
+stderr (``nightplan: error: FIELD: ...``), exit status 2, and nothing is written: every command
+that writes does it in one transaction.
+
+Each command module exposes ``register(cli)`` and imports only ``scheduler.cli.common`` and the
+core, never this module; this module imports them all and registers them explicitly below.
 """
 
 from __future__ import annotations
 
-import csv
-import io
-import json
 import os
 import sys
-from pathlib import Path
-from typing import Any
 
 import click
 
-from scheduler.model.config import ObservatoryConfig, load_config, starter_config_text
+from scheduler.cli import database, demo, plan, queue, season, service, sky, web
+from scheduler.cli.common import Ctx
 from scheduler.model.errors import InputError, NotFoundError
-
-CONFIG_FILE = "observatory.toml"
-MAX_IMPORT_BYTES = 10_000_000
-MAX_IMPORT_ROWS = 20_000
-
-
-class Ctx:
-    """What every command needs: where the database and the configuration are."""
-
-    def __init__(self, db_url: str | None, config_path: str | None):
-        self.db_url = db_url
-        self.config_path = config_path or os.environ.get("NIGHTPLAN_CONFIG") or CONFIG_FILE
-        self._db = None
-        self._config: ObservatoryConfig | None = None
-
-    def config(self) -> ObservatoryConfig:
-        if self._config is None:
-            self._config = load_config(self.config_path)
-        return self._config
-
-    def db(self, *, must_exist: bool = True):
-        if self._db is None:
-            from scheduler.db.session import open_db
-
-            self._db = open_db(self.db_url, create_file=not must_exist)
-            if must_exist:
-                path = self._db.path
-                if path is not None and not path.exists():
-                    raise InputError("db", f"{path} does not exist; run `nightplan init` first or pass --db URL")
-                if not self._db.is_initialised():
-                    raise InputError("db", f"{self._db.url} has no nightplan schema; run `nightplan init`")
-        return self._db
-
-
-pass_ctx = click.make_pass_decorator(Ctx)
-
-
-def echo_json(obj: Any) -> None:
-    click.echo(json.dumps(obj, indent=2, default=str))
-
-
-def warn(msg: str) -> None:
-    click.echo(f"nightplan: warning: {msg}", err=True)
-
-
-def console():
-    from rich.console import Console
-
-    return Console(highlight=False, soft_wrap=False, width=max(100, min(200, _term_width())))
-
-
-def _term_width() -> int:
-    try:
-        return os.get_terminal_size().columns
-    except OSError:
-        return 140
+from scheduler.report.safe_text import clean
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
@@ -90,336 +35,12 @@ def cli(ctx: click.Context, db_url: str | None, config_path: str | None) -> None
     ctx.obj = Ctx(db_url, config_path)
 
 
-# --------------------------------------------------------------------------- init
+# The command modules, each adding its commands to the root group. A new module is imported
+# above and listed here.
+COMMAND_MODULES = (database, queue, sky, plan, service, web, demo, season)
 
-@cli.command()
-@pass_ctx
-def init(c: Ctx) -> None:
-    """Create or upgrade the database; write a starter observatory.toml if there is none."""
-    from scheduler.db import migrate
-
-    cfg_path = Path(c.config_path)
-    if not cfg_path.exists():
-        cfg_path.parent.mkdir(parents=True, exist_ok=True)
-        cfg_path.write_text(starter_config_text(), encoding="utf-8")
-        click.echo(f"config:   {cfg_path.resolve()} (starter file for an invented site; edit it)")
-    else:
-        c.config()  # validate what is there
-        click.echo(f"config:   {cfg_path.resolve()} (kept)")
-    db = c.db(must_exist=False)
-    before = migrate.current_revision(db)
-    migrate.upgrade(db)
-    after = migrate.current_revision(db)
-    where = str(db.path.resolve()) if db.path is not None else db.url
-    state = "created" if before is None else ("upgraded" if before != after else "up to date")
-    click.echo(f"database: {where} ({state}, schema {after})")
-
-
-# --------------------------------------------------------------------------- programs
-
-@cli.group()
-def program() -> None:
-    """Science programs: code, PI, allocated hours, weight."""
-
-
-@program.command("add")
-@click.argument("code")
-@click.option("--pi", required=True, help="principal investigator")
-@click.option("--hours", type=float, default=0.0, show_default=True, help="allocated hours (0 to 10000)")
-@click.option("--weight", type=float, default=1.0, show_default=True, help="rank weight in the objective (0 to 100]")
-@pass_ctx
-def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float) -> None:
-    """Create a program CODE."""
-    from scheduler.db import store
-
-    prog = c.db().retrying(lambda s: store.program_dict(store.add_program(s, code, pi, hours, weight)))
-    click.echo(f"program {prog['code']} added (PI {prog['pi']}, {prog['hours']:g} h, weight {prog['weight']:g})")
-
-
-@program.command("list")
-@click.option("--json", "as_json", is_flag=True, help="print JSON")
-@pass_ctx
-def program_list(c: Ctx, as_json: bool) -> None:
-    """List programs."""
-    from scheduler.db import store
-
-    with c.db().session() as s:
-        rows = [store.program_dict(p) for p in store.list_programs(s)]
-    if as_json:
-        echo_json(rows)
-        return
-    from rich.table import Table
-
-    t = Table("code", "PI", "hours", "weight", title="programs")
-    for r in rows:
-        t.add_row(r["code"], r["pi"], f"{r['hours']:g}", f"{r['weight']:g}")
-    console().print(t)
-
-
-# --------------------------------------------------------------------------- requests
-
-@cli.group()
-def request() -> None:
-    """Observation requests: add, import, list, show, withdraw."""
-
-
-def _visibility_warnings(config: ObservatoryConfig, specs) -> None:
-    from scheduler.model.request import never_observable_reason
-
-    for i, spec in enumerate(specs):
-        why = never_observable_reason(spec, config)
-        if why:
-            label = f"request {spec.id}" if spec.id else f"row {i + 1}"
-            warn(f"{label} ({spec.target}): never observable from {config.site.name}: {why}")
-
-
-@request.command("add")
-@click.option("--program", required=True, help="program code")
-@click.option("--target", required=True, help="target name")
-@click.option("--ra", required=True, help="ICRS right ascension: degrees or hh:mm:ss.s")
-@click.option("--dec", required=True, help="ICRS declination: degrees or ±dd:mm:ss")
-@click.option("--band", required=True, help="band name from observatory.toml (starter: U B V R I J H K N Q)")
-@click.option("--exposure", required=True, help="exposure time in seconds (> 0)")
-@click.option("--instrument", help="instrument (default: the first that offers the band)")
-@click.option("--resolution", help="delivered image FWHM the science needs, arcsec, in this band at the target's airmass")
-@click.option("--max-seeing", help="worst site seeing tolerated, arcsec at 500 nm at zenith (as conditions report it)")
-@click.option("--max-pwv", help="worst precipitable water vapour tolerated, mm")
-@click.option("--max-airmass", help="largest airmass tolerated (>= 1)")
-@click.option("--min-moon-sep", help="smallest Moon separation tolerated, degrees")
-@click.option("--max-moon-illum", help="largest Moon illuminated fraction tolerated while the Moon is up, 0..1")
-@click.option("--min-sky-mag", help="sky must be at least this dark in the band, mag/arcsec^2")
-@click.option("--max-cloud", help="largest cloud extinction tolerated, mag")
-@click.option("--not-before", help="earliest start, ISO-8601 UTC")
-@click.option("--not-after", help="latest end, ISO-8601 UTC")
-@click.option("--period-epoch", help="periodic window: time of phase 0, ISO-8601 UTC")
-@click.option("--period-days", help="periodic window: period in days")
-@click.option("--phase-min", help="periodic window: phase range start, 0..1")
-@click.option("--phase-max", help="periodic window: phase range end, 0..1 (may wrap past 1)")
-@click.option("--priority", help="1 (lowest) to 10 (highest), default 5")
-@click.option("--repeats", help="number of executions, default 1")
-@click.option("--min-spacing", help="minimum time between executions, seconds")
-@click.option("--too", is_flag=True, help="target of opportunity")
-@pass_ctx
-def request_add(c: Ctx, **opts: Any) -> None:
-    """Submit one request; prints its id.
-
-    --max-seeing is the site seeing at 500 nm at zenith, as the conditions report it;
-    --resolution is the delivered image FWHM the science needs in the request's band at the
-    target's airmass (seeing scaled by wavelength^-1/5 airmass^3/5, combined with diffraction).
-    """
-    from scheduler.db import store
-    from scheduler.model.request import validate_request
-
-    names = {"exposure": "exposure_s", "resolution": "resolution_arcsec", "max_seeing": "max_seeing_arcsec",
-             "max_pwv": "max_pwv_mm", "min_moon_sep": "min_moon_sep_deg", "max_cloud": "max_cloud_mag",
-             "min_spacing": "min_spacing_s"}
-    raw = {names.get(k, k): v for k, v in opts.items() if v is not None and v is not False}
-    config = c.config()
-    db = c.db()
-
-    def work(s):
-        spec = validate_request(raw, config, store.program_codes(s))
-        return spec, store.add_requests(s, [spec])[0]
-
-    spec, rid = db.retrying(work)
-    _visibility_warnings(config, [spec.with_(id=rid)])
-    click.echo(rid)
-
-
-def read_table_file(path: str, *, what: str) -> tuple[list[tuple[int, dict[str, Any]]], str]:
-    """(row number, row) of a CSV (header row) or JSON list file, with a size limit; and the format.
-
-    Row numbers are what a user finds in the file: for CSV the line (the header is line 1), for
-    JSON the position in the list (from 1), as in conditions files.
-    """
-    from scheduler.textfile import read_text_file
-
-    p = Path(path)
-    text = read_text_file(p, MAX_IMPORT_BYTES)
-    stripped = text.lstrip()
-    if p.suffix.lower() == ".json" or stripped.startswith(("[", "{")):
-        try:
-            data = json.loads(text)
-        except json.JSONDecodeError as e:
-            raise InputError("file", f"{path} is not valid JSON: {e.msg} at line {e.lineno}") from None
-        if not isinstance(data, list) or not all(isinstance(r, dict) for r in data):
-            raise InputError("file", f"{path}: JSON must be a list of objects, one per {what[:-1]}")
-        return list(enumerate(data, start=1)), "json"
-    reader = csv.DictReader(io.StringIO(text))
-    if not reader.fieldnames:
-        raise InputError("file", f"{path} is empty; expected a CSV header row")
-    rows = []
-    for row in reader:
-        if None in row:
-            raise InputError("columns", "more values than header columns", row=reader.line_num, source=path)
-        rows.append((reader.line_num, {k.strip(): (v.strip() if isinstance(v, str) else v) for k, v in row.items()}))
-    return rows, "csv"
-
-
-@request.command("import")
-@click.argument("file", type=click.Path(dir_okay=False))
-@pass_ctx
-def request_import(c: Ctx, file: str) -> None:
-    """Import requests from CSV (header row) or a JSON list; all rows or none.
-
-    Columns: program,target,ra,dec,band,exposure_s,resolution_arcsec,max_seeing_arcsec,
-    max_pwv_mm,max_airmass,min_moon_sep_deg,max_cloud_mag,not_before,not_after,priority,repeats
-    (optional ones may be absent or empty), plus instrument, min_spacing_s, max_moon_illum,
-    min_sky_mag, period_epoch, period_days, phase_min, phase_max, too.
-    """
-    from scheduler.db import store
-    from scheduler.model.request import validate_request
-
-    rows, _fmt = read_table_file(file, what="requests")
-    if not rows:
-        raise InputError("file", f"{file} holds no requests")
-    if len(rows) > MAX_IMPORT_ROWS:
-        raise InputError("file", f"{file} has {len(rows)} rows; at most {MAX_IMPORT_ROWS} per import")
-    config = c.config()
-    db = c.db()
-
-    def work(s):
-        codes = store.program_codes(s)
-        specs = []
-        for i, raw in rows:
-            try:
-                specs.append(validate_request(raw, config, codes))
-            except InputError as e:
-                raise InputError(e.field, e.message, row=i, source=file) from None
-        return specs, store.add_requests(s, specs)
-
-    specs, ids = db.retrying(work)
-    _visibility_warnings(config, [sp.with_(id=i) for sp, i in zip(specs, ids)])
-    click.echo(f"imported {len(ids)} requests (ids {ids[0]}-{ids[-1]})")
-
-
-@request.command("list")
-@click.option("--status", type=click.Choice(["queued", "planned", "done", "failed", "withdrawn", "expired"]))
-@click.option("--program", help="only this program")
-@click.option("--json", "as_json", is_flag=True, help="print a JSON array")
-@pass_ctx
-def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool) -> None:
-    """List requests."""
-    from scheduler.db import store
-
-    with c.db().session() as s:
-        rows = [store.request_dict(r) for r in store.list_requests(s, status, program)]
-    if as_json:
-        echo_json(rows)
-        return
-    from rich.table import Table
-
-    t = Table("id", "program", "target", "RA", "Dec", "band", "exp s", "prio", "limits", "status",
-              title=f"requests ({len(rows)})")
-    for r in rows:
-        t.add_row(str(r["id"]), r["program"], r["target"], f"{r['ra_deg']:.4f}", f"{r['dec_deg']:+.4f}",
-                  r["band"], f"{r['exposure_s']:g}", str(r["priority"]), _limits_text(r), r["status"])
-    console().print(t)
-
-
-def _limits_text(r: dict[str, Any]) -> str:
-    parts = []
-    for key, label in (("resolution_arcsec", "res<={}\""), ("max_seeing_arcsec", "see<={}\""),
-                       ("max_pwv_mm", "pwv<={}mm"), ("max_airmass", "X<={}"), ("min_moon_sep_deg", "moon>={}°"),
-                       ("max_cloud_mag", "cloud<={}")):
-        if r.get(key) is not None:
-            parts.append(label.format(f"{r[key]:g}"))
-    return " ".join(parts) or "-"
-
-
-@request.command("show")
-@click.argument("request_id", type=int)
-@click.option("--night", help="also list the feasible windows on this night (YYYY-MM-DD, local evening)")
-@click.option("--json", "as_json", is_flag=True, help="print JSON")
-@pass_ctx
-def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> None:
-    """Show one request (and, with --night, when it can be observed)."""
-    from scheduler.db import store
-
-    with c.db().session() as s:
-        row = store.get_request(s, request_id)
-        d = store.request_dict(row)
-        spec = store.to_spec(row)
-        report = store.latest_conditions(s)
-        samples = list(report.samples) if report is not None else []
-    if night:
-        from scheduler.constraints.windows import feasible_windows
-
-        d["windows"] = feasible_windows(c.config(), spec, parse_night(night), samples)
-    if as_json:
-        echo_json(d)
-        return
-    for k, v in d.items():
-        if k == "windows" or v is None:
-            continue
-        click.echo(f"{k:>20}: {v}")
-    if night:
-        w = d["windows"]
-        click.echo(f"{'night':>20}: {night}")
-        if w["windows"]:
-            for win in w["windows"]:
-                click.echo(f"{'feasible':>20}: {win['start']} to {win['end']} (starts possible until {win['last_start']})")
-        else:
-            click.echo(f"{'feasible':>20}: never; binding constraint: {w['binding']}")
-
-
-@request.command("withdraw")
-@click.argument("request_id", type=int)
-@pass_ctx
-def request_withdraw(c: Ctx, request_id: int) -> None:
-    """Withdraw a request from the queue (kept for the record)."""
-    from scheduler.db import store
-
-    c.db().retrying(lambda s: store.withdraw_request(s, request_id))
-    click.echo(f"request {request_id} withdrawn")
-
-
-@cli.group("db")
-def db_group() -> None:
-    """Database housekeeping."""
-
-
-@db_group.command("copy")
-@click.option("--to", "to_url", required=True, metavar="URL", help="destination database URL (a new, empty database)")
-@pass_ctx
-def db_copy(c: Ctx, to_url: str) -> None:
-    """Copy this queue, its plans and history to another database (e.g. SQLite to PostgreSQL)."""
-    from scheduler.db.session import open_db
-    from scheduler.db.transfer import copy_database
-
-    src = c.db()
-    dst = open_db(to_url)
-    counts = copy_database(src, dst)
-    total = sum(counts.values())
-    click.echo(f"copied {total} rows to {dst.url}: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
-
-
-def parse_night(text: str):
-    from datetime import date
-
-    try:
-        return date.fromisoformat(text)
-    except ValueError:
-        raise InputError("night", f"{text!r} is not a date YYYY-MM-DD (the local evening the night begins)") from None
-
-
-# --------------------------------------------------------------------------- entry point
-
-def _register_optional() -> None:
-    """Command groups that live in their own modules."""
-    import importlib
-
-    for mod in ("scheduler.cli.sky", "scheduler.cli.plan", "scheduler.cli.service", "scheduler.cli.web", "scheduler.cli.season"):
-        try:
-            m = importlib.import_module(mod)
-        except ModuleNotFoundError as e:
-            if e.name == mod:
-                continue
-            raise
-        m.register(cli)
-
-
-_register_optional()
+for _module in COMMAND_MODULES:
+    _module.register(cli)
 
 
 def main(argv: list[str] | None = None) -> None:
@@ -441,7 +62,7 @@ def main(argv: list[str] | None = None) -> None:
         sys.exit(2 if e.exit_code in (1, 2) else e.exit_code)
     except (InputError, NotFoundError) as e:
         msg = e.args[0] if isinstance(e, NotFoundError) else str(e)
-        click.echo(f"nightplan: error: {msg}", err=True)
+        click.echo(f"nightplan: error: {clean(msg)}", err=True)
         sys.exit(2)
     except KeyboardInterrupt:
         click.echo("nightplan: interrupted", err=True)
@@ -453,6 +74,5 @@ def main(argv: list[str] | None = None) -> None:
 
         kind = "database" if isinstance(e, SQLAlchemyError) else type(e).__name__
         first = str(e).strip().splitlines()[0] if str(e).strip() else repr(e)
-        click.echo(f"nightplan: error: {kind}: {first[:300]} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
+        click.echo(f"nightplan: error: {kind}: {clean(first[:300])} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
         sys.exit(1)
-

@@ -1,5 +1,5 @@
-"""Commands for queue observers and operators: `plan build|show|list|export|chart|why`, `next`,
-`record`, and `demo`. Thin: parse, call the planner or a report, print."""
+"""Commands for queue observers and operators: `plan build|show|list|export|chart|check|why`,
+`next` and `record`. Thin: parse, call the planner or a report, print."""
 
 from __future__ import annotations
 
@@ -9,16 +9,14 @@ from datetime import date, datetime, timezone
 
 import click
 
-from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from scheduler.cli.common import Ctx, console, echo_json, now_or, parse_night, pass_ctx, warn
 from scheduler.model.errors import InputError, NotFoundError
-from scheduler.model.timegrid import iso, parse_time
+from scheduler.model.request import OutcomeResult, RequestStatus
+from scheduler.model.timegrid import iso
+from scheduler.report.safe_text import cell, clean
 
 
 # --------------------------------------------------------------------------- helpers
-
-def _now(text: str | None, field: str) -> datetime:
-    return parse_time(text, field) if text else datetime.now(timezone.utc)
-
 
 def _version(version: int | None) -> int | None:
     if version is not None and version < 1:
@@ -41,7 +39,7 @@ def load_document(c: Ctx, version: int | None):
     with c.db().session() as s:
         plan = plans.get_plan(s, _version(version))
         night = night_of(config, plan.night)
-        doc = plan_document(s, plan, config, night)
+        doc = plan_document(plans.stored_plan(s, plan), config, night)
     return doc, night, config
 
 
@@ -69,7 +67,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
     reason = (reason or "").strip()
     if not reason or len(reason) > 2000:
         raise InputError("reason", "must be 1 to 2000 characters")
-    now = _now(now_text, "now")
+    now = now_or(now_text, "now")
     config = c.config()
     db = c.db()
     planner = Planner(config)
@@ -123,7 +121,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
         ("reason", p["reason"]),
     ]
     for k, v in rows:
-        out.print(f"  {k:<17} {v}")
+        out.print(cell(f"  {k:<17} {v}"))
     out.print(f"  see: nightplan plan show{'' if p['active'] else ' --version ' + str(p['version'])}")
 
 
@@ -149,21 +147,14 @@ def plan_show(c: Ctx, version: int | None, show_unscheduled: bool, as_json: bool
 @pass_ctx
 def plan_list(c: Ctx, night: str | None, as_json: bool) -> None:
     """Stored plan versions, newest first."""
-    from sqlalchemy import select
+    from scheduler.db import plans
 
-    from scheduler.db.models import Plan
-
-    q = select(Plan).order_by(Plan.id.desc())
-    if night:
-        q = q.where(Plan.night == parse_night(night))
     with c.db().session() as s:
-        rows = [{"version": p.id, "night": p.night.isoformat(), "created_at": iso(p.created_at), "active": p.active,
-                 "reason": p.reason, "solver_status": p.solver_status, "objective": p.objective, "gap": p.gap,
-                 "entries": len(p.entries), "previous_version": p.previous_id} for p in s.scalars(q)]
+        rows = plans.plan_listing(s, parse_night(night) if night else None)
     if as_json:
         echo_json(rows)
         return
-    from rich.table import Table
+    from scheduler.report.safe_text import SafeTable as Table
 
     t = Table("version", "night", "created (UTC)", "active", "status", "objective", "gap", "entries", "reason",
               title="plans")
@@ -206,7 +197,7 @@ def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: st
     from scheduler.report.export import write_atomic
 
     fmt = chart_format(output)
-    at = _now(at_text, "at")
+    at = now_or(at_text, "at")
     doc, night, config = load_document(c, version)
     with c.db().session() as s:
         samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
@@ -226,7 +217,7 @@ def plan_check(c: Ctx, version: int | None) -> None:
     v, violations = verify_stored_plan(c.db(), c.config(), _version(version))
     if violations:
         for line in violations:
-            click.echo(f"plan {v}: {line}")
+            click.echo(f"plan {v}: {clean(line)}")
         raise SystemExit(1)
     click.echo(f"plan {v}: every entry passes the checker")
 
@@ -266,9 +257,9 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
         echo_json(res)
         return
     for line in res["explanation"]:
-        click.echo(line)
+        click.echo(clean(line))
     if res.get("solver_reason") and res["state"] != "scheduled":
-        click.echo(f"  solver's note: {res['solver_reason']}")
+        click.echo(f"  solver's note: {clean(res['solver_reason'])}")
 
 
 # --------------------------------------------------------------------------- next, record
@@ -285,7 +276,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
     from scheduler.planning.planner import Planner
     from scheduler.report.table import entry_line, hm
 
-    at = _now(at_text, "at")
+    at = now_or(at_text, "at")
     config = c.config()
     night_d = Planner(config).coming_night(at)
     with c.db().session() as s:
@@ -296,7 +287,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
                 "; build one with `nightplan plan build`"
             raise NotFoundError(f"no plan for the night of {night_d} (the night of {iso(at)}){have}")
         night = night_of(config, plan_row.night)
-        doc = plan_document(s, plan_row, config, night)
+        doc = plan_document(plans.stored_plan(s, plan_row), config, night)
     res = what_next(doc, at)
     if as_json:
         echo_json(res)
@@ -312,7 +303,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
         click.echo("NOW   the plan has no entries")
     else:
         first = res["upcoming"][0]
-        click.echo(f"NOW   nothing in progress: move to #{first['request_id']} {first['target']}, which starts "
+        click.echo(f"NOW   nothing in progress: move to #{first['request_id']} {clean(first['target'])}, which starts "
                    f"at {hm(first['start'])} UTC ({hm(first['start_local'])} local)")
     for label, e in zip(("NEXT", "THEN"), res["upcoming"]):
         click.echo(f"{label:<5} {entry_line(e)}")
@@ -321,7 +312,7 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
 
 @click.command("record")
 @click.argument("request_id", type=int)
-@click.option("--result", type=click.Choice(["done", "failed", "partial"]), required=True, help="what happened")
+@click.option("--result", type=click.Choice([r.value for r in OutcomeResult]), required=True, help="what happened")
 @click.option("--exposure", type=float, help="exposure actually achieved, seconds (required for partial)")
 @click.option("--note", help="observer's note (at most 2000 characters)")
 @pass_ctx
@@ -329,7 +320,7 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
     """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back."""
     from scheduler.db import plans, store
 
-    if result == "partial" and exposure is None:
+    if result == OutcomeResult.PARTIAL and exposure is None:
         raise InputError("exposure", "required with --result partial: the seconds of exposure achieved")
     now = datetime.now(timezone.utc)
 
@@ -347,12 +338,12 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
         return out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s
 
     oid, status, done_n, reps, part, exp = c.db().retrying(work)
-    if status == "done":
+    if status == RequestStatus.DONE:
         tail = "all executions done; it leaves the queue"
-    elif result == "partial":
+    elif result == OutcomeResult.PARTIAL:
         tail = (f"{part:g} s of {exp:g} s credited; the remaining {exp - part:g} s stay queued" if part > 0 else
                 f"execution {done_n} of {reps} complete; the next stays queued")
-    elif result == "failed":
+    elif result == OutcomeResult.FAILED:
         tail = "back in the queue"
     else:
         tail = f"{done_n} of {reps} executions done; the rest stay queued"
@@ -360,23 +351,7 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
                f"The next plan build reflects it.")
 
 
-# --------------------------------------------------------------------------- demo
-
-@click.command("demo")
-@click.option("--out", "out_dir", metavar="DIR", help="folder for the demo's database, config, chart and exports "
-                                                      "(default: a new temporary folder)")
-@click.option("--time-limit", type=float, default=8.0, show_default=True, help="solver time limit per build, seconds")
-def demo(out_dir: str | None, time_limit: float) -> None:
-    """The whole job on the invented scenario: queue, forecast, plan, chart, export, re-plan."""
-    from scheduler.demo import run_demo
-
-    if not (0.1 <= time_limit <= 600):
-        raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 600 seconds")
-    run_demo(out_dir, time_limit)
-
-
 def register(cli: click.Group) -> None:
     cli.add_command(plan)
     cli.add_command(next_cmd)
     cli.add_command(record)
-    cli.add_command(demo)

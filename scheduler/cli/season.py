@@ -11,7 +11,7 @@ from pathlib import Path
 
 import click
 
-from scheduler.cli.main import Ctx, console, echo_json, pass_ctx
+from scheduler.cli.common import Ctx, console, echo_json, pass_ctx
 from scheduler.model.errors import InputError
 
 DEFAULT_EFFORT = 3  # a 300-request night plans in about 1 s on one core (docs/benchmarks.md)

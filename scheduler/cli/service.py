@@ -9,8 +9,9 @@ from pathlib import Path
 
 import click
 
-from scheduler.cli.main import Ctx, echo_json, pass_ctx
+from scheduler.cli.common import Ctx, echo_json, pass_ctx
 from scheduler.model.errors import InputError
+from scheduler.report.safe_text import clean
 
 POLL_RANGE = (0.2, 600.0)
 
@@ -126,9 +127,10 @@ def _web_thread(db, config, clock, web: bool, once: bool, host: str, port: int, 
 @pass_ctx
 def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None, clock_text: str | None) -> None:
     """Order a re-plan from now. The running service takes it within seconds; if no service is
-    alive, the plan is built here (inline) and the command says so."""
+    alive, the plan is built here (inline) and the command says so. Either way the same re-plan
+    runs, within planning.replan_time_limit_s (at most planning.time_limit_s)."""
     from scheduler.db import plans
-    from scheduler.db.models import ReplanOrder, utcnow
+    from scheduler.db.models import ReplanOrder
     from scheduler.service.clock import Clock
     from scheduler.service.daemon import wait_until
     from scheduler.service.lock import read_lock
@@ -157,41 +159,25 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
         with db.session() as s:
             o = s.get(ReplanOrder, oid)
             result, version = o.result or "", o.plan_id
-        click.echo(f"order {oid} done: {result}")
+        click.echo(f"order {oid} done: {clean(result)}")
         if version is None:
             sys.exit(1)
         return
 
     from scheduler.planning.planner import Planner
-    from scheduler.service.jobs import describe_built
+    from scheduler.planning.replan import add_taken_order, carry_out_orders, replan as replan_action
 
     config = c.config()
     click.echo(f"no service is alive ({stale}); re-planning inline")
-
-    def add(s):
-        o = plans.add_order(s, reason, _who())
-        o.taken_at = utcnow()
-        return o.id
-
-    oid = db.retrying(add)
+    oid = add_taken_order(db, reason, _who())
     planner = Planner(config)
     now = clock.now()
-    try:
-        built = planner.build_and_store(db, night_date=planner.coming_night(now), reason=reason, now=now)
-        result = ("inline: " + describe_built(built)) if built.version is not None else \
-            f"failed: the plan checker refused the plan ({built.result.violations[0]})"
-    except Exception as e:  # noqa: BLE001 - recorded on the order, then shown by the CLI
-        result = f"failed: {type(e).__name__}: {e}"
-        built = None
-
-    def finish(s):
-        plans.finish_order(s.get(ReplanOrder, oid), result, built.version if built is not None else None)
-
-    db.retrying(finish)
-    if built is None or built.version is None:
-        click.echo(f"nightplan: error: order {oid} {result}", err=True)
+    result, version = carry_out_orders(db, [oid], lambda: replan_action(planner, db, now=now, reason=reason),
+                                       prefix="inline: ")
+    if version is None:
+        click.echo(f"nightplan: error: order {oid} {clean(result)}", err=True)
         sys.exit(1)
-    click.echo(f"order {oid} done: {result}")
+    click.echo(f"order {oid} done: {clean(result)}")
 
 
 @click.command()
@@ -222,20 +208,20 @@ def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
         click.echo(f"plan:       version {plan_d['version']} for the night of {plan_d['night']}, "
                    f"built {plan_d['created_at']} from {plan_d['planned_from']}, {plan_d['entries']} entries, "
                    f"{plan_d['solver_status']}")
-        click.echo(f"reason:     {plan_d['reason']}")
+        click.echo(f"reason:     {clean(plan_d['reason'])}")
     else:
         click.echo("plan:       none yet")
     if rep_d:
-        click.echo(f"conditions: report {rep_d['report']} from {rep_d['source']}, issued {rep_d['issued_at']}, "
+        click.echo(f"conditions: report {rep_d['report']} from {clean(rep_d['source'])}, issued {rep_d['issued_at']}, "
                    f"received {rep_d['received_at']} ({rep_d['samples']} samples)")
     else:
         click.echo("conditions: none stored")
     click.echo(f"orders:     {len(pending)} pending")
     for o in pending:
         taken = f", taken {o['taken_at']}" if o["taken_at"] else ""
-        click.echo(f"  #{o['id']} {o['requested_at']} by {o['requested_by']}{taken}: {o['reason']}")
+        click.echo(f"  #{o['id']} {o['requested_at']} by {clean(o['requested_by'])}{taken}: {clean(o['reason'])}")
     if last_d:
-        click.echo(f"last order: #{last_d['id']} done {last_d['done_at']}: {last_d['result']}")
+        click.echo(f"last order: #{last_d['id']} done {last_d['done_at']}: {clean(last_d['result'])}")
 
 
 def register(cli: click.Group) -> None:

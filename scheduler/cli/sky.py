@@ -6,9 +6,10 @@ from pathlib import Path
 
 import click
 
-from scheduler.cli.main import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from scheduler.cli.common import Ctx, console, echo_json, parse_night, pass_ctx, warn
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso
+from scheduler.report.safe_text import clean
 
 
 @click.group()
@@ -36,7 +37,7 @@ def conditions_load(c: Ctx, file: str, source: str | None, fmt: str | None) -> N
     db = c.db()
     rep_id = db.retrying(lambda s: store.store_conditions(s, list(report), src, report.issued).id)
     first, last = report.samples[0].time, report.samples[-1].time
-    click.echo(f"conditions report {rep_id} stored: {len(report)} samples from {iso(first)} to {iso(last)} ({src})")
+    click.echo(f"conditions report {rep_id} stored: {len(report)} samples from {iso(first)} to {iso(last)} ({clean(src)})")
 
 
 @conditions.command("show")
@@ -62,7 +63,7 @@ def conditions_show(c: Ctx, as_json: bool) -> None:
     if as_json:
         echo_json(data)
         return
-    from rich.table import Table
+    from scheduler.report.safe_text import SafeTable as Table
 
     t = Table("time (UTC)", "seeing \"", "PWV mm", "cloud mag", "wind m/s", "humidity %", "dome",
               title=f"conditions report {data['id']} from {data['source']}, issued {data['issued_at']}")
@@ -96,7 +97,7 @@ def almanac(c: Ctx, night: str | None, as_json: bool) -> None:
     if as_json:
         echo_json(data)
         return
-    click.echo(f"{data['site']['name']}  lat {data['site']['lat_deg']:+.3f}  lon {data['site']['lon_deg']:+.3f}  "
+    click.echo(f"{clean(data['site']['name'])}  lat {data['site']['lat_deg']:+.3f}  lon {data['site']['lon_deg']:+.3f}  "
                f"{data['site']['elevation_m']:.0f} m   night of {data['night']} ({data['site']['timezone']})")
     for key in ("sunset", "civil_dusk", "nautical_dusk", "astronomical_dusk",
                 "astronomical_dawn", "nautical_dawn", "civil_dawn", "sunrise"):

@@ -7,7 +7,7 @@ import sys
 
 import click
 
-from scheduler.cli.main import Ctx, pass_ctx, warn
+from scheduler.cli.common import Ctx, pass_ctx, warn
 
 
 def web_options_from_cli(host: str, port: int, token_file: str | None, *, prefix: str = ""):

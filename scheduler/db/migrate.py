@@ -1,4 +1,5 @@
-"""Schema upgrades with Alembic (the scripts live in the project's migrations/ folder)."""
+"""Schema upgrades with Alembic. The scripts ship inside the package (``scheduler/db/migrations/``,
+package data), so an installed wheel finds them as a source checkout does."""
 
 from __future__ import annotations
 
@@ -11,14 +12,14 @@ from alembic.script import ScriptDirectory
 
 from scheduler.db.session import Database
 
-MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
+MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 
 
 def alembic_config(db: Database) -> Config:
     if not (MIGRATIONS_DIR / "env.py").is_file():
         raise RuntimeError(
-            f"migration scripts not found at {MIGRATIONS_DIR}; install nightplan from its source "
-            "folder with `pip install -e .`"
+            f"migration scripts not found at {MIGRATIONS_DIR}; this nightplan installation is incomplete "
+            "(reinstall it: `pip install --force-reinstall nightplan`)"
         )
     cfg = Config()
     cfg.set_main_option("script_location", str(MIGRATIONS_DIR))
@@ -27,10 +28,34 @@ def alembic_config(db: Database) -> Config:
 
 
 def _with_connection(db: Database, fn) -> None:
+    """Run ``fn(cfg)`` in one transaction: a failed upgrade leaves the schema as it was.
+
+    SQLite needs two things for that. Python's driver opens a transaction only before a data
+    change, so schema changes would commit one by one: the transaction is begun explicitly.
+    Foreign-key enforcement is off meanwhile: a batch migration copies a table, drops the
+    original and renames the copy, and dropping a table others refer to fails with it on. The
+    keys are checked before the commit instead."""
     cfg = alembic_config(db)
-    with db.engine.begin() as conn:
-        cfg.attributes["connection"] = conn
-        fn(cfg)
+    sqlite = db.engine.dialect.name == "sqlite"
+    with db.engine.connect() as conn:
+        if sqlite:  # only outside a transaction does SQLite take this pragma
+            conn.exec_driver_sql("PRAGMA foreign_keys=OFF")
+            conn.commit()
+        try:
+            with conn.begin():
+                if sqlite:
+                    conn.exec_driver_sql("BEGIN IMMEDIATE")
+                cfg.attributes["connection"] = conn
+                fn(cfg)
+                if sqlite:
+                    broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                    if broken:
+                        raise RuntimeError(f"the migration left {len(broken)} broken foreign keys "
+                                           f"(first: {tuple(broken[0])}); nothing was changed")
+        finally:
+            if sqlite:
+                conn.exec_driver_sql("PRAGMA foreign_keys=ON")
+                conn.commit()
 
 
 def upgrade(db: Database, revision: str = "head") -> None:

@@ -1,20 +1,25 @@
 """SQLAlchemy 2.0 typed models: the queue, conditions, plans, outcomes and re-plan orders.
 
-Times are stored as naive UTC and read back as aware UTC (``UTCDateTime``), so SQLite and
-PostgreSQL behave alike. The Alembic migrations in ``migrations/`` must agree with these
-models (tests/test_db.py compares them).
+Column types follow the annotations (``Base.type_annotation_map``): every ``datetime`` is
+stored as naive UTC and read back as aware UTC (``UTCDateTime``), so SQLite and PostgreSQL
+behave alike; ``dict`` is a JSON column; a request's status and an outcome's result are their
+enums' values, held to them by a CHECK constraint (portable: no database enum type). The
+Alembic migrations in ``db/migrations/`` must agree with these models (tests/test_db.py compares
+them).
 """
 
 from __future__ import annotations
 
 from datetime import date, datetime, timezone
+from typing import Any
 
-from scheduler.model.timegrid import utcnow  # noqa: F401  (models' default timestamps; re-exported for storage)
 from sqlalchemy import (
-    Boolean, Date, DateTime, Float, ForeignKey, Index, Integer, MetaData, String, Text,
-    TypeDecorator, UniqueConstraint,
+    JSON, DateTime, Enum, Float, ForeignKey, Index, MetaData, String, Text, TypeDecorator, UniqueConstraint,
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
+
+from scheduler.model.request import OutcomeResult, RequestStatus
+from scheduler.model.timegrid import utcnow  # noqa: F401  (models' default timestamps; re-exported for storage)
 
 NAMING = {
     "ix": "ix_%(column_0_label)s",
@@ -44,8 +49,21 @@ class UTCDateTime(TypeDecorator):
         return value.replace(tzinfo=timezone.utc)
 
 
+def _text_enum(cls: type, name: str) -> Enum:
+    """An enum stored as its values in VARCHAR(16) with a CHECK constraint named ``name``."""
+    return Enum(cls, name=name, native_enum=False, create_constraint=True, length=16, validate_strings=True,
+                values_callable=lambda e: [m.value for m in e])
+
+
 class Base(DeclarativeBase):
     metadata = MetaData(naming_convention=NAMING)
+    type_annotation_map = {
+        float: Float(),  # SQLAlchemy 2.1 would default to Double; the schema says FLOAT
+        datetime: UTCDateTime(),
+        dict[str, Any]: JSON(),
+        RequestStatus: _text_enum(RequestStatus, "status"),
+        OutcomeResult: _text_enum(OutcomeResult, "result"),
+    }
 
 
 class Program(Base):
@@ -54,9 +72,9 @@ class Program(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     code: Mapped[str] = mapped_column(String(64), unique=True)
     pi: Mapped[str] = mapped_column(String(200))
-    hours_allocated: Mapped[float] = mapped_column(Float, default=0.0)
-    weight: Mapped[float] = mapped_column(Float, default=1.0)
-    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    hours_allocated: Mapped[float] = mapped_column(default=0.0)
+    weight: Mapped[float] = mapped_column(default=1.0)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
 
     requests: Mapped[list[Request]] = relationship(back_populates="program")
 
@@ -68,34 +86,34 @@ class Request(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     program_id: Mapped[int] = mapped_column(ForeignKey("program.id"))
     target: Mapped[str] = mapped_column(String(200))
-    ra_deg: Mapped[float] = mapped_column(Float)
-    dec_deg: Mapped[float] = mapped_column(Float)
+    ra_deg: Mapped[float]
+    dec_deg: Mapped[float]
     band: Mapped[str] = mapped_column(String(16))
     instrument: Mapped[str | None] = mapped_column(String(64))
-    exposure_s: Mapped[float] = mapped_column(Float)
-    repeats: Mapped[int] = mapped_column(Integer, default=1)
-    min_spacing_s: Mapped[float | None] = mapped_column(Float)
-    resolution_arcsec: Mapped[float | None] = mapped_column(Float)
-    max_seeing_arcsec: Mapped[float | None] = mapped_column(Float)
-    max_pwv_mm: Mapped[float | None] = mapped_column(Float)
-    max_airmass: Mapped[float | None] = mapped_column(Float)
-    min_moon_sep_deg: Mapped[float | None] = mapped_column(Float)
-    max_moon_illum: Mapped[float | None] = mapped_column(Float)
-    min_sky_mag: Mapped[float | None] = mapped_column(Float)
-    max_cloud_mag: Mapped[float | None] = mapped_column(Float)
-    not_before: Mapped[datetime | None] = mapped_column(UTCDateTime)
-    not_after: Mapped[datetime | None] = mapped_column(UTCDateTime)
-    period_epoch: Mapped[datetime | None] = mapped_column(UTCDateTime)
-    period_days: Mapped[float | None] = mapped_column(Float)
-    phase_min: Mapped[float | None] = mapped_column(Float)
-    phase_max: Mapped[float | None] = mapped_column(Float)
-    priority: Mapped[int] = mapped_column(Integer, default=5)
-    too: Mapped[bool] = mapped_column(Boolean, default=False)
-    status: Mapped[str] = mapped_column(String(16), default="queued")
-    completed_repeats: Mapped[int] = mapped_column(Integer, default=0)
-    partial_exposure_s: Mapped[float] = mapped_column(Float, default=0.0)
-    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    updated_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow, onupdate=utcnow)
+    exposure_s: Mapped[float]
+    repeats: Mapped[int] = mapped_column(default=1)
+    min_spacing_s: Mapped[float | None]
+    resolution_arcsec: Mapped[float | None]
+    max_seeing_arcsec: Mapped[float | None]
+    max_pwv_mm: Mapped[float | None]
+    max_airmass: Mapped[float | None]
+    min_moon_sep_deg: Mapped[float | None]
+    max_moon_illum: Mapped[float | None]
+    min_sky_mag: Mapped[float | None]
+    max_cloud_mag: Mapped[float | None]
+    not_before: Mapped[datetime | None]
+    not_after: Mapped[datetime | None]
+    period_epoch: Mapped[datetime | None]
+    period_days: Mapped[float | None]
+    phase_min: Mapped[float | None]
+    phase_max: Mapped[float | None]
+    priority: Mapped[int] = mapped_column(default=5)
+    too: Mapped[bool] = mapped_column(default=False)
+    status: Mapped[RequestStatus] = mapped_column(default=RequestStatus.QUEUED)
+    completed_repeats: Mapped[int] = mapped_column(default=0)
+    partial_exposure_s: Mapped[float] = mapped_column(default=0.0)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    updated_at: Mapped[datetime] = mapped_column(default=utcnow, onupdate=utcnow)
 
     program: Mapped[Program] = relationship(back_populates="requests")
 
@@ -104,10 +122,10 @@ class ConditionsReport(Base):
     __tablename__ = "conditions_report"
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    issued_at: Mapped[datetime] = mapped_column(UTCDateTime)
-    received_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    issued_at: Mapped[datetime]
+    received_at: Mapped[datetime] = mapped_column(default=utcnow)
     source: Mapped[str] = mapped_column(String(200))
-    n_samples: Mapped[int] = mapped_column(Integer)
+    n_samples: Mapped[int]
 
     samples: Mapped[list[ConditionsSample]] = relationship(
         back_populates="report", order_by="ConditionsSample.time", cascade="all, delete-orphan"
@@ -120,13 +138,13 @@ class ConditionsSample(Base):
 
     id: Mapped[int] = mapped_column(primary_key=True)
     report_id: Mapped[int] = mapped_column(ForeignKey("conditions_report.id"))
-    time: Mapped[datetime] = mapped_column(UTCDateTime)
-    seeing_arcsec: Mapped[float | None] = mapped_column(Float)
-    pwv_mm: Mapped[float | None] = mapped_column(Float)
-    cloud_mag: Mapped[float | None] = mapped_column(Float)
-    wind_ms: Mapped[float | None] = mapped_column(Float)
-    humidity_pct: Mapped[float | None] = mapped_column(Float)
-    dome_open: Mapped[bool | None] = mapped_column(Boolean)
+    time: Mapped[datetime]
+    seeing_arcsec: Mapped[float | None]
+    pwv_mm: Mapped[float | None]
+    cloud_mag: Mapped[float | None]
+    wind_ms: Mapped[float | None]
+    humidity_pct: Mapped[float | None]
+    dome_open: Mapped[bool | None]
 
     report: Mapped[ConditionsReport] = relationship(back_populates="samples")
 
@@ -138,22 +156,22 @@ class Plan(Base):
     __table_args__ = (Index("ix_plan_night_active", "night", "active"),)
 
     id: Mapped[int] = mapped_column(primary_key=True)  # the version number
-    night: Mapped[date] = mapped_column(Date)
-    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    night: Mapped[date]
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
     reason: Mapped[str] = mapped_column(Text)
-    planned_from: Mapped[datetime] = mapped_column(UTCDateTime)  # start of the night or the re-plan time
+    planned_from: Mapped[datetime]  # start of the night or the re-plan time
     conditions_report_id: Mapped[int | None] = mapped_column(ForeignKey("conditions_report.id"))
     solver_status: Mapped[str] = mapped_column(String(32))
-    objective: Mapped[float] = mapped_column(Float)
-    bound: Mapped[float] = mapped_column(Float)
-    gap: Mapped[float] = mapped_column(Float)
-    runtime_s: Mapped[float] = mapped_column(Float)
-    greedy_objective: Mapped[float | None] = mapped_column(Float)
-    active: Mapped[bool] = mapped_column(Boolean, default=True)
-    superseded_at: Mapped[datetime | None] = mapped_column(UTCDateTime)
+    objective: Mapped[float]
+    bound: Mapped[float]
+    gap: Mapped[float]
+    runtime_s: Mapped[float]
+    greedy_objective: Mapped[float | None]
+    active: Mapped[bool] = mapped_column(default=True)
+    superseded_at: Mapped[datetime | None]
     previous_id: Mapped[int | None] = mapped_column(ForeignKey("plan.id"))
-    summary_json: Mapped[str] = mapped_column(Text, default="{}")  # figures, unscheduled, timings
-    diff_json: Mapped[str] = mapped_column(Text, default="{}")  # added / dropped / moved vs previous
+    summary: Mapped[dict[str, Any]] = mapped_column(default=dict)  # figures, unscheduled, timings
+    diff: Mapped[dict[str, Any]] = mapped_column(default=dict)  # added / dropped / moved vs previous
 
     entries: Mapped[list[PlanEntry]] = relationship(
         back_populates="plan", order_by="PlanEntry.start", cascade="all, delete-orphan"
@@ -166,22 +184,22 @@ class PlanEntry(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     plan_id: Mapped[int] = mapped_column(ForeignKey("plan.id"), index=True)
     request_id: Mapped[int] = mapped_column(ForeignKey("request.id"), index=True)
-    execution: Mapped[int] = mapped_column(Integer, default=0)
-    start: Mapped[datetime] = mapped_column(UTCDateTime)
-    end: Mapped[datetime] = mapped_column(UTCDateTime)
-    slew_s: Mapped[float] = mapped_column(Float)  # axis motion from the previous entry
-    transition_s: Mapped[float] = mapped_column(Float, default=0.0)  # slew + settle + instrument/filter change
-    setup_s: Mapped[float] = mapped_column(Float)
-    exposure_s: Mapped[float] = mapped_column(Float)
-    airmass_start: Mapped[float] = mapped_column(Float)
-    airmass_end: Mapped[float] = mapped_column(Float)
-    fwhm_arcsec: Mapped[float] = mapped_column(Float)
-    pwv_mm: Mapped[float] = mapped_column(Float)
-    transmission: Mapped[float] = mapped_column(Float)
-    merit: Mapped[float] = mapped_column(Float)
-    moon_sep_deg: Mapped[float | None] = mapped_column(Float)
-    value: Mapped[float] = mapped_column(Float, default=0.0)
-    fixed: Mapped[bool] = mapped_column(Boolean, default=False)  # kept from the previous plan
+    execution: Mapped[int] = mapped_column(default=0)
+    start: Mapped[datetime]
+    end: Mapped[datetime]
+    slew_s: Mapped[float]  # axis motion from the previous entry
+    transition_s: Mapped[float] = mapped_column(default=0.0)  # slew + settle + instrument/filter change
+    setup_s: Mapped[float]
+    exposure_s: Mapped[float]
+    airmass_start: Mapped[float]
+    airmass_end: Mapped[float]
+    fwhm_arcsec: Mapped[float]
+    pwv_mm: Mapped[float]
+    transmission: Mapped[float]
+    merit: Mapped[float]
+    moon_sep_deg: Mapped[float | None]
+    value: Mapped[float] = mapped_column(default=0.0)
+    fixed: Mapped[bool] = mapped_column(default=False)  # kept from the previous plan
 
     plan: Mapped[Plan] = relationship(back_populates="entries")
 
@@ -192,10 +210,10 @@ class Outcome(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     request_id: Mapped[int] = mapped_column(ForeignKey("request.id"), index=True)
     plan_entry_id: Mapped[int | None] = mapped_column(ForeignKey("plan_entry.id"))
-    result: Mapped[str] = mapped_column(String(16))  # done | failed | partial
-    exposure_s: Mapped[float | None] = mapped_column(Float)
+    result: Mapped[OutcomeResult]
+    exposure_s: Mapped[float | None]
     note: Mapped[str | None] = mapped_column(Text)
-    recorded_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    recorded_at: Mapped[datetime] = mapped_column(default=utcnow)
 
 
 class ReplanOrder(Base):
@@ -204,9 +222,9 @@ class ReplanOrder(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     requested_by: Mapped[str] = mapped_column(String(200))
     reason: Mapped[str] = mapped_column(Text)
-    requested_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    taken_at: Mapped[datetime | None] = mapped_column(UTCDateTime)
-    done_at: Mapped[datetime | None] = mapped_column(UTCDateTime)
+    requested_at: Mapped[datetime] = mapped_column(default=utcnow)
+    taken_at: Mapped[datetime | None]
+    done_at: Mapped[datetime | None]
     result: Mapped[str | None] = mapped_column(Text)
     plan_id: Mapped[int | None] = mapped_column(ForeignKey("plan.id"))
 
@@ -218,10 +236,10 @@ class ServiceLock(Base):
 
     name: Mapped[str] = mapped_column(String(32), primary_key=True)
     holder: Mapped[str] = mapped_column(String(200))  # host:pid:token
-    pid: Mapped[int] = mapped_column(Integer)
+    pid: Mapped[int]
     host: Mapped[str] = mapped_column(String(200))
-    started_at: Mapped[datetime] = mapped_column(UTCDateTime)
-    heartbeat_at: Mapped[datetime] = mapped_column(UTCDateTime)
+    started_at: Mapped[datetime]
+    heartbeat_at: Mapped[datetime]
 
 
 class SeasonOutlook(Base):
@@ -234,17 +252,17 @@ class SeasonOutlook(Base):
                       Index("ix_season_outlook_program", "program_id", "computed_at"))
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    computed_at: Mapped[datetime] = mapped_column(UTCDateTime)
-    season_from: Mapped[date] = mapped_column(Date)
-    season_to: Mapped[date] = mapped_column(Date)
-    realizations: Mapped[int] = mapped_column(Integer)
-    seed: Mapped[int] = mapped_column(Integer)
-    effort: Mapped[int] = mapped_column(Integer)
+    computed_at: Mapped[datetime]
+    season_from: Mapped[date]
+    season_to: Mapped[date]
+    realizations: Mapped[int]
+    seed: Mapped[int]
+    effort: Mapped[int]
     weather: Mapped[str] = mapped_column(String(200))  # the climatology file's name
     request_id: Mapped[int | None] = mapped_column(ForeignKey("request.id"))
     program_id: Mapped[int | None] = mapped_column(ForeignKey("program.id"))
-    p_complete: Mapped[float | None] = mapped_column(Float)  # requests
-    completion_mean: Mapped[float | None] = mapped_column(Float)  # programs
-    completion_p10: Mapped[float | None] = mapped_column(Float)
-    completion_p90: Mapped[float | None] = mapped_column(Float)
-    charged_h_mean: Mapped[float | None] = mapped_column(Float)
+    p_complete: Mapped[float | None]  # requests
+    completion_mean: Mapped[float | None]  # programs
+    completion_p10: Mapped[float | None]
+    completion_p90: Mapped[float | None]
+    charged_h_mean: Mapped[float | None]

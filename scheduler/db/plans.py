@@ -6,21 +6,22 @@ the same transaction, so readers always see exactly one complete active plan per
 
 from __future__ import annotations
 
-import json
+import math
 from datetime import date, datetime
 from typing import Any
 
-from sqlalchemy import select
-from sqlalchemy.orm import Session
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session, selectinload
 
+from scheduler.model import plan as contract
 from scheduler.model.errors import InputError, NotFoundError
-from scheduler.model.request import RequestSpec
+from scheduler.model.request import RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso
-from scheduler.model.plan import PlanEntry as PlannedEntry, PlanResult
-from scheduler.db.models import Plan, PlanEntry, ReplanOrder, Request, utcnow
+from scheduler.db.models import ConditionsReport, Plan, PlanEntry, Program, ReplanOrder, Request, utcnow
 
 
-def plan_diff(old: list[PlanEntry] | None, new: tuple[PlannedEntry, ...], moved_tolerance_s: float = 60.0) -> dict[str, list]:
+def plan_diff(old: list[PlanEntry] | None, new: tuple[contract.PlanEntry, ...],
+              moved_tolerance_s: float = 60.0) -> dict[str, list]:
     """added / dropped / moved between the previous active plan's entries and a new plan's.
 
     Executions are matched per request in time order (the k-th planned execution of a request
@@ -57,8 +58,24 @@ def active_plan(s: Session, night: date | None = None) -> Plan | None:
 
 
 def active_plans(s: Session) -> list[Plan]:
-    """The active plan of every night, newest night first."""
-    return list(s.scalars(select(Plan).where(Plan.active.is_(True)).order_by(Plan.night.desc(), Plan.id.desc())))
+    """The active plan of every night, newest night first, with their entries (one query more)."""
+    q = (select(Plan).where(Plan.active.is_(True)).options(selectinload(Plan.entries))
+         .order_by(Plan.night.desc(), Plan.id.desc()))
+    return list(s.scalars(q))
+
+
+def plan_listing(s: Session, night: date | None = None) -> list[dict[str, Any]]:
+    """Stored plan versions, newest first, as `plan list --json` prints them. One query: the
+    entries are counted by the database, not loaded plan by plan."""
+    n_entries = (select(PlanEntry.plan_id, func.count(PlanEntry.id).label("n"))
+                 .group_by(PlanEntry.plan_id).subquery())
+    q = (select(Plan, func.coalesce(n_entries.c.n, 0))
+         .outerjoin(n_entries, n_entries.c.plan_id == Plan.id).order_by(Plan.id.desc()))
+    if night is not None:
+        q = q.where(Plan.night == night)
+    return [{"version": p.id, "night": p.night.isoformat(), "created_at": iso(p.created_at), "active": p.active,
+             "reason": p.reason, "solver_status": p.solver_status, "objective": p.objective, "gap": p.gap,
+             "entries": int(n), "previous_version": p.previous_id} for p, n in s.execute(q)]
 
 
 def get_plan(s: Session, version: int | None = None) -> Plan:
@@ -73,13 +90,13 @@ def get_plan(s: Session, version: int | None = None) -> Plan:
     return plan
 
 
-def entries_as_planned(plan: Plan | None) -> list[PlannedEntry]:
-    """A stored plan's entries in the solver's PlanEntry form (to seed or stabilise a re-plan)."""
+def entries_as_planned(plan: Plan | None) -> list[contract.PlanEntry]:
+    """A stored plan's entries in the contract's PlanEntry form (to seed or stabilise a re-plan)."""
     if plan is None:
         return []
     out = []
     for e in plan.entries:
-        out.append(PlannedEntry(
+        out.append(contract.PlanEntry(
             request_id=e.request_id, execution=e.execution, start=e.start, end=e.end,
             start_step=-1, end_step=-1, slew_s=e.slew_s, transition_s=e.transition_s, setup_s=e.setup_s,
             airmass_start=e.airmass_start, airmass_end=e.airmass_end, predicted_fwhm_arcsec=e.fwhm_arcsec,
@@ -90,7 +107,7 @@ def entries_as_planned(plan: Plan | None) -> list[PlannedEntry]:
     return out
 
 
-def store_plan(s: Session, result: PlanResult, *, night: date, reason: str, planned_from: datetime,
+def store_plan(s: Session, result: contract.PlanResult, *, night: date, reason: str, planned_from: datetime,
                specs: dict[int, RequestSpec], conditions_report_id: int | None,
                extra_summary: dict[str, Any] | None = None) -> Plan:
     """Write a checked plan as a new active version and supersede the night's previous one."""
@@ -120,7 +137,7 @@ def store_plan(s: Session, result: PlanResult, *, night: date, reason: str, plan
         objective=float(result.objective), bound=float(result.bound), gap=float(result.gap),
         runtime_s=float(result.runtime_s), greedy_objective=float(result.greedy_objective),
         active=True, previous_id=previous.id if previous else None,
-        summary_json=json.dumps(summary, default=_json_default), diff_json=json.dumps(diff),
+        summary=_plain(summary), diff=_plain(diff),
     )
     for e in result.entries:
         spec = specs.get(e.request_id)
@@ -142,9 +159,9 @@ def store_plan(s: Session, result: PlanResult, *, night: date, reason: str, plan
 
 def _mark_planned(s: Session, planned_ids: set[int]) -> None:
     """queued <-> planned follows the active plan; done/withdrawn/expired are left alone."""
-    rows = s.scalars(select(Request).where(Request.status.in_(("queued", "planned"))))
+    rows = s.scalars(select(Request).where(Request.status.in_((RequestStatus.QUEUED, RequestStatus.PLANNED))))
     for r in rows:
-        want = "planned" if r.id in planned_ids else "queued"
+        want = RequestStatus.PLANNED if r.id in planned_ids else RequestStatus.QUEUED
         if r.status != want:
             r.status = want
 
@@ -156,20 +173,62 @@ def _finite_or_none(x: float | None) -> float | None:
     return x if x == x and abs(x) != float("inf") else None
 
 
-def _json_default(o: Any):
+def _plain(o: Any) -> Any:
+    """A value a JSON column stores on any database: numpy scalars as numbers, times as ISO
+    text, tuples as lists, NaN and infinities as null (PostgreSQL's JSON refuses them)."""
+    if isinstance(o, dict):
+        return {str(k): _plain(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_plain(v) for v in o]
+    if hasattr(o, "tolist"):  # numpy scalar or array
+        return _plain(o.tolist())
+    if o is None or isinstance(o, (bool, int, str)):
+        return o
+    if isinstance(o, float):
+        return o if math.isfinite(o) else None
     if isinstance(o, (datetime, date)):
         return o.isoformat()
-    if hasattr(o, "item"):
-        return o.item()
     return str(o)
 
 
 def plan_summary(plan: Plan) -> dict[str, Any]:
-    return json.loads(plan.summary_json or "{}")
+    return plan.summary or {}
 
 
 def plan_diff_of(plan: Plan) -> dict[str, Any]:
-    return json.loads(plan.diff_json or "{}")
+    return plan.diff or {}
+
+
+def stored_plan(s: Session, plan: Plan) -> contract.StoredPlan:
+    """A stored plan version with the requests and the conditions report its reports name, as
+    plain data (three queries whatever the plan's size: the entries, the requests with their
+    programs, the report)."""
+    summary = plan_summary(plan)
+    entries = tuple(contract.StoredEntry(
+        request_id=e.request_id, execution=e.execution, start=e.start, end=e.end, slew_s=e.slew_s,
+        transition_s=e.transition_s, setup_s=e.setup_s, exposure_s=e.exposure_s, airmass_start=e.airmass_start,
+        airmass_end=e.airmass_end, fwhm_arcsec=e.fwhm_arcsec, pwv_mm=e.pwv_mm, transmission=e.transmission,
+        merit=e.merit, moon_sep_deg=e.moon_sep_deg, value=e.value, fixed=e.fixed,
+    ) for e in sorted(plan.entries, key=lambda x: x.start))
+    ids = {e.request_id for e in entries} | {int(u["request_id"]) for u in summary.get("unscheduled", [])}
+    requests: dict[int, contract.RequestLabel] = {}
+    if ids:
+        q = (select(Request.id, Program.code, Request.target, Request.ra_deg, Request.dec_deg, Request.band,
+                    Request.instrument).join(Request.program).where(Request.id.in_(ids)))
+        for rid, code, target, ra, dec, band, instrument in s.execute(q):
+            requests[rid] = contract.RequestLabel(id=rid, program=code, target=target, ra_deg=ra, dec_deg=dec,
+                                                  band=band, instrument=instrument)
+    report = s.get(ConditionsReport, plan.conditions_report_id) if plan.conditions_report_id else None
+    conditions = (contract.ConditionsLabel(id=report.id, source=report.source, issued_at=report.issued_at)
+                  if report is not None else None)
+    return contract.StoredPlan(
+        version=plan.id, night=plan.night, created_at=plan.created_at, reason=plan.reason,
+        planned_from=plan.planned_from, solver_status=plan.solver_status, objective=plan.objective,
+        bound=plan.bound, gap=plan.gap, runtime_s=plan.runtime_s, greedy_objective=plan.greedy_objective,
+        active=plan.active, superseded_at=plan.superseded_at, previous_version=plan.previous_id,
+        summary=summary, diff=plan_diff_of(plan), entries=entries, requests=requests,
+        conditions_report_id=plan.conditions_report_id, conditions=conditions,
+    )
 
 
 # --------------------------------------------------------------------------- re-plan orders

@@ -11,10 +11,10 @@ from datetime import datetime
 from typing import Any, Iterable
 
 from sqlalchemy import select
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, contains_eager
 
 from scheduler.model.errors import InputError, NotFoundError
-from scheduler.model.request import ACTIVE_STATUSES, RequestSpec
+from scheduler.model.request import ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso
 from scheduler.db.models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
 
@@ -80,7 +80,7 @@ def add_requests(s: Session, specs: Iterable[RequestSpec]) -> list[int]:
         if prog is None:
             raise InputError("program", f"unknown program {spec.program!r}")
         row = Request(program_id=prog.id, **{f: getattr(spec, f) for f in _SPEC_FIELDS})
-        row.status = "queued"
+        row.status = RequestStatus.QUEUED
         s.add(row)
         rows.append(row)
     s.flush()
@@ -136,7 +136,8 @@ def get_request(s: Session, request_id: int) -> Request:
 
 
 def list_requests(s: Session, status: str | None = None, program: str | None = None) -> list[Request]:
-    q = select(Request).join(Program).order_by(Request.id)
+    """Requests with their program loaded by the same query (a listing names every program)."""
+    q = select(Request).join(Request.program).options(contains_eager(Request.program)).order_by(Request.id)
     if status:
         q = q.where(Request.status == status)
     if program:
@@ -146,15 +147,16 @@ def list_requests(s: Session, status: str | None = None, program: str | None = N
 
 def active_specs(s: Session) -> list[RequestSpec]:
     """Requests the planner may schedule, as RequestSpecs."""
-    q = select(Request).join(Program).where(Request.status.in_(ACTIVE_STATUSES)).order_by(Request.id)
+    q = (select(Request).join(Request.program).options(contains_eager(Request.program))
+         .where(Request.status.in_(ACTIVE_STATUSES)).order_by(Request.id))
     return [to_spec(r) for r in s.scalars(q)]
 
 
 def withdraw_request(s: Session, request_id: int) -> Request:
     row = get_request(s, request_id)
-    if row.status in ("done", "withdrawn", "expired"):
+    if row.status in CLOSED_STATUSES:
         raise InputError("id", f"request {request_id} is {row.status}; only queued, planned or failed requests can be withdrawn")
-    row.status = "withdrawn"
+    row.status = RequestStatus.WITHDRAWN
     row.updated_at = utcnow()
     return row
 
@@ -165,7 +167,7 @@ def expire_requests(s: Session, now: datetime) -> list[int]:
                               Request.not_after < now)
     rows = list(s.scalars(q))
     for r in rows:
-        r.status = "expired"
+        r.status = RequestStatus.EXPIRED
         r.updated_at = now
     return [r.id for r in rows]
 
@@ -176,28 +178,30 @@ def record_outcome(s: Session, request_id: int, result: str, exposure_s: float |
                    note: str | None = None, plan_entry_id: int | None = None) -> Outcome:
     """done: one execution complete (the request leaves the queue when all repeats are done);
     partial: the exposure achieved is credited and the rest stays queued; failed: back to the queue."""
-    if result not in ("done", "failed", "partial"):
-        raise InputError("result", f"{result!r}; allowed done, failed, partial")
+    try:
+        result = OutcomeResult(result)
+    except ValueError:
+        raise InputError("result", f"{result!r}; allowed {', '.join(OutcomeResult)}") from None
     row = get_request(s, request_id)
-    if row.status in ("withdrawn", "expired", "done"):
+    if row.status in CLOSED_STATUSES:
         raise InputError("id", f"request {request_id} is {row.status}; outcomes are recorded for queued or planned requests")
     if exposure_s is not None and not (0 <= exposure_s <= row.exposure_s):
         raise InputError("exposure", f"{exposure_s} is out of range; allowed 0 to {row.exposure_s:g} seconds (the request's exposure)")
     if note is not None and len(note) > 2000:
         raise InputError("note", "at most 2000 characters")
-    if result == "done":
+    if result == OutcomeResult.DONE:
         row.completed_repeats += 1
         row.partial_exposure_s = 0.0
-        row.status = "done" if row.completed_repeats >= row.repeats else "queued"
-    elif result == "partial":
+        row.status = RequestStatus.DONE if row.completed_repeats >= row.repeats else RequestStatus.QUEUED
+    elif result == OutcomeResult.PARTIAL:
         got = exposure_s if exposure_s is not None else 0.0
         row.partial_exposure_s = min(row.partial_exposure_s + got, row.exposure_s)
         if row.partial_exposure_s >= row.exposure_s:
             row.completed_repeats += 1
             row.partial_exposure_s = 0.0
-        row.status = "done" if row.completed_repeats >= row.repeats else "queued"
+        row.status = RequestStatus.DONE if row.completed_repeats >= row.repeats else RequestStatus.QUEUED
     else:
-        row.status = "queued"
+        row.status = RequestStatus.QUEUED
     row.updated_at = utcnow()
     out = Outcome(request_id=request_id, result=result, exposure_s=exposure_s, note=note, plan_entry_id=plan_entry_id)
     s.add(out)

@@ -95,7 +95,7 @@ class ConditionDefaults:
 class Planning:
     step_s: int = 60
     time_limit_s: float = 10.0
-    replan_time_limit_s: float = 4.0  # the service's re-plans (the lower of the two limits applies)
+    replan_time_limit_s: float = 4.0  # every re-plan from now, service or inline (the lower of the two applies)
     gap_tolerance: float = 0.01
     freeze_horizon_min: float = 15.0
     replan_seeing_change_arcsec: float = 0.2

@@ -1,10 +1,11 @@
-"""The plan contract: one planned entry and a built plan. Storage, reports, the service and the
-web page read these types; they never import the solver. Imports nothing of ours."""
+"""The plan contract: one planned entry and a built plan; a stored plan version as read back.
+Storage, reports, the service and the web page read these types; they never import the solver.
+Imports nothing of ours."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from datetime import datetime
+from datetime import date, datetime
 
 
 @dataclass(frozen=True)
@@ -69,3 +70,79 @@ class PlanResult:
     @property
     def science_value(self) -> float:
         return self.objective - self.stability_bonus
+
+
+# --------------------------------------------------------------------------- a stored plan, read back
+
+@dataclass(frozen=True)
+class StoredEntry:
+    """One entry of a stored plan version as storage reads it back (no grid steps: the night's
+    grid is not stored). ``exposure_s`` is what the entry exposes (less than the request's after
+    a partial outcome)."""
+
+    request_id: int
+    execution: int
+    start: datetime
+    end: datetime
+    slew_s: float
+    transition_s: float
+    setup_s: float
+    exposure_s: float
+    airmass_start: float
+    airmass_end: float
+    fwhm_arcsec: float
+    pwv_mm: float
+    transmission: float
+    merit: float
+    moon_sep_deg: float | None
+    value: float
+    fixed: bool
+
+
+@dataclass(frozen=True)
+class RequestLabel:
+    """What readers of a plan show of a request: its name, program, where it points, its band."""
+
+    id: int
+    program: str
+    target: str
+    ra_deg: float
+    dec_deg: float
+    band: str
+    instrument: str | None
+
+
+@dataclass(frozen=True)
+class ConditionsLabel:
+    """The conditions report a plan was built on."""
+
+    id: int
+    source: str
+    issued_at: datetime
+
+
+@dataclass(frozen=True)
+class StoredPlan:
+    """One stored plan version with what its reports need, read in one go by storage
+    (db.plans.stored_plan). Reports take this and never query."""
+
+    version: int
+    night: date
+    created_at: datetime
+    reason: str
+    planned_from: datetime
+    solver_status: str
+    objective: float
+    bound: float
+    gap: float
+    runtime_s: float
+    greedy_objective: float | None
+    active: bool
+    superseded_at: datetime | None
+    previous_version: int | None
+    summary: dict  # unscheduled, timings, site, telescope, conditions_covered_fraction, queue_size, ...
+    diff: dict  # added / dropped / moved against the previous version
+    entries: tuple[StoredEntry, ...]  # in start order
+    requests: dict[int, RequestLabel]  # every request named by an entry or in the summary's unscheduled
+    conditions_report_id: int | None
+    conditions: ConditionsLabel | None  # None: no report, or it was deleted

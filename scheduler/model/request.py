@@ -10,15 +10,38 @@ import math
 import re
 from dataclasses import dataclass, fields, replace
 from datetime import datetime
+from enum import StrEnum
 from typing import Any, Mapping
 
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso, parse_time
 
-STATUSES = ("queued", "planned", "done", "failed", "withdrawn", "expired")
-# Statuses the planner considers.
-ACTIVE_STATUSES = ("queued", "planned", "failed")
+
+
+class RequestStatus(StrEnum):
+    """Where a request is in its life. Stored as its value (the text), shown as its value."""
+
+    QUEUED = "queued"  # waiting for a plan
+    PLANNED = "planned"  # in the active plan
+    DONE = "done"  # every execution observed
+    FAILED = "failed"  # an attempt failed; the planner takes it again
+    WITHDRAWN = "withdrawn"  # taken back by its PI or an operator
+    EXPIRED = "expired"  # its not_after passed before it was done
+
+
+# Statuses the planner considers, and those of requests that have left the queue for good.
+ACTIVE_STATUSES = (RequestStatus.QUEUED, RequestStatus.PLANNED, RequestStatus.FAILED)
+CLOSED_STATUSES = (RequestStatus.DONE, RequestStatus.WITHDRAWN, RequestStatus.EXPIRED)
+
+
+class OutcomeResult(StrEnum):
+    """What an observer records for one planned execution."""
+
+    DONE = "done"  # the execution is complete
+    FAILED = "failed"  # nothing usable; back to the queue
+    PARTIAL = "partial"  # part of the exposure is credited, the rest stays queued
+
 
 # The import contract's columns (keep exactly; scripts depend on them).
 IMPORT_COLUMNS = (
@@ -68,7 +91,7 @@ class RequestSpec:
     priority: int = 5
     too: bool = False  # target of opportunity
     id: int | None = None
-    status: str = "queued"
+    status: RequestStatus = RequestStatus.QUEUED
     completed_repeats: int = 0
     partial_exposure_s: float = 0.0  # credited towards the current execution by a partial outcome
 

@@ -16,7 +16,7 @@ from scheduler.conditions.ingest import Sample
 from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
 from scheduler.db import plans, store
 from scheduler.db.session import Database
-from scheduler.model.request import RequestSpec
+from scheduler.model.request import OutcomeResult, RequestSpec
 from scheduler.sky.ephemeris import SkyCache
 from scheduler.sky.night import Night, night_date_for, night_for
 from scheduler.model.plan import PlanEntry, PlanResult
@@ -153,9 +153,9 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
         since = s.scalars(select(Outcome).where(Outcome.request_id.in_(ids), Outcome.recorded_at > plan.created_at))
         for o in since:
             sp = specs[o.request_id]
-            if o.result == "done":
+            if o.result == OutcomeResult.DONE:
                 specs[o.request_id] = sp.with_(completed_repeats=max(sp.completed_repeats - 1, 0), partial_exposure_s=0.0)
-            elif o.result == "partial" and o.exposure_s:
+            elif o.result == OutcomeResult.PARTIAL and o.exposure_s:
                 specs[o.request_id] = sp.with_(partial_exposure_s=max(sp.partial_exposure_s - o.exposure_s, 0.0))
         samples: list[Sample] = []
         if plan.conditions_report_id is not None:

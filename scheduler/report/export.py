@@ -33,9 +33,8 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo
 
-from sqlalchemy import select
-
 from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
+from scheduler.model.plan import StoredPlan
 from scheduler.model.timegrid import iso
 from scheduler.sky.night import Night
 
@@ -72,15 +71,11 @@ def _hours_overlap(a0: datetime, a1: datetime, b0: datetime | None, b1: datetime
     return max((hi - lo).total_seconds(), 0.0) / 3600.0
 
 
-def plan_document(s, plan, config: ObservatoryConfig, night: Night) -> dict[str, Any]:
-    """The document of one stored plan (``plan`` is a db.models.Plan read in session ``s``)."""
-    from scheduler.db import plans
-    from scheduler.db.models import ConditionsReport, Request
-
+def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> dict[str, Any]:
+    """The document of one stored plan version (read by storage: db.plans.stored_plan)."""
     tz = ZoneInfo(config.site.timezone)
-    summary = plans.plan_summary(plan)
-    ids = {e.request_id for e in plan.entries} | {int(u["request_id"]) for u in summary.get("unscheduled", [])}
-    reqs = {r.id: r for r in s.scalars(select(Request).where(Request.id.in_(ids)))} if ids else {}
+    summary = plan.summary
+    reqs = plan.requests
 
     entries = []
     for e in sorted(plan.entries, key=lambda x: x.start):
@@ -104,7 +99,7 @@ def plan_document(s, plan, config: ObservatoryConfig, night: Night) -> dict[str,
             "transmission": _r(e.transmission, 4),
             "merit": _r(e.merit, 4),
             "execution": e.execution,
-            "program": r.program.code if r else None,
+            "program": r.program if r else None,
             "instrument": r.instrument if r else None,
             "exposure_s": _r(e.exposure_s, 1),
             "transition_s": _r(e.transition_s, 1),
@@ -119,7 +114,7 @@ def plan_document(s, plan, config: ObservatoryConfig, night: Night) -> dict[str,
     for u in summary.get("unscheduled", []):
         r = reqs.get(int(u["request_id"]))
         unscheduled.append({"request_id": int(u["request_id"]), "reason": u.get("reason", ""),
-                            "target": r.target if r else None, "program": r.program.code if r else None,
+                            "target": r.target if r else None, "program": r.program if r else None,
                             "band": r.band if r else None})
 
     # Night figures: darkness is the Sun below -18 deg.
@@ -131,7 +126,7 @@ def plan_document(s, plan, config: ObservatoryConfig, night: Night) -> dict[str,
     slew_h = sum(e.slew_s for e in plan.entries) / 3600.0
     span_h = (night.end - max(plan.planned_from, night.start)).total_seconds() / 3600.0
 
-    report = s.get(ConditionsReport, plan.conditions_report_id) if plan.conditions_report_id else None
+    report = plan.conditions
     cover = summary.get("conditions_covered_fraction")
     conditions = {
         "report_id": plan.conditions_report_id,
@@ -150,11 +145,11 @@ def plan_document(s, plan, config: ObservatoryConfig, night: Night) -> dict[str,
                   "start_local": _local(night.start, tz), "end_local": _local(night.end, tz),
                   "astronomical_dusk": iso(dusk), "astronomical_dawn": iso(dawn), "dark_hours": round(dark_h, 3)},
         "plan": {
-            "version": plan.id, "created_at": iso(plan.created_at), "reason": plan.reason,
+            "version": plan.version, "created_at": iso(plan.created_at), "reason": plan.reason,
             "solver_status": plan.solver_status, "objective": _r(plan.objective, 4), "bound": _r(plan.bound, 4),
             "gap": _r(plan.gap, 5), "greedy_objective": _r(plan.greedy_objective, 4),
             "runtime_s": _r(plan.runtime_s, 2), "active": bool(plan.active), "planned_from": iso(plan.planned_from),
-            "previous_version": plan.previous_id, "superseded_at": iso(plan.superseded_at),
+            "previous_version": plan.previous_version, "superseded_at": iso(plan.superseded_at),
             "conditions": conditions,
         },
         "summary": {

@@ -1,6 +1,7 @@
 """Terminal views of a plan document (rich): the night's summary, the entry table, `next`.
 
 Reads only the plain document from report.export.plan_document; prints, computes nothing new.
+Names, reasons and sources in it are user text: shown through report.safe_text.
 """
 
 from __future__ import annotations
@@ -11,6 +12,8 @@ from typing import Any
 from rich.console import Console
 from rich.table import Table
 from rich.text import Text
+
+from scheduler.report.safe_text import SafeTable, clean
 
 
 def _t(s: str | None) -> datetime | None:
@@ -61,7 +64,7 @@ def summary_lines(doc: dict[str, Any]) -> list[str]:
 
 def entry_table(doc: dict[str, Any]) -> Table:
     tz = doc["site"]["timezone"]
-    t = Table(title=None, show_lines=False, header_style="bold", pad_edge=False)
+    t = SafeTable(title=None, show_lines=False, header_style="bold", pad_edge=False)
     for name, just in (("UTC", "left"), ("local", "left"), ("id", "right"), ("target", "left"), ("prog", "left"),
                        ("band", "left"), ("exp s", "right"), ("airmass", "right"), ("FWHM\"", "right"),
                        ("PWV mm", "right"), ("trans", "right"), ("moon°", "right"), ("merit", "right")):
@@ -82,11 +85,11 @@ def entry_table(doc: dict[str, Any]) -> Table:
 
 def print_plan(console: Console, doc: dict[str, Any], *, unscheduled: bool = False) -> None:
     for line in summary_lines(doc):
-        console.print(Text(line))
+        console.print(Text(clean(line)))
     console.print(Text(doc["caution"], style="yellow"))
     console.print(entry_table(doc))
     if unscheduled and doc["unscheduled"]:
-        t = Table("id", "target", "prog", "band", "why not", title="unscheduled", header_style="bold")
+        t = SafeTable("id", "target", "prog", "band", "why not", title="unscheduled", header_style="bold")
         for u in doc["unscheduled"]:
             t.add_row(str(u["request_id"]), u["target"] or "?", u["program"] or "?", u["band"] or "?", u["reason"])
         console.print(t)
@@ -96,7 +99,8 @@ def print_plan(console: Console, doc: dict[str, Any], *, unscheduled: bool = Fal
 
 
 def entry_line(e: dict[str, Any]) -> str:
-    return (f"#{e['request_id']} {e['target']} ({e['program']}) band {e['band']} {e['exposure_s']:.0f} s; "
+    """One entry on one line, for plain printing (user text escaped)."""
+    return (f"#{e['request_id']} {clean(e['target'])} ({clean(e['program'])}) band {e['band']} {e['exposure_s']:.0f} s; "
             f"{hm(e['start'])}-{hm(e['end'])} UTC ({hm(e['start_local'])}-{hm(e['end_local'])} local); "
             f"RA {e['ra_deg']:.4f} Dec {e['dec_deg']:+.4f}; airmass {e['airmass_start']:.2f}->{e['airmass_end']:.2f}, "
             f"FWHM {_f(e['predicted_fwhm_arcsec'], '{:.2f}')}\", PWV {_f(e['predicted_pwv_mm'], '{:.1f}')} mm")

@@ -20,13 +20,12 @@ from zoneinfo import ZoneInfo
 from scheduler.conditions.grid import ConditionsGrid
 from scheduler.constraints.explain import Unobservable
 from scheduler.model.config import ObservatoryConfig
-from scheduler.model.request import RequestSpec
+from scheduler.model.request import CLOSED_STATUSES, RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso, parse_time, utc
 from scheduler.planning.explain import Displacement, WhyNot, why_not
 from scheduler.sky.ephemeris import SkyGrid
 from scheduler.sky.night import Night
 
-OUT_OF_QUEUE = ("done", "withdrawn", "expired")
 MAX_BLOCKERS_SHOWN = 8
 MAX_WINDOWS_SHOWN = 4
 
@@ -65,7 +64,7 @@ def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: Sky
         out.update(state="scheduled", entries=mine)
         out["explanation"] = _scheduled_lines(head, spec, doc, mine, solver_reason, fmt_t)
         return out
-    if spec.status in OUT_OF_QUEUE:
+    if spec.status in CLOSED_STATUSES:
         out["state"] = "not_in_queue"
         out["explanation"] = [f"{head} is {spec.status}: it is not in the queue, so no plan schedules it."]
         return out
@@ -86,7 +85,7 @@ def _scheduled_lines(head: str, spec: RequestSpec, doc: dict[str, Any], mine: li
                      f"airmass {e['airmass_start']:.2f}->{e['airmass_end']:.2f}, FWHM "
                      f"{e['predicted_fwhm_arcsec']:.2f}\", PWV {e['predicted_pwv_mm']:.1f} mm, merit {e['merit']:.2f}")
     owed = spec.remaining_repeats
-    if owed > len(mine) and spec.status != "done":
+    if owed > len(mine) and spec.status != RequestStatus.DONE:
         lines.append(f"  {owed - len(mine)} more execution(s) owed do not fit tonight"
                      + (f" ({solver_reason})" if solver_reason else ""))
     return lines

@@ -37,7 +37,7 @@ from scheduler.conditions.grid import ConditionsGrid, conditions_on_grid
 from scheduler.conditions.ingest import Sample
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.plan import PlanEntry, PlanResult
-from scheduler.model.request import ACTIVE_STATUSES, RequestSpec
+from scheduler.model.request import ACTIVE_STATUSES, OutcomeResult, RequestSpec, RequestStatus
 from scheduler.season.simulate import NightOutcome, ProgramInfo, RealizationOutcome, RequestInfo
 from scheduler.season.weather import (
     DEFAULT_MODEL, Climatology, NightDraw, SeasonDraw, WeatherModel, draw_night, draw_season, realization_seed,
@@ -119,18 +119,19 @@ def simulate_nights(setup: SeasonSetup, state: RealizationState, indices: Sequen
 
 def expire(specs: Sequence[RequestSpec], now: datetime) -> tuple[RequestSpec, ...]:
     """Active requests whose absolute window has passed leave the queue (as ``store.expire_requests``)."""
-    return tuple(s.with_(status="expired") if s.status in ACTIVE_STATUSES and s.not_after is not None
+    return tuple(s.with_(status=RequestStatus.EXPIRED) if s.status in ACTIVE_STATUSES and s.not_after is not None
                  and s.not_after < now else s for s in specs)
 
 
 def apply_outcome(spec: RequestSpec, result: str) -> RequestSpec:
     """The queue's response to one recorded outcome (as ``store.record_outcome``): done counts
     an execution and leaves the queue when all are done; failed goes back to the queue."""
-    if result == "done":
+    if result == OutcomeResult.DONE:
         n = spec.completed_repeats + 1
-        return spec.with_(completed_repeats=n, partial_exposure_s=0.0, status="done" if n >= spec.repeats else "queued")
-    if result == "failed":
-        return spec.with_(status="queued")
+        return spec.with_(completed_repeats=n, partial_exposure_s=0.0,
+                          status=RequestStatus.DONE if n >= spec.repeats else RequestStatus.QUEUED)
+    if result == OutcomeResult.FAILED:
+        return spec.with_(status=RequestStatus.QUEUED)
     raise ValueError(f"unknown result {result!r}")
 
 
@@ -138,7 +139,7 @@ def charged_h(result: str, entry: PlanEntry) -> float:
     """Hours charged for an outcome recorded against a plan entry: a done execution is charged
     the entry's time as planned (setup + exposure) plus the transition into it; a failure is
     the telescope's or the weather's and is not charged."""
-    if result != "done":
+    if result != OutcomeResult.DONE:
         return 0.0
     return ((entry.end - entry.start).total_seconds() + entry.transition_s) / 3600.0
 
@@ -177,9 +178,9 @@ class _Night:
         if spec is None or spec.status not in ACTIVE_STATUSES:
             return
         self.specs[rid] = apply_outcome(spec, run.result)
-        if run.result == "done":
+        if run.result == OutcomeResult.DONE:
             self.done[rid] = self.done.get(rid, 0) + 1
-            self.charged[spec.program] = self.charged.get(spec.program, 0.0) + charged_h("done", e)
+            self.charged[spec.program] = self.charged.get(spec.program, 0.0) + charged_h(OutcomeResult.DONE, e)
             self.band_h[spec.band] = self.band_h.get(spec.band, 0.0) + (e.end - e.start).total_seconds() / 3600.0
         else:
             self.failed[rid] = self.failed.get(rid, 0) + 1
@@ -208,10 +209,10 @@ class _Night:
         before = int(math.ceil(e.transition_s / self.night.step_s - 1e-9))
         if seg.size and seg.all():
             self.busy[max(a - before, 0):b] = True
-            return _Run(e, b, "done")
+            return _Run(e, b, OutcomeResult.DONE)
         fail = a + int(np.argmin(seg)) if seg.size else a
         self.busy[max(a - before, 0):fail + 1] = True
-        return _Run(e, min(fail + 1, b), "failed")
+        return _Run(e, min(fail + 1, b), OutcomeResult.FAILED)
 
 
 def _at(night: Night, step: int) -> datetime:
@@ -283,11 +284,11 @@ def run_night(setup: SeasonSetup, realization: int, night: Night, draw: NightDra
             if t <= e.start_step < c and (running is None or running.finish_step <= e.start_step):
                 if running is not None:
                     run.record(running)
-                    unrecorded_failure |= running.result == "failed"
+                    unrecorded_failure |= running.result == OutcomeResult.FAILED
                 running = run.start(e)
         if running is not None and running.finish_step <= c:
             run.record(running)
-            unrecorded_failure |= running.result == "failed"
+            unrecorded_failure |= running.result == OutcomeResult.FAILED
             running = None
         t = c
         if c >= night.n_times:
@@ -312,7 +313,7 @@ def run_night(setup: SeasonSetup, realization: int, night: Night, draw: NightDra
             x.request_id == running.entry.request_id and x.start_step == running.entry.start_step
             for x in result.entries)
         if running is not None and not kept:  # interrupted by the re-plan
-            running = _Run(running.entry, c, "failed")
+            running = _Run(running.entry, c, OutcomeResult.FAILED)
             run.record(running)
             running = None
         entries = sorted((x for x in result.entries if x.start_step >= c), key=lambda e: e.start_step)

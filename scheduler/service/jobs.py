@@ -18,12 +18,12 @@ from sqlalchemy.exc import SQLAlchemyError
 from scheduler.conditions.files import read_conditions_file
 from scheduler.model.config import ObservatoryConfig
 from scheduler.db import plans, store
-from scheduler.db.models import ConditionsReport, Outcome, Plan, ReplanOrder, Request, utcnow
+from scheduler.db.models import ConditionsReport, Outcome, Plan, Request, utcnow
 from scheduler.db.session import Database
 from scheduler.model.errors import InputError
 from scheduler.planning.planner import Planner, sample_of
+from scheduler.planning.replan import carry_out_orders, orders_reason, replan, take_pending_orders
 from scheduler.model.request import ACTIVE_STATUSES
-from scheduler.model.timegrid import iso
 from scheduler.service.clock import Clock
 from scheduler.service.log import EventLog
 from scheduler.service.validity import Planned, conditions_changes, entry_failures, outranking_requests
@@ -34,17 +34,6 @@ REJECTED_DIR = "rejected"
 SETTLE_S = 1.0  # a dropped file is read once it has not changed for this long
 RETRY_AFTER_FAILURE_S = 60.0  # after a failed automatic re-plan, wait before the next one
 MAX_LISTED = 5  # outcomes or requests named in one reason
-
-
-def describe_built(built) -> str:
-    r = built.result
-    covered = float(built.conditions.covered.mean()) if built.conditions.covered.size else 0.0
-    text = (f"plan version {built.version} for the night of {built.night.date} from {iso(built.planned_from)}: "
-            f"{len(r.entries)} entries, solver {r.solver_status}, gap {100 * r.gap:.1f} %, "
-            f"built in {sum(r.timings.values()):.1f} s")
-    if covered == 0.0:
-        text += "; no conditions report covers this night: the configuration's defaults were assumed"
-    return text
 
 
 @dataclass
@@ -73,15 +62,13 @@ class Jobs:
         return self.planner.coming_night(now)
 
     def replan(self, reason: str, *, trigger: str):
-        """Build from now and store a new version. Returns the BuiltPlan (version None if refused)."""
+        """The re-plan action (planning/replan.py) with the service's event log around it.
+        Returns the BuiltPlan (version None if refused)."""
         now = self.clock.now()
         night = self.target_night(now)
         t0 = time.monotonic()
         self.log.info("replan_start", trigger=trigger, night=night, now=now, reason=reason)
-        planning = self.config.planning
-        limit = self.time_limit_s or min(planning.time_limit_s, planning.replan_time_limit_s)
-        built = self.planner.build_and_store(self.db, night_date=night, reason=reason, now=now,
-                                             time_limit_s=limit)
+        built = replan(self.planner, self.db, now=now, reason=reason, time_limit_s=self.time_limit_s)
         secs = time.monotonic() - t0
         if built.version is None:
             self.log.error("plan_refused", trigger=trigger, night=night, seconds=secs,
@@ -181,35 +168,13 @@ class Jobs:
 
     def take_orders(self) -> int:
         """Pending re-plan orders (also those taken by a service that died): one build serves them all."""
-        def take(s):
-            orders = plans.pending_orders(s)
-            now = utcnow()
-            for o in orders:
-                o.taken_at = now
-            return [(o.id, o.reason, o.requested_by) for o in orders]
-
-        orders = self.db.retrying(take)
+        orders = take_pending_orders(self.db)
         if not orders:
             return 0
         ids = ",".join(str(o[0]) for o in orders)
         self.log.info("order_taken", orders=ids, requested_by=orders[0][2])
-        reason = orders[0][1] if len(orders) == 1 else "; ".join(o[1] for o in orders)
-        version = None
-        try:
-            built = self.replan(reason, trigger="order")
-            version = built.version
-            result = describe_built(built) if version is not None else \
-                f"failed: the plan checker refused the plan ({built.result.violations[0]})"
-        except Exception as e:  # noqa: BLE001 - recorded on the order and logged
-            result = f"failed: {type(e).__name__}: {e}"
-
-        def finish(s):
-            for oid, _r, _b in orders:
-                o = s.get(ReplanOrder, oid)
-                if o is not None and o.done_at is None:
-                    plans.finish_order(o, result, version)
-
-        self.db.retrying(finish)
+        result, version = carry_out_orders(self.db, [o[0] for o in orders],
+                                           lambda: self.replan(orders_reason(orders), trigger="order"))
         (self.log.info if version is not None else self.log.error)("order_done", orders=ids, result=result)
         return len(orders)
 

@@ -13,6 +13,8 @@ import sys
 from datetime import datetime, timezone
 from typing import Any
 
+from scheduler.report.safe_text import clean
+
 LOGGER_NAME = "nightplan.service"
 
 
@@ -25,7 +27,7 @@ def _value(v: Any) -> str:
         return f"{v:.3f}".rstrip("0").rstrip(".") if abs(v) < 1e6 else f"{v:.6g}"
     if isinstance(v, datetime):
         return v.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-    s = str(v).replace("\r", " ").replace("\n", " ")
+    s = clean(str(v).replace("\r", " ").replace("\n", " "))  # no terminal control reaches a log reader
     if not s or any(c in s for c in ' "=\t'):
         return json.dumps(s, ensure_ascii=False)
     return s

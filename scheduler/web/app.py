@@ -303,7 +303,7 @@ def create_app(db, config: ObservatoryConfig, *, clock=None, token: str | None =
             if plan is None:
                 return None, None
             night = planner.night(plan.night)
-            return plan_document(s, plan, config, night), night
+            return plan_document(plans.stored_plan(s, plan), config, night), night
 
     async def api_plan(request: Request):
         from scheduler.report.export import to_json

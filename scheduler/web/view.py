@@ -207,7 +207,7 @@ def page_view(db, config: ObservatoryConfig, night_of, almanacs: AlmanacCache, n
             view["key"] = key
             return view
         night = night_of(plan.night)
-        doc = plan_document(s, plan, config, night)
+        doc = plan_document(plans.stored_plan(s, plan), config, night)
         outcomes = _entry_outcomes(s, plan, doc)
         versions = _versions(s, plan.night)
         samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])

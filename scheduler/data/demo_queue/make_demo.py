@@ -5,7 +5,7 @@ Everything here is invented: the programs, their PIs, the fields and the weather
 the starter observatory.toml's fictional one; the night is the local evening of 2026-12-16
 (a half Moon up for the first half of the night, then dark).
 
-    python demo_queue/make_demo.py          # rewrites the files beside this script
+    python scheduler/data/demo_queue/make_demo.py   # rewrites the files beside this script
 """
 
 from __future__ import annotations

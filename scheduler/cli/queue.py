@@ -1,0 +1,282 @@
+"""Commands for principal investigators: `program add|list` and `request add|import|list|show|withdraw`."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+from typing import Any
+
+import click
+
+from scheduler.cli.common import Ctx, console, echo_json, parse_night, pass_ctx, warn
+from scheduler.model.config import ObservatoryConfig
+from scheduler.model.errors import InputError
+from scheduler.model.request import RequestStatus
+from scheduler.report.safe_text import clean
+
+MAX_IMPORT_BYTES = 10_000_000
+MAX_IMPORT_ROWS = 20_000
+
+
+@click.group()
+def program() -> None:
+    """Science programs: code, PI, allocated hours, weight."""
+
+
+@program.command("add")
+@click.argument("code")
+@click.option("--pi", required=True, help="principal investigator")
+@click.option("--hours", type=float, default=0.0, show_default=True, help="allocated hours (0 to 10000)")
+@click.option("--weight", type=float, default=1.0, show_default=True, help="rank weight in the objective (0 to 100]")
+@pass_ctx
+def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float) -> None:
+    """Create a program CODE."""
+    from scheduler.db import store
+
+    prog = c.db().retrying(lambda s: store.program_dict(store.add_program(s, code, pi, hours, weight)))
+    click.echo(f"program {prog['code']} added (PI {clean(prog['pi'])}, {prog['hours']:g} h, weight {prog['weight']:g})")
+
+
+@program.command("list")
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@pass_ctx
+def program_list(c: Ctx, as_json: bool) -> None:
+    """List programs."""
+    from scheduler.db import store
+
+    with c.db().session() as s:
+        rows = [store.program_dict(p) for p in store.list_programs(s)]
+    if as_json:
+        echo_json(rows)
+        return
+    from scheduler.report.safe_text import SafeTable as Table
+
+    t = Table("code", "PI", "hours", "weight", title="programs")
+    for r in rows:
+        t.add_row(r["code"], r["pi"], f"{r['hours']:g}", f"{r['weight']:g}")
+    console().print(t)
+
+
+# --------------------------------------------------------------------------- requests
+
+@click.group()
+def request() -> None:
+    """Observation requests: add, import, list, show, withdraw."""
+
+
+def _visibility_warnings(config: ObservatoryConfig, specs) -> None:
+    from scheduler.model.request import never_observable_reason
+
+    for i, spec in enumerate(specs):
+        why = never_observable_reason(spec, config)
+        if why:
+            label = f"request {spec.id}" if spec.id else f"row {i + 1}"
+            warn(f"{label} ({spec.target}): never observable from {config.site.name}: {why}")
+
+
+@request.command("add")
+@click.option("--program", required=True, help="program code")
+@click.option("--target", required=True, help="target name")
+@click.option("--ra", required=True, help="ICRS right ascension: degrees or hh:mm:ss.s")
+@click.option("--dec", required=True, help="ICRS declination: degrees or ±dd:mm:ss")
+@click.option("--band", required=True, help="band name from observatory.toml (starter: U B V R I J H K N Q)")
+@click.option("--exposure", required=True, help="exposure time in seconds (> 0)")
+@click.option("--instrument", help="instrument (default: the first that offers the band)")
+@click.option("--resolution", help="delivered image FWHM the science needs, arcsec, in this band at the target's airmass")
+@click.option("--max-seeing", help="worst site seeing tolerated, arcsec at 500 nm at zenith (as conditions report it)")
+@click.option("--max-pwv", help="worst precipitable water vapour tolerated, mm")
+@click.option("--max-airmass", help="largest airmass tolerated (>= 1)")
+@click.option("--min-moon-sep", help="smallest Moon separation tolerated, degrees")
+@click.option("--max-moon-illum", help="largest Moon illuminated fraction tolerated while the Moon is up, 0..1")
+@click.option("--min-sky-mag", help="sky must be at least this dark in the band, mag/arcsec^2")
+@click.option("--max-cloud", help="largest cloud extinction tolerated, mag")
+@click.option("--not-before", help="earliest start, ISO-8601 UTC")
+@click.option("--not-after", help="latest end, ISO-8601 UTC")
+@click.option("--period-epoch", help="periodic window: time of phase 0, ISO-8601 UTC")
+@click.option("--period-days", help="periodic window: period in days")
+@click.option("--phase-min", help="periodic window: phase range start, 0..1")
+@click.option("--phase-max", help="periodic window: phase range end, 0..1 (may wrap past 1)")
+@click.option("--priority", help="1 (lowest) to 10 (highest), default 5")
+@click.option("--repeats", help="number of executions, default 1")
+@click.option("--min-spacing", help="minimum time between executions, seconds")
+@click.option("--too", is_flag=True, help="target of opportunity")
+@pass_ctx
+def request_add(c: Ctx, **opts: Any) -> None:
+    """Submit one request; prints its id.
+
+    --max-seeing is the site seeing at 500 nm at zenith, as the conditions report it;
+    --resolution is the delivered image FWHM the science needs in the request's band at the
+    target's airmass (seeing scaled by wavelength^-1/5 airmass^3/5, combined with diffraction).
+    """
+    from scheduler.db import store
+    from scheduler.model.request import validate_request
+
+    names = {"exposure": "exposure_s", "resolution": "resolution_arcsec", "max_seeing": "max_seeing_arcsec",
+             "max_pwv": "max_pwv_mm", "min_moon_sep": "min_moon_sep_deg", "max_cloud": "max_cloud_mag",
+             "min_spacing": "min_spacing_s"}
+    raw = {names.get(k, k): v for k, v in opts.items() if v is not None and v is not False}
+    config = c.config()
+    db = c.db()
+
+    def work(s):
+        spec = validate_request(raw, config, store.program_codes(s))
+        return spec, store.add_requests(s, [spec])[0]
+
+    spec, rid = db.retrying(work)
+    _visibility_warnings(config, [spec.with_(id=rid)])
+    click.echo(rid)
+
+
+def read_table_file(path: str, *, what: str) -> tuple[list[tuple[int, dict[str, Any]]], str]:
+    """(row number, row) of a CSV (header row) or JSON list file, with a size limit; and the format.
+
+    Row numbers are what a user finds in the file: for CSV the line (the header is line 1), for
+    JSON the position in the list (from 1), as in conditions files.
+    """
+    from scheduler.textfile import read_text_file
+
+    p = Path(path)
+    text = read_text_file(p, MAX_IMPORT_BYTES)
+    stripped = text.lstrip()
+    if p.suffix.lower() == ".json" or stripped.startswith(("[", "{")):
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as e:
+            raise InputError("file", f"{path} is not valid JSON: {e.msg} at line {e.lineno}") from None
+        if not isinstance(data, list) or not all(isinstance(r, dict) for r in data):
+            raise InputError("file", f"{path}: JSON must be a list of objects, one per {what[:-1]}")
+        return list(enumerate(data, start=1)), "json"
+    reader = csv.DictReader(io.StringIO(text))
+    if not reader.fieldnames:
+        raise InputError("file", f"{path} is empty; expected a CSV header row")
+    rows = []
+    for row in reader:
+        if None in row:
+            raise InputError("columns", "more values than header columns", row=reader.line_num, source=path)
+        rows.append((reader.line_num, {k.strip(): (v.strip() if isinstance(v, str) else v) for k, v in row.items()}))
+    return rows, "csv"
+
+
+@request.command("import")
+@click.argument("file", type=click.Path(dir_okay=False))
+@pass_ctx
+def request_import(c: Ctx, file: str) -> None:
+    """Import requests from CSV (header row) or a JSON list; all rows or none.
+
+    Columns: program,target,ra,dec,band,exposure_s,resolution_arcsec,max_seeing_arcsec,
+    max_pwv_mm,max_airmass,min_moon_sep_deg,max_cloud_mag,not_before,not_after,priority,repeats
+    (optional ones may be absent or empty), plus instrument, min_spacing_s, max_moon_illum,
+    min_sky_mag, period_epoch, period_days, phase_min, phase_max, too.
+    """
+    from scheduler.db import store
+    from scheduler.model.request import validate_request
+
+    rows, _fmt = read_table_file(file, what="requests")
+    if not rows:
+        raise InputError("file", f"{file} holds no requests")
+    if len(rows) > MAX_IMPORT_ROWS:
+        raise InputError("file", f"{file} has {len(rows)} rows; at most {MAX_IMPORT_ROWS} per import")
+    config = c.config()
+    db = c.db()
+
+    def work(s):
+        codes = store.program_codes(s)
+        specs = []
+        for i, raw in rows:
+            try:
+                specs.append(validate_request(raw, config, codes))
+            except InputError as e:
+                raise InputError(e.field, e.message, row=i, source=file) from None
+        return specs, store.add_requests(s, specs)
+
+    specs, ids = db.retrying(work)
+    _visibility_warnings(config, [sp.with_(id=i) for sp, i in zip(specs, ids)])
+    click.echo(f"imported {len(ids)} requests (ids {ids[0]}-{ids[-1]})")
+
+
+@request.command("list")
+@click.option("--status", type=click.Choice([s.value for s in RequestStatus]))
+@click.option("--program", help="only this program")
+@click.option("--json", "as_json", is_flag=True, help="print a JSON array")
+@pass_ctx
+def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool) -> None:
+    """List requests."""
+    from scheduler.db import store
+
+    with c.db().session() as s:
+        rows = [store.request_dict(r) for r in store.list_requests(s, status, program)]
+    if as_json:
+        echo_json(rows)
+        return
+    from scheduler.report.safe_text import SafeTable as Table
+
+    t = Table("id", "program", "target", "RA", "Dec", "band", "exp s", "prio", "limits", "status",
+              title=f"requests ({len(rows)})")
+    for r in rows:
+        t.add_row(str(r["id"]), r["program"], r["target"], f"{r['ra_deg']:.4f}", f"{r['dec_deg']:+.4f}",
+                  r["band"], f"{r['exposure_s']:g}", str(r["priority"]), _limits_text(r), r["status"])
+    console().print(t)
+
+
+def _limits_text(r: dict[str, Any]) -> str:
+    parts = []
+    for key, label in (("resolution_arcsec", "res<={}\""), ("max_seeing_arcsec", "see<={}\""),
+                       ("max_pwv_mm", "pwv<={}mm"), ("max_airmass", "X<={}"), ("min_moon_sep_deg", "moon>={}°"),
+                       ("max_cloud_mag", "cloud<={}")):
+        if r.get(key) is not None:
+            parts.append(label.format(f"{r[key]:g}"))
+    return " ".join(parts) or "-"
+
+
+@request.command("show")
+@click.argument("request_id", type=int)
+@click.option("--night", help="also list the feasible windows on this night (YYYY-MM-DD, local evening)")
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@pass_ctx
+def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> None:
+    """Show one request (and, with --night, when it can be observed)."""
+    from scheduler.db import store
+
+    with c.db().session() as s:
+        row = store.get_request(s, request_id)
+        d = store.request_dict(row)
+        spec = store.to_spec(row)
+        report = store.latest_conditions(s)
+        samples = list(report.samples) if report is not None else []
+    if night:
+        from scheduler.constraints.windows import feasible_windows
+
+        d["windows"] = feasible_windows(c.config(), spec, parse_night(night), samples)
+    if as_json:
+        echo_json(d)
+        return
+    for k, v in d.items():
+        if k == "windows" or v is None:
+            continue
+        click.echo(f"{k:>20}: {clean(v)}")
+    if night:
+        w = d["windows"]
+        click.echo(f"{'night':>20}: {night}")
+        if w["windows"]:
+            for win in w["windows"]:
+                click.echo(f"{'feasible':>20}: {win['start']} to {win['end']} (starts possible until {win['last_start']})")
+        else:
+            click.echo(f"{'feasible':>20}: never; binding constraint: {w['binding']}")
+
+
+@request.command("withdraw")
+@click.argument("request_id", type=int)
+@pass_ctx
+def request_withdraw(c: Ctx, request_id: int) -> None:
+    """Withdraw a request from the queue (kept for the record)."""
+    from scheduler.db import store
+
+    c.db().retrying(lambda s: store.withdraw_request(s, request_id))
+    click.echo(f"request {request_id} withdrawn")
+
+
+def register(cli: click.Group) -> None:
+    cli.add_command(program)
+    cli.add_command(request)
