@@ -1,4 +1,4 @@
-"""Commands for principal investigators: `program add|list` and `request add|import|list|show|withdraw`."""
+"""Commands for principal investigators: `program add|list|show` and `request add|import|list|show|withdraw`."""
 
 from __future__ import annotations
 
@@ -57,6 +57,25 @@ def program_list(c: Ctx, as_json: bool) -> None:
     for r in rows:
         t.add_row(r["code"], r["pi"], f"{r['hours']:g}", f"{r['weight']:g}")
     console().print(t)
+
+
+@program.command("show")
+@click.argument("code")
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@pass_ctx
+def program_show(c: Ctx, code: str, as_json: bool) -> None:
+    """Show one program and its last stored season outlook."""
+    from scheduler.db import outlook
+
+    with c.db().session() as s:
+        d, o = outlook.program_with_outlook(s, code)
+    if as_json:
+        echo_json({**d, "outlook": o} if o is not None else d)
+        return
+    for k, v in d.items():
+        click.echo(f"{k:>20}: {clean(v)}")
+    if o is not None:
+        click.echo(f"{'outlook':>20}: {outlook.outlook_line(o, 'program')}")
 
 
 # --------------------------------------------------------------------------- requests
@@ -236,8 +255,9 @@ def _limits_text(r: dict[str, Any]) -> str:
 @click.option("--json", "as_json", is_flag=True, help="print JSON")
 @pass_ctx
 def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> None:
-    """Show one request (and, with --night, when it can be observed)."""
+    """Show one request (and, with --night, when it can be observed), and its last stored season outlook."""
     from scheduler.db import store
+    from scheduler.db.outlook import outlook_line, request_outlook
 
     with c.db().session() as s:
         row = store.get_request(s, request_id)
@@ -245,17 +265,20 @@ def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> N
         spec = store.to_spec(row)
         report = store.latest_conditions(s)
         samples = list(report.samples) if report is not None else []
+        season = request_outlook(s, request_id)
     if night:
         from scheduler.constraints.windows import feasible_windows
 
         d["windows"] = feasible_windows(c.config(), spec, parse_night(night), samples)
     if as_json:
-        echo_json(d)
+        echo_json({**d, "outlook": season} if season is not None else d)
         return
     for k, v in d.items():
         if k == "windows" or v is None:
             continue
         click.echo(f"{k:>20}: {clean(v)}")
+    if season is not None:
+        click.echo(f"{'outlook':>20}: {outlook_line(season, 'request')}")
     if night:
         w = d["windows"]
         click.echo(f"{'night':>20}: {night}")

@@ -9,11 +9,12 @@ from __future__ import annotations
 from datetime import date, datetime
 from typing import Any, Mapping
 
-from sqlalchemy import select
+from sqlalchemy import inspect, select
 from sqlalchemy.orm import Session
 
 from scheduler.db import store
 from scheduler.db.models import Program, SeasonOutlook
+from scheduler.model.errors import NotFoundError
 from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import iso
 
@@ -53,8 +54,15 @@ def _run(o: SeasonOutlook) -> dict[str, Any]:
             "realizations": o.realizations, "seed": o.seed, "effort": o.effort, "weather": o.weather}
 
 
+def _have_table(s: Session) -> bool:
+    """False on a database not yet upgraded to the outlook's schema (then there is no outlook)."""
+    return inspect(s.connection()).has_table(SeasonOutlook.__tablename__)
+
+
 def request_outlook(s: Session, request_id: int) -> dict[str, Any] | None:
     """The newest stored outlook of a request, or None."""
+    if not _have_table(s):
+        return None
     o = s.scalar(select(SeasonOutlook).where(SeasonOutlook.request_id == request_id)
                  .order_by(SeasonOutlook.computed_at.desc(), SeasonOutlook.id.desc()).limit(1))
     return None if o is None else {"p_complete": o.p_complete, **_run(o)}
@@ -62,6 +70,8 @@ def request_outlook(s: Session, request_id: int) -> dict[str, Any] | None:
 
 def program_outlook(s: Session, code: str) -> dict[str, Any] | None:
     """The newest stored outlook of a program, or None."""
+    if not _have_table(s):
+        return None
     o = s.scalar(select(SeasonOutlook).join(Program, SeasonOutlook.program_id == Program.id)
                  .where(Program.code == code)
                  .order_by(SeasonOutlook.computed_at.desc(), SeasonOutlook.id.desc()).limit(1))
@@ -69,6 +79,14 @@ def program_outlook(s: Session, code: str) -> dict[str, Any] | None:
         return None
     return {"completion": {"mean": o.completion_mean, "p10": o.completion_p10, "p90": o.completion_p90},
             "charged_h_mean": o.charged_h_mean, **_run(o)}
+
+
+def program_with_outlook(s: Session, code: str) -> tuple[dict[str, Any], dict[str, Any] | None]:
+    """(`program list`'s fields of one program, its newest stored outlook or None)."""
+    prog = s.scalar(select(Program).where(Program.code == code))
+    if prog is None:
+        raise NotFoundError(f"program {code!r} not found")
+    return store.program_dict(prog), program_outlook(s, code)
 
 
 def outlook_line(o: Mapping[str, Any] | None, kind: str) -> str:
