@@ -339,7 +339,10 @@ def write_docs(out: Path, data: dict) -> None:
               "  and hint search; the bench counts the sky inside the budget; the re-plan runs with a 4.5 s budget.",
               "- The queue is never shrunk to meet a target: every generated request enters feasibility, and every",
               "  request with a feasible start tonight enters the model.", ""]
-    (out / "benchmarks.md").write_text("\n".join(lines), encoding="utf-8")
+    # the season section (python -m scheduler.season.bench) is kept as it is
+    old = (out / "benchmarks.md").read_text(encoding="utf-8") if (out / "benchmarks.md").exists() else ""
+    season = old[old.find("<!-- season-benchmark:begin -->"):] if "<!-- season-benchmark:begin -->" in old else ""
+    (out / "benchmarks.md").write_text("\n".join(lines) + ("\n" + season if season else ""), encoding="utf-8")
 
 
 def main(argv=None) -> int:

@@ -13,8 +13,8 @@ import click
 
 from scheduler.cli.common import Ctx, console, echo_json, pass_ctx
 from scheduler.model.errors import InputError
+from scheduler.season import DEFAULT_EFFORT
 
-DEFAULT_EFFORT = 3  # a 300-request night plans in about 1 s on one core (docs/benchmarks.md)
 DEFAULT_REALIZATIONS = 20
 MAX_REALIZATIONS = 10_000
 MAX_NIGHTS = 366
