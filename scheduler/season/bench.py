@@ -1,5 +1,5 @@
 """Season benchmark: python -m scheduler.season.bench [--sizes 300,1000] [--nights 3] [--run-nights 6]
-[--run-realizations 4] [--workers 1,2] [--effort 3] [--no-write]
+[--run-realizations 4] [--workers 1,2] [--memory-nights 14] [--effort N] [--no-write]
 
 Generated queues (scheduler.bench.generate_queue: invented programs and targets) at the
 starter config's fictional site, the demo climatology, nights from 2026-12-05.
@@ -8,7 +8,8 @@ starter config's fictional site, the demo climatology, nights from 2026-12-05.
    sized from it.
 2. Seconds per simulated night (one realization, in this process, no Dask) at each size: wall
    and CPU time, plans built per night, the sky's share.
-3. A whole run on a local Dask cluster with 1 and with 2 workers: wall time, speed-up and
+3. Resident memory night after night in one process with a worker's sky cache.
+4. A whole run on a local Dask cluster with 1 and with 2 workers: wall time, speed-up and
    peak memory per worker; and the run asked for (90 nights x 300 requests x 8 realizations)
    extrapolated from it when it is smaller.
 
@@ -51,15 +52,18 @@ def plan_times(n_requests: int, efforts: list[int]) -> list[dict]:
     from scheduler.conditions.grid import conditions_on_grid
     from scheduler.planning.pipeline import BuildOptions, build_plan
     from scheduler.season.engine import season_draw
-    from scheduler.season.weather import draw_night, realization_seed
+    from scheduler.season.weather import CLEAR, draw_night, realization_seed
     from scheduler.sky.ephemeris import SkyCache
     from scheduler.sky.night import night_for
 
     setup = _setup(n_requests, 1, 1)
     cfg = setup.config
     night = night_for(cfg.site, START, cfg.planning.step_s)
-    nd = draw_night(setup.climatology, season_draw(setup, 0), 0, night.times_unix, cfg.safety,
-                    realization_seed(setup.seed, 0))
+    for r in range(100):  # the first realization whose forecast is a clear night: a full plan
+        nd = draw_night(setup.climatology, season_draw(setup, r), 0, night.times_unix, cfg.safety,
+                        realization_seed(setup.seed, r))
+        if nd.forecast_state == CLEAR:
+            break
     cond = conditions_on_grid(nd.forecast.samples(), night.times_unix, cfg.defaults)
     cache = SkyCache()
     cache.get(cfg.site, night, [s.ra_deg for s in setup.specs], [s.dec_deg for s in setup.specs])
@@ -101,6 +105,26 @@ def per_night(n_requests: int, nights: int, effort: int) -> dict:
     return {"requests": n_requests, "nights": n, "effort": effort, "nights_detail": rows,
             "wall_s_per_night": sum(r["wall_s"] for r in rows) / n, "cpu_s_per_night": sum(r["cpu_s"] for r in rows) / n,
             "plans_per_night": sum(r["builds"] for r in rows) / n, "sky_s_per_night": sum(r["sky_s"] for r in rows) / n}
+
+
+def memory_growth(n_requests: int, nights: int, effort: int) -> dict:
+    """One realization night after night with a worker's sky cache: resident memory after each night."""
+    from scheduler.season.distribute import peak_rss_mib, worker_sky_cache
+    from scheduler.season.engine import initial_state, simulate_nights
+
+    setup = _setup(n_requests, nights, effort)
+    state = initial_state(setup, 0)
+    rss = []
+    for i in range(nights):
+        state = simulate_nights(setup, state, [i], worker_sky_cache())
+        rss.append(_rss_mib())
+    print(f"memory, {n_requests} requests over {nights} nights: {rss[0]:.0f} -> {rss[-1]:.0f} MiB", flush=True)
+    return {"requests": n_requests, "nights": nights, "rss_mib": rss, "peak_rss_mib": peak_rss_mib()}
+
+
+def _rss_mib() -> float:
+    with open("/proc/self/status", encoding="ascii") as f:
+        return next(int(line.split()[1]) / 1024.0 for line in f if line.startswith("VmRSS:"))
 
 
 def dask_run(n_requests: int, nights: int, realizations: int, workers: int, effort: int) -> dict:
@@ -147,9 +171,10 @@ def section(data: dict) -> str:
     L += ["**One plan** (the night's first build, 300 requests, a drawn forecast, sky cached):", "",
           "| effort | CPU s | wall s | entries | status |", "|---|---|---|---|---|"]
     L += [f"| {r['effort']} | {r['cpu_s']:.2f} | {r['wall_s']:.2f} | {r['entries']} | {r['status']} |" for r in data["plans"]]
-    L += ["", f"Default `--effort` {data['default_effort']}: the effort whose 300-request plan is closest to 1 s of CPU. "
-          "A build under an effort uses one CP-SAT worker, so one plan is one core's work: on 2 cores two "
-          "realizations plan at once.", ""]
+    closest = min(data["plans"], key=lambda r: abs(r["cpu_s"] - 1.0))["effort"]
+    L += ["", f"Default `--effort` {data['default_effort']}; the effort whose 300-request plan comes closest to 1 s "
+          f"of CPU in this run: {closest}. A build under an effort uses one CP-SAT worker, so one plan is one "
+          "core's work: on 2 cores two realizations plan at once.", ""]
     L += ["**Seconds per simulated night** (one realization in one process, no Dask; the demo climatology from "
           f"{START}; effort {data['default_effort']}; re-plans at the service's share of it):", "",
           "| requests | nights | CPU s / night | wall s / night | plans / night | sky s / night (first use) |",
@@ -160,6 +185,13 @@ def section(data: dict) -> str:
           "seeing, PWV and cloud moving past the thresholds re-plan most of them), so seconds per night are "
           "several plans' worth. The sky is computed once per night per worker and read from the cache by every "
           "later realization.", ""]
+    mem = data.get("memory")
+    if mem:
+        r = mem["rss_mib"]
+        L += [f"**Memory over a season** (one process, {mem['requests']} requests, the worker's sky cache, "
+              f"{mem['nights']} nights): resident {r[0]:.0f} MiB after the first night, "
+              f"{r[len(r) // 2]:.0f} MiB after night {len(r) // 2 + 1}, {r[-1]:.0f} MiB after the last; "
+              f"peak {mem['peak_rss_mib']:.0f} MiB. The cache holds at most {mem['cache_nights']} nights' skies.", ""]
     runs = data["runs"]
     if runs:
         r0 = runs[0]
@@ -180,9 +212,12 @@ def section(data: dict) -> str:
             L += [f"**{FULL[0]} nights x {FULL[1]} requests x {FULL[2]} realizations: not run on this shared machine; "
                   "extrapolated** from the run above in proportion to nights x realizations (each night of each "
                   f"realization is the same work in expectation): about {ex['one_worker_h']:.1f} h with 1 worker and "
-                  f"{ex['two_workers_h']:.1f} h with 2 (speed-up {ex['speed_up']:.2f} as measured above; on two idle "
-                  "cores it approaches 2, since realizations share nothing but the setup). Peak memory per worker "
-                  "does not grow with the season's length: the sky cache keeps about two blocks of nights.", ""]
+                  f"{ex['two_workers_h']:.1f} h with 2 (speed-up {ex['speed_up']:.2f} as measured above, on a "
+                  "loaded machine). On idle cores the CPU seconds per night above give about "
+                  f"{ex['cpu_one_worker_h']:.1f} h with 1 worker and {ex['cpu_two_workers_h']:.1f} h with 2 "
+                  "(realizations share nothing but the setup, so the speed-up approaches the number of cores). "
+                  "Peak memory per worker does not grow with the season's length (above): the sky cache keeps "
+                  "about two blocks of nights.", ""]
     L += [END]
     return "\n".join(L)
 
@@ -207,6 +242,7 @@ def main(argv=None) -> int:
     ap.add_argument("--run-nights", type=int, default=6)
     ap.add_argument("--run-realizations", type=int, default=4)
     ap.add_argument("--workers", default="1,2")
+    ap.add_argument("--memory-nights", type=int, default=14, help="nights of the memory check (> two blocks)")
     ap.add_argument("--effort", type=int, default=None, help="default: the command's default effort")
     ap.add_argument("--no-write", action="store_true")
     ap.add_argument("--out", default=str(Path(__file__).resolve().parents[2] / "docs"))
@@ -218,14 +254,20 @@ def main(argv=None) -> int:
             "load_before": _load(), "default_effort": DEFAULT_EFFORT}
     data["plans"] = plan_times(300, [1, 2, 3, 4])
     data["per_night"] = [per_night(int(n), a.nights, effort) for n in a.sizes.split(",") if n.strip()]
+    from scheduler.season.distribute import worker_sky_cache
+
+    data["memory"] = {**memory_growth(300, a.memory_nights, effort), "cache_nights": worker_sky_cache().max_nights}
     data["runs"] = [dask_run(300, a.run_nights, a.run_realizations, int(w), effort) for w in a.workers.split(",")]
     if data["runs"]:
         r1 = data["runs"][0]
         scale = (FULL[0] * FULL[2]) / (r1["nights"] * r1["realizations"])
         speed = r1["simulate_s"] / data["runs"][-1]["simulate_s"]
         if scale > 1:
+            cpu = next(r["cpu_s_per_night"] for r in data["per_night"] if r["requests"] == 300)
             data["extrapolated"] = {"scale": scale, "one_worker_h": r1["simulate_s"] * scale / 3600,
-                                    "two_workers_h": r1["simulate_s"] * scale / speed / 3600, "speed_up": speed}
+                                    "two_workers_h": r1["simulate_s"] * scale / speed / 3600, "speed_up": speed,
+                                    "cpu_one_worker_h": cpu * FULL[0] * FULL[2] / 3600,
+                                    "cpu_two_workers_h": cpu * FULL[0] * FULL[2] / 2 / 3600}
     data["load_after"] = _load()
     if not a.no_write:
         write(Path(a.out), data)

@@ -56,7 +56,15 @@ def blocks(n_nights: int, size: int = BLOCK_NIGHTS) -> list[tuple[int, int]]:
     return [(a, min(a + size, n_nights)) for a in range(0, n_nights, size)]
 
 
-def _peak_rss_mib() -> float:
+def peak_rss_mib() -> float:
+    """This process's peak resident memory (Linux: VmHWM, the process's own high-water mark)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
     kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     return kib / (1024.0 * 1024.0) if sys.platform == "darwin" else kib / 1024.0
 
@@ -140,7 +148,7 @@ def run_realizations(client, setup: SeasonSetup, realizations: int,
         if progress:
             progress(done_r, realizations, done_n, n * realizations)
     info = RunInfo(workers=len(client.scheduler_info()["workers"]),
-                   peak_rss_mib={w: round(v, 1) for w, v in sorted(client.run(_peak_rss_mib).items())},
+                   peak_rss_mib={w: round(v, 1) for w, v in sorted(client.run(peak_rss_mib).items())},
                    sky_nights_computed={w: v["nights"] for w, v in sorted(client.run(_sky_computed).items())})
     return sorted(outcomes, key=lambda o: o.realization), info
 

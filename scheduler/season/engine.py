@@ -160,7 +160,6 @@ class _Night:
     setup: SeasonSetup
     realization: int
     night: Night
-    draw: NightDraw
     sky_cache: SkyCache
     specs: dict[int, RequestSpec]
     truth_ok: dict[int, np.ndarray]  # request id -> ok[n_t] under the weather that came
@@ -172,7 +171,10 @@ class _Night:
     builds: int = 0
 
     def record(self, run: _Run) -> None:
+        """The observer records the outcome: the queue copy, the charge and the telescope's time."""
         e = run.entry
+        before = int(math.ceil(e.transition_s / self.night.step_s - 1e-9))
+        self.busy[max(int(e.start_step) - before, 0):run.finish_step] = True
         rid = int(e.request_id)
         spec = self.specs.get(rid)
         if spec is None or spec.status not in ACTIVE_STATUSES:
@@ -206,13 +208,10 @@ class _Night:
         ok = self.truth_ok.get(int(e.request_id))
         a, b = int(e.start_step), int(e.end_step)
         seg = ok[a:b] if ok is not None else np.zeros(max(b - a, 1), dtype=bool)
-        before = int(math.ceil(e.transition_s / self.night.step_s - 1e-9))
         if seg.size and seg.all():
-            self.busy[max(a - before, 0):b] = True
             return _Run(e, b, OutcomeResult.DONE)
         fail = a + int(np.argmin(seg)) if seg.size else a
-        self.busy[max(a - before, 0):fail + 1] = True
-        return _Run(e, min(fail + 1, b), OutcomeResult.FAILED)
+        return _Run(e, min(fail + 1, b), OutcomeResult.FAILED)  # aborted at the step that fails
 
 
 def _at(night: Night, step: int) -> datetime:
@@ -269,7 +268,7 @@ def run_night(setup: SeasonSetup, realization: int, night: Night, draw: NightDra
     active = [s for s in specs if s.status in ACTIVE_STATUSES]
     truth = feasibility_for(cfg, night, sky_cache, active, actual) if active else None
     truth_ok = {int(s.id): truth.ok[r] for r, s in enumerate(active)} if truth is not None else {}
-    run = _Night(setup, realization, night, draw, sky_cache, by_id, truth_ok, np.zeros(night.n_times, dtype=bool))
+    run = _Night(setup, realization, night, sky_cache, by_id, truth_ok, np.zeros(night.n_times, dtype=bool))
 
     plan = run.build(forecast, None, ()) if active else None
     entries = sorted(plan.entries, key=lambda e: e.start_step) if plan else []
