@@ -93,6 +93,36 @@ class Scene:
     """A hand-built night where ``broken`` fails the constraint alone and the other passes all."""
 
     make: Callable[[bool], tuple]  # broken -> (request, sky, conditions)
+    config: object = None  # the observatory, when the starter one cannot show the constraint
+
+
+def _ao(broken: bool):
+    # The starter NIR camera's AO (3.8 m, 0.2 m pitch, Strehl threshold 0.3) in 0.6" seeing:
+    # 0.3" in K needs the corrected core (the uncorrected image is ~0.48"). On axis the predicted
+    # Strehl is ~0.98; 40" from the guide star, beyond the ~13" isoplanatic angle in K, ~0.002.
+    r = req("K", id=1, resolution_arcsec=0.3, guide_star_sep_arcsec=40.0 if broken else 0.0)
+    return r, sky(np.full(N_T, 60.0)), cond(N_T, seeing=0.6)
+
+
+def _dish_config():
+    """An invented submillimetre dish: 20 um rms at night, 60 um sunlit, floor 0.5."""
+    from dataclasses import replace as _replace
+
+    from scheduler.model.config import Band, Instrument
+    tel = _replace(CFG.telescope, surface_rms_um=20.0, surface_rms_day_um=60.0, surface_efficiency_floor=0.5)
+    smm = Band(name="smm870", wavelength_um=870.0, extinction_mag=0.0, tau_dry=0.07, tau_per_mm_pwv=0.18,
+               twilight="day", seeing_limited=False)
+    rx = Instrument(name="rx", bands=("smm870",), setup_s=60.0, filter_change_s=0.0, instrument_change_s=0.0)
+    return _replace(CFG, telescope=tel, bands={**CFG.bands, "smm870": smm}, instruments=CFG.instruments + (rx,))
+
+
+DISH = _dish_config()
+
+
+def _surface(broken: bool):
+    # Ruze (1966) at 870 um: exp(-(4 pi 20 / 870)^2) = 0.92 at night; sunlit, 60 um rms,
+    # exp(-(4 pi 60 / 870)^2) = 0.47, under the floor 0.5.
+    return req("smm870", id=1), sky(np.full(N_T, 60.0), sun_alt=20.0 if broken else -20.0), cond(N_T)
 
 
 def _scene(req_kw=None, sky_good=None, sky_bad=None, cond_good=None, cond_bad=None, band="R", n_t=N_T) -> Scene:
@@ -133,6 +163,8 @@ SCENES: dict[str, Scene] = {
     "SUN": _scene(sky_good={"sun_sep": 120.0}, sky_bad={"sun_sep": 30.0}),
     "WINDOW": Scene(_window),
     "NIGHT_END": Scene(_night_end),
+    "AO_STREHL": Scene(_ao),
+    "SURFACE": Scene(_surface, DISH),
 }
 
 
@@ -152,11 +184,12 @@ def test_every_entry_has_a_scene():
 def test_entry_is_evaluated_explained_and_checked(name):
     c = BY_NAME[name]
     bit = int(c.reason)
+    config = SCENES[name].config or CFG
     for broken in (False, True):
         spec, sk, cd = SCENES[name].make(broken)
-        f = evaluate([spec], np.array([0]), sk, cd, CFG)
+        f = evaluate([spec], np.array([0]), sk, cd, config)
         d = int(f.duration_steps[0])
-        violations = check_plan([_entry(spec, d)], {1: spec}, {1: 0}, sk, cd, CFG)
+        violations = check_plan([_entry(spec, d)], {1: spec}, {1: 0}, sk, cd, config)
         if not broken:
             assert f.start_ok[0, 0] and not (f.reasons[0, : N_T - d] & bit).any()
             assert violations == [], violations
@@ -171,7 +204,7 @@ def test_entry_is_evaluated_explained_and_checked(name):
             assert f.ok[0].all()
         assert binding_constraint(f.reasons[0])["description"] == c.wording
         # explained: `plan why` names it as binding, in the catalog's wording, with its own detail
-        w = why_not(CFG, spec, sk, cd, T0, [], {"P1": 1.0}, FMT)
+        w = why_not(config, spec, sk, cd, T0, [], {"P1": 1.0}, FMT)
         assert w.displaced is None and w.unobservable.binding == [name]
         assert w.unobservable.wording == [c.wording]
         assert dict(w.unobservable.details).get(name), w.unobservable.details

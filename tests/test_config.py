@@ -80,6 +80,8 @@ min_altitude_deg = 15
 slew_rate_az_deg_s = 3.0
 slew_rate_alt_deg_s = 1.5
 settle_s = 5
+surface_rms_um = 25
+surface_rms_day_um = 40
 [safety]
 sun_avoidance_deg = 30
 max_wind_ms = 20
@@ -117,3 +119,6 @@ source = "about 4.5x the 225 GHz opacity (from memory)"
     assert band.sun_alt_limit_deg >= 90  # daylight allowed: sun avoidance is the only Sun rule
     # 1.22 lambda/D for 1.3 mm on 12 m: 1.22 * 1.3e-3 / 12 rad = 27.3 arcsec (computed from the formula)
     assert cfg.diffraction_limit_arcsec("mm1300") == pytest.approx(27.26, rel=1e-3)
+    # the dish's surface: 25 um rms at night, 40 um sunlit; the default efficiency floor
+    tel = cfg.telescope
+    assert (tel.surface_rms_um, tel.surface_rms_day_um, tel.surface_efficiency_floor) == (25.0, 40.0, 0.3)

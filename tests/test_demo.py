@@ -24,13 +24,18 @@ def test_demo_data_is_what_the_generator_writes(tmp_path):
     spec.loader.exec_module(mod)
     mod.main()  # writes beside the copied script
     for name in ("programs.csv", "requests.csv", "forecast.csv", "forecast_update.json", "scenario.json",
-                 "climatology.csv"):
+                 "climatology.csv", mod.COMET_FILE):
         assert (copy / name).read_bytes() == (src / name).read_bytes(), name
     rows = list(csv.DictReader((src / "requests.csv").open(encoding="utf-8")))
     assert len(rows) == 150
     assert len({r["program"] for r in rows}) == 5
     bands = {r["band"] for r in rows}
     assert {"B", "V", "J", "K", "N", "Q"} <= bands  # optical to mid-infrared
+    # a planet, a comet-like target with its ephemeris table, off-axis adaptive optics
+    assert any(r["body"] == "saturn" for r in rows)
+    assert any(r["ephemeris_file"] == mod.COMET_FILE and not r["ra"] for r in rows)
+    assert any(r["guide_star_sep_arcsec"] and float(r["guide_star_sep_arcsec"]) > 0 and r["resolution_arcsec"]
+               for r in rows)
 
 
 @pytest.mark.slow

@@ -186,7 +186,7 @@ def test_climatology_path_is_relative_to_the_config_file(tmp_path):
 
 
 @pytest.mark.parametrize("table, pattern", [
-    ({"file": "a.csv", "path": "b.csv"}, r"^climatology.path: unknown key$"),
+    ({"file": "a.csv", "path": "b.csv"}, r"^climatology.path: unknown key; allowed: file$"),
     ({}, r"^climatology.file: is required$"),
     ({"file": ""}, r"^climatology.file: must be a non-empty string"),
     ({"file": 3}, r"^climatology.file: must be a non-empty string"),

@@ -287,10 +287,17 @@ def test_kill_9_then_restart_resumes(served, night):
         assert plans.active_plan(s).id >= before["version"]
         assert len(store.active_specs(s)) == n_queued
     done = again.wait(lambda: (a := again.active()) and a["reason"] == "after the restart" and a,
-                      "the queued order done")
-    with again.db.session() as s:
-        o = s.get(ReplanOrder, oid)
-        assert o.plan_id == done["version"] and o.result.startswith("plan version")
+                      "the queued order served")
+
+    def order_done():
+        with again.db.session() as s:
+            o = s.get(ReplanOrder, oid)
+            return o.done_at is not None and (o.plan_id, o.result)
+
+    # the plan is stored before the order is marked done (two transactions; a crash between them
+    # serves the order again), so wait for the order itself rather than read it after the plan
+    plan_id, result = again.wait(order_done, "the queued order marked done")
+    assert plan_id == done["version"] and result.startswith("plan version")
     again.proc.send_signal(signal.SIGINT)
     assert again.proc.wait(WAIT_S) == 0, again.log()
 

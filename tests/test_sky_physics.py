@@ -75,9 +75,11 @@ def test_not_seeing_limited_is_diffraction_only():
     assert d[0] == pytest.approx(23.0, rel=0.01)  # 1.03 * 1.3e-3 / 12 rad
 
 
-def test_adaptive_optics_model():
+def test_adaptive_optics_switch_fallback():
+    # The fallback for instruments without turbulence parameters (the starter's NIR camera has
+    # them: tests/test_sky_adaptive_optics.py covers that model).
     k = CFG.band("K")
-    nir = CFG.instrument_for("K")  # AO below 0.9" (line of sight, 500 nm), lambda >= 1 um
+    nir = _inst(bands=("J", "H", "K"), fwhm_arcsec=0.10, ao_seeing_limit_arcsec=0.9)  # AO below 0.9" (LOS, 500 nm)
     diff = ph.diffraction_fwhm_arcsec(k.wavelength_um, 3.8)
     good = ph.delivered_fwhm_arcsec(0.6, 1.0, k, nir, 3.8)
     assert good == pytest.approx(math.hypot(diff, nir.fwhm_arcsec))  # corrected: near diffraction

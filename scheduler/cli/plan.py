@@ -193,6 +193,7 @@ def plan_export(c: Ctx, fmt: str, output: str | None, version: int | None) -> No
 @pass_ctx
 def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: str | None) -> None:
     """Altitude against time of the planned targets, the timeline, twilight, the Moon, seeing and PWV."""
+    from scheduler.db import store
     from scheduler.report.chart import chart_format, measured_samples, plan_samples, render_chart
     from scheduler.report.export import write_atomic
 
@@ -202,7 +203,8 @@ def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: st
     with c.db().session() as s:
         samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
         measured = measured_samples(s, night)
-    data = render_chart(doc, night, config, samples, now=at, style=style, fmt=fmt, measured=measured)
+        tracks = store.ephemeris_tables(s, {e["request_id"] for e in doc["entries"]})
+    data = render_chart(doc, night, config, samples, now=at, style=style, fmt=fmt, measured=measured, tracks=tracks)
     path = write_atomic(output, data)
     click.echo(f"chart of plan version {doc['plan']['version']}: {path.resolve()}")
 
@@ -237,19 +239,18 @@ def _plan_samples(c: Ctx, doc) -> list:
 @pass_ctx
 def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> None:
     """Why request ID is in the plan, or which constraint or which entries keep it out."""
-    import numpy as np
 
     from scheduler.conditions.grid import conditions_on_grid
     from scheduler.db import store
     from scheduler.report.why import explain
-    from scheduler.sky.ephemeris import compute_sky
+    from scheduler.sky.ephemeris import sky_for
 
     with c.db().session() as s:  # an unknown id fails before any sky work
         spec = store.to_spec(store.get_request(s, request_id))
         weights = store.program_weights(s)
     doc, night, config = load_document(c, version)
     solver_reason = next((u["reason"] for u in doc["unscheduled"] if u["request_id"] == request_id), None)
-    sky = compute_sky(config.site, night, np.array([spec.ra_deg]), np.array([spec.dec_deg]))
+    sky = sky_for(config.site, night, [spec])[0]
     cond = conditions_on_grid(_plan_samples(c, doc), night.times_unix, config.defaults,
                               doc["plan"]["conditions"]["report_id"])
     res = explain(config, spec, night, sky, cond, doc, weights, solver_reason)

@@ -18,6 +18,17 @@ from scheduler.report.safe_text import clean
 
 MAX_IMPORT_BYTES = 10_000_000
 MAX_IMPORT_ROWS = 20_000
+MAX_EPHEMERIS_BYTES = 5_000_000
+
+
+def read_ephemeris(path: str | Path, shown: str) -> str:
+    """The text of a PI's ephemeris table; errors name the ephemeris_file field and the file."""
+    from scheduler.textfile import read_text_file
+
+    try:
+        return read_text_file(path, MAX_EPHEMERIS_BYTES)
+    except InputError as e:
+        raise InputError("ephemeris_file", f"{shown}: {e.message}") from None
 
 
 @click.group()
@@ -98,8 +109,14 @@ def _visibility_warnings(config: ObservatoryConfig, specs) -> None:
 @request.command("add")
 @click.option("--program", required=True, help="program code")
 @click.option("--target", required=True, help="target name")
-@click.option("--ra", required=True, help="ICRS right ascension: degrees or hh:mm:ss.s")
-@click.option("--dec", required=True, help="ICRS declination: degrees or ±dd:mm:ss")
+@click.option("--ra", help="ICRS right ascension: degrees or hh:mm:ss.s (a fixed target)")
+@click.option("--dec", help="ICRS declination: degrees or ±dd:mm:ss (a fixed target)")
+@click.option("--body", help="a moving target instead of --ra/--dec: mercury venus mars jupiter saturn uranus "
+                             "neptune pluto (computed offline)")
+@click.option("--ephemeris", "ephemeris_file", type=click.Path(dir_okay=False),
+              help="a moving target instead of --ra/--dec: CSV time,ra,dec[,delta_au] (geocentric ICRS), "
+                   "stored with the request")
+@click.option("--guide-star-sep", help="adaptive optics: guide star distance from the target, arcsec (0: on axis)")
 @click.option("--band", required=True, help="band name from observatory.toml (starter: U B V R I J H K N Q)")
 @click.option("--exposure", required=True, help="exposure time in seconds (> 0)")
 @click.option("--instrument", help="instrument (default: the first that offers the band)")
@@ -127,20 +144,26 @@ def request_add(c: Ctx, **opts: Any) -> None:
 
     --max-seeing is the site seeing at 500 nm at zenith, as the conditions report it;
     --resolution is the delivered image FWHM the science needs in the request's band at the
-    target's airmass (seeing scaled by wavelength^-1/5 airmass^3/5, combined with diffraction).
+    target's airmass (seeing scaled by wavelength^-1/5 airmass^3/5, combined with diffraction;
+    with adaptive optics, the corrected core where the predicted Strehl ratio allows it).
+    The target is --ra/--dec, or --body, or --ephemeris FILE.
     """
     from scheduler.db import store
-    from scheduler.model.request import validate_request
+    from scheduler.model.request import EPHEMERIS_KEY, validate_request
+    from scheduler.model.timegrid import utcnow
 
     names = {"exposure": "exposure_s", "resolution": "resolution_arcsec", "max_seeing": "max_seeing_arcsec",
              "max_pwv": "max_pwv_mm", "min_moon_sep": "min_moon_sep_deg", "max_cloud": "max_cloud_mag",
-             "min_spacing": "min_spacing_s"}
+             "min_spacing": "min_spacing_s", "guide_star_sep": "guide_star_sep_arcsec"}
     raw = {names.get(k, k): v for k, v in opts.items() if v is not None and v is not False}
+    if raw.get("ephemeris_file"):
+        raw[EPHEMERIS_KEY] = read_ephemeris(raw["ephemeris_file"], raw["ephemeris_file"])
     config = c.config()
     db = c.db()
+    now = utcnow()
 
     def work(s):
-        spec = validate_request(raw, config, store.program_codes(s))
+        spec = validate_request(raw, config, store.program_codes(s), now=now)
         return spec, store.add_requests(s, [spec])[0]
 
     spec, rid = db.retrying(work)
@@ -187,25 +210,37 @@ def request_import(c: Ctx, file: str) -> None:
     Columns: program,target,ra,dec,band,exposure_s,resolution_arcsec,max_seeing_arcsec,
     max_pwv_mm,max_airmass,min_moon_sep_deg,max_cloud_mag,not_before,not_after,priority,repeats
     (optional ones may be absent or empty), plus instrument, min_spacing_s, max_moon_illum,
-    min_sky_mag, period_epoch, period_days, phase_min, phase_max, too.
+    min_sky_mag, period_epoch, period_days, phase_min, phase_max, too, guide_star_sep_arcsec,
+    and for a moving target instead of ra/dec: body (a planet or Pluto) or ephemeris_file (a
+    CSV time,ra,dec[,delta_au], its path relative to the imported file).
     """
     from scheduler.db import store
-    from scheduler.model.request import validate_request
+    from scheduler.model.request import EPHEMERIS_KEY, validate_request
+    from scheduler.model.timegrid import utcnow
 
     rows, _fmt = read_table_file(file, what="requests")
+    base = Path(file).resolve().parent
+    for i, raw in rows:
+        name = raw.get("ephemeris_file")
+        if name not in (None, ""):
+            try:
+                raw[EPHEMERIS_KEY] = read_ephemeris(base / str(name), str(name))
+            except InputError as e:
+                raise InputError(e.field, e.message, row=i, source=file) from None
     if not rows:
         raise InputError("file", f"{file} holds no requests")
     if len(rows) > MAX_IMPORT_ROWS:
         raise InputError("file", f"{file} has {len(rows)} rows; at most {MAX_IMPORT_ROWS} per import")
     config = c.config()
     db = c.db()
+    now = utcnow()
 
     def work(s):
         codes = store.program_codes(s)
         specs = []
         for i, raw in rows:
             try:
-                specs.append(validate_request(raw, config, codes))
+                specs.append(validate_request(raw, config, codes, now=now))
             except InputError as e:
                 raise InputError(e.field, e.message, row=i, source=file) from None
         return specs, store.add_requests(s, specs)
@@ -234,7 +269,11 @@ def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool)
     t = Table("id", "program", "target", "RA", "Dec", "band", "exp s", "prio", "limits", "status",
               title=f"requests ({len(rows)})")
     for r in rows:
-        t.add_row(str(r["id"]), r["program"], r["target"], f"{r['ra_deg']:.4f}", f"{r['dec_deg']:+.4f}",
+        if r.get("body") or r.get("ephemeris_rows"):  # moving: the listed position is only a reference
+            ra, dec = (r["body"], "(moving)") if r.get("body") else ("table", f"({r['ephemeris_rows']} rows)")
+        else:
+            ra, dec = f"{r['ra_deg']:.4f}", f"{r['dec_deg']:+.4f}"
+        t.add_row(str(r["id"]), r["program"], r["target"], ra, dec,
                   r["band"], f"{r['exposure_s']:g}", str(r["priority"]), _limits_text(r), r["status"])
     console().print(t)
 

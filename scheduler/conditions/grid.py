@@ -11,6 +11,8 @@ CONTRACT: ConditionsGrid is what feasibility, the solver's merit and the reports
   as either neighbouring sample is over the limit and end only when both are under it:
   linear interpolation would open the dome half an interval too early when the wind drops and
   close it half an interval too late when it rises (conservative choice, common practice);
+- coherence time (optional): linear between the samples that carry it; nan elsewhere (no
+  default: adaptive optics then has no temporal term). It does not affect ``covered``;
 - dome: step-wise, the last reported state holds (also after the last sample: a dome state is
   an operator's fact, not a forecast that runs out); before the first dome sample, the default.
 
@@ -40,6 +42,8 @@ class ConditionsGrid:
     covered: np.ndarray  # [n_t] bool: a sample covered this time (False: config defaults used)
     report_id: int | None = None
     times_unix: np.ndarray | None = None  # [n_t] the grid times these values belong to (added)
+    coherence_time_ms: np.ndarray | None = None  # [n_t] tau0 at 500 nm, zenith; nan (or None) where unknown
+    report_ids: tuple[int, ...] = ()  # every report that supplied some time, newest first (merge.py)
 
     @property
     def n_times(self) -> int:
@@ -91,6 +95,14 @@ def conditions_on_grid(samples: Iterable, times_unix: np.ndarray, defaults: Cond
         out[name] = np.where(inside, vals, default)
         covered &= inside
 
+    tau = column("coherence_time_ms") if rows else np.empty(0)
+    have = ~np.isnan(tau)
+    coherence = np.full(n_t, np.nan)
+    if have.any():
+        tf, vf = ts[have], tau[have]
+        inside = (t >= tf[0]) & (t <= tf[-1])
+        coherence = np.where(inside, np.interp(t, tf, vf), np.nan)
+
     dome = np.array([np.nan if s.dome_open is None else float(s.dome_open) for s in rows], dtype=np.float64)
     have = ~np.isnan(dome)
     if have.any():
@@ -104,7 +116,8 @@ def conditions_on_grid(samples: Iterable, times_unix: np.ndarray, defaults: Cond
     return ConditionsGrid(
         seeing_arcsec=out["seeing_arcsec"], pwv_mm=out["pwv_mm"], cloud_mag=out["cloud_mag"],
         wind_ms=out["wind_ms"], humidity_pct=out["humidity_pct"], dome_open=dome_open.astype(bool),
-        covered=covered, report_id=report_id, times_unix=t.copy(),
+        covered=covered, report_id=report_id, times_unix=t.copy(), coherence_time_ms=coherence,
+        report_ids=(report_id,) if report_id is not None and rows else (),
     )
 
 

@@ -4,12 +4,17 @@ Pure: takes the text, returns samples; reading files and storing reports is the 
 
 CSV: a header line, then one sample per line. Columns (any order; only ``time`` is required):
 
-    time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome
+    time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome,coherence_time_ms
+
+``coherence_time_ms`` (optional) is the atmospheric coherence time tau0 at 500 nm, zenith
+(trade convention, as turbulence monitors report it); adaptive optics uses it for its
+temporal error term.
 
 JSON: either a list of sample objects with those keys, or an object
 ``{"issued": ISO-8601, "source": text, "samples": [...]}``.
 
-``time`` is ISO-8601 UTC (a time without a zone is taken as UTC; an offset is converted).
+``time`` is ISO-8601 with its zone: ``Z`` for UTC or an offset, which is converted to UTC. A
+time without a zone is refused (a local time read as UTC would shift the report by hours).
 Every other field may be empty (CSV) or null/absent (JSON): that quantity is simply not part
 of that sample. ``dome`` is ``open`` or ``closed``. Samples must be in strictly increasing time.
 
@@ -22,16 +27,17 @@ from __future__ import annotations
 
 import csv
 import io
-import json
-import math
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Iterator, Sequence
 
 from scheduler.model.errors import InputError
 from scheduler.model.timegrid import iso, parse_time
+from scheduler.model.untrusted import (
+    check_duplicates, check_text, csv_table, load_json, parse_number, safe_name, shown, type_name,
+)
 
-COLUMNS = ("time", "seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome")
+COLUMNS = ("time", "seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome", "coherence_time_ms")
 REPORT_KEYS = ("issued", "source", "samples")
 
 MAX_BYTES = 5_000_000
@@ -46,6 +52,7 @@ LIMITS: dict[str, tuple[float, float, bool, str]] = {
     "cloud_mag": (0.0, 20.0, False, "mag"),
     "wind_ms": (0.0, 150.0, False, "m/s"),  # above any recorded surface gust (~113 m/s, from memory)
     "humidity_pct": (0.0, 100.0, False, "%"),
+    "coherence_time_ms": (0.0, 1000.0, True, "ms"),  # tau0 at 500 nm is a few ms at good sites (from memory)
 }
 DOME_VALUES = {"open": True, "closed": False}
 
@@ -61,6 +68,7 @@ class Sample:
     wind_ms: float | None = None
     humidity_pct: float | None = None
     dome_open: bool | None = None
+    coherence_time_ms: float | None = None  # tau0 at 500 nm, zenith
 
 
 @dataclass(frozen=True)
@@ -87,8 +95,9 @@ def parse_conditions(text: str, fmt: str | None = None, source_name: str = "cond
 
     ``source_name`` (typically the file name) prefixes every error message.
     """
+    source_name = safe_name(source_name, 200)  # a file name can hold anything but a slash
     if fmt is not None and fmt not in ("csv", "json"):
-        raise InputError("format", f"{fmt!r} not allowed; choose csv or json", source=source_name)
+        raise InputError("format", f"{shown(fmt)} not allowed; choose csv or json", source=source_name)
     if not isinstance(text, str):
         raise InputError("file", "must be text (UTF-8)", source=source_name)
     if len(text) > MAX_BYTES or len(text.encode("utf-8", "surrogatepass")) > MAX_BYTES:
@@ -106,39 +115,27 @@ def parse_conditions(text: str, fmt: str | None = None, source_name: str = "cond
 # --------------------------------------------------------------------------- CSV
 
 def _parse_csv(text: str, src: str) -> ParsedReport:
-    reader = csv.reader(io.StringIO(text, newline=""))
-    try:
-        header = next(reader)
-    except csv.Error as e:
-        raise InputError("header", f"not valid CSV: {e}", row=1, source=src) from None
-    names = [h.strip() for h in header]
+    names, cells_of = csv_table(text, source=src)  # refuses a column twice, an oversized cell
     for name in names:
         if name not in COLUMNS:
-            raise InputError(name or "header", f"unknown column; allowed: {','.join(COLUMNS)}", row=1, source=src)
-    dup = [n for n in names if names.count(n) > 1]
-    if dup:
-        raise InputError(dup[0], "column appears twice", row=1, source=src)
+            raise InputError(safe_name(name), f"unknown column; allowed: {','.join(COLUMNS)}", row=1, source=src)
     if "time" not in names:
         raise InputError("time", f"column is required; allowed columns: {','.join(COLUMNS)}", row=1, source=src)
 
     samples: list[Sample] = []
     prev: tuple[datetime, int] | None = None
-    try:
-        for cells in reader:
-            line = reader.line_num
-            if not cells or all(not c.strip() for c in cells):
-                continue  # blank line
-            if len(cells) != len(names):
-                field = names[len(cells)] if len(cells) < len(names) else "columns"
-                raise InputError(field, f"has {len(cells)} values; the header has {len(names)} columns",
-                                 row=line, source=src)
-            if len(samples) >= MAX_ROWS:
-                raise InputError("file", f"has more than the limit of {MAX_ROWS} samples", row=line, source=src)
-            s = _sample(dict(zip(names, cells)), line, src)
-            prev = _check_order(s, prev, line, src)
-            samples.append(s)
-    except csv.Error as e:
-        raise InputError("row", f"not valid CSV: {e}", row=reader.line_num, source=src) from None
+    for line, cells in cells_of:
+        if not cells or all(not c.strip() for c in cells):
+            continue  # blank line
+        if len(cells) != len(names):
+            field = names[len(cells)] if len(cells) < len(names) else "columns"
+            raise InputError(field, f"has {len(cells)} values; the header has {len(names)} columns",
+                             row=line, source=src)
+        if len(samples) >= MAX_ROWS:
+            raise InputError("file", f"has more than the limit of {MAX_ROWS} samples", row=line, source=src)
+        s = _sample(dict(zip(names, cells)), line, src)
+        prev = _check_order(s, prev, line, src)
+        samples.append(s)
     if not samples:
         raise InputError("file", "holds a header but no samples", source=src)
     return ParsedReport(tuple(samples), None, src, "csv")
@@ -147,35 +144,31 @@ def _parse_csv(text: str, src: str) -> ParsedReport:
 # --------------------------------------------------------------------------- JSON
 
 def _parse_json(text: str, src: str) -> ParsedReport:
-    try:
-        doc = json.loads(text)
-    except json.JSONDecodeError as e:
-        raise InputError("file", f"not valid JSON: {e.msg} at line {e.lineno} column {e.colno}", source=src) from None
+    doc = load_json(text, source=src)  # refuses bad syntax, nesting too deep, unreadable numbers
     issued = None
     source = src
     if isinstance(doc, dict):
+        check_duplicates(doc, source=src)
         for k in doc:
             if k not in REPORT_KEYS:
-                raise InputError(str(k), f"unknown key; allowed: {', '.join(REPORT_KEYS)}", source=src)
+                raise InputError(safe_name(k), f"unknown key; allowed: {', '.join(REPORT_KEYS)}", source=src)
         if doc.get("issued") not in (None, ""):
             try:
-                issued = parse_time(doc["issued"], "issued")
+                issued = parse_time(doc["issued"], "issued", require_zone=True)
             except InputError as e:
                 raise InputError("issued", e.message, source=src) from None
         if doc.get("source") not in (None, ""):
-            s = doc["source"]
-            if not isinstance(s, str) or len(s.strip()) > 200 or any(ord(c) < 32 for c in s):
-                raise InputError("source", "must be text of 1 to 200 printable characters", source=src)
-            source = s.strip()
+            source = check_text(doc["source"], "source", max_len=200, source=src)
         if "samples" not in doc:
             raise InputError("samples", "is required: a list of sample objects", source=src)
         rows = doc["samples"]
     elif isinstance(doc, list):
         rows = doc
     else:
-        raise InputError("file", "JSON must be a list of samples or an object with a samples list", source=src)
+        raise InputError("file", f"JSON must be a list of samples or an object with a samples list, "
+                                 f"not {type_name(doc)}", source=src)
     if not isinstance(rows, list):
-        raise InputError("samples", "must be a list of sample objects", source=src)
+        raise InputError("samples", f"must be a list of sample objects, not {type_name(rows)}", source=src)
     if not rows:
         raise InputError("samples", "the report holds no samples", source=src)
     if len(rows) > MAX_ROWS:
@@ -185,10 +178,12 @@ def _parse_json(text: str, src: str) -> ParsedReport:
     prev: tuple[datetime, int] | None = None
     for i, raw in enumerate(rows, start=1):
         if not isinstance(raw, dict):
-            raise InputError("sample", "must be an object with keys " + ", ".join(COLUMNS), row=i, source=src)
+            raise InputError("sample", f"must be an object with keys {', '.join(COLUMNS)}, not {type_name(raw)}",
+                             row=i, source=src)
+        check_duplicates(raw, row=i, source=src)
         for k in raw:
             if k not in COLUMNS:
-                raise InputError(str(k), f"unknown key; allowed: {', '.join(COLUMNS)}", row=i, source=src)
+                raise InputError(safe_name(k), f"unknown key; allowed: {', '.join(COLUMNS)}", row=i, source=src)
         s = _sample(raw, i, src)
         prev = _check_order(s, prev, i, src)
         samples.append(s)
@@ -203,26 +198,21 @@ def _blank(v: Any) -> bool:
 
 def _number(raw: dict[str, Any], name: str, row: int, src: str) -> float | None:
     v = raw.get(name)
-    if _blank(v):
-        return None
     lo, hi, lo_open, unit = LIMITS[name]
     rng = f"greater than {lo:g} and at most {hi:g} {unit}" if lo_open else f"from {lo:g} to {hi:g} {unit}"
-    if isinstance(v, bool):
-        raise InputError(name, f"must be a number {rng}", row=row, source=src)
-    try:
-        x = float(v)
-    except (TypeError, ValueError):
-        raise InputError(name, f"{v!r} is not a number; allowed {rng}", row=row, source=src) from None
-    if not math.isfinite(x) or x < lo or x > hi or (lo_open and x == lo):
-        raise InputError(name, f"{v} is out of range; allowed {rng}", row=row, source=src)
+    x = parse_number(v, name, rng, row=row, source=src)  # ASCII decimal text or a JSON number
+    if x is None:
+        return None
+    if x < lo or x > hi or (lo_open and x == lo):
+        raise InputError(name, f"{shown(v)} is out of range; allowed {rng}", row=row, source=src)
     return x
 
 
 def _sample(raw: dict[str, Any], row: int, src: str) -> Sample:
     if _blank(raw.get("time")):
-        raise InputError("time", "is required (ISO-8601 UTC, e.g. 2026-12-05T03:30:00Z)", row=row, source=src)
+        raise InputError("time", "is required (ISO-8601 with a zone, e.g. 2026-12-05T03:30:00Z)", row=row, source=src)
     try:
-        t = parse_time(raw["time"], "time")
+        t = parse_time(raw["time"], "time", require_zone=True)
     except InputError as e:
         raise InputError("time", e.message, row=row, source=src) from None
     dome = raw.get("dome")
@@ -230,7 +220,8 @@ def _sample(raw: dict[str, Any], row: int, src: str) -> Sample:
     if not _blank(dome):
         key = dome.strip().lower() if isinstance(dome, str) else None
         if key not in DOME_VALUES:
-            raise InputError("dome", f"{dome!r} not allowed; use open or closed (or leave empty)", row=row, source=src)
+            what = shown(dome) if isinstance(dome, str) else type_name(dome)
+            raise InputError("dome", f"{what} not allowed; use open or closed (or leave empty)", row=row, source=src)
         dome_open = DOME_VALUES[key]
     return Sample(
         time=t,
@@ -240,6 +231,7 @@ def _sample(raw: dict[str, Any], row: int, src: str) -> Sample:
         wind_ms=_number(raw, "wind_ms", row, src),
         humidity_pct=_number(raw, "humidity_pct", row, src),
         dome_open=dome_open,
+        coherence_time_ms=_number(raw, "coherence_time_ms", row, src),
     )
 
 
@@ -263,5 +255,6 @@ def samples_to_csv(samples: Sequence[Sample]) -> str:
     for s in samples:
         dome = "" if s.dome_open is None else ("open" if s.dome_open else "closed")
         vals = [s.seeing_arcsec, s.pwv_mm, s.cloud_mag, s.wind_ms, s.humidity_pct]
-        w.writerow([iso(s.time)] + ["" if v is None else f"{v:.10g}" for v in vals] + [dome])
+        tau = "" if s.coherence_time_ms is None else f"{s.coherence_time_ms:.10g}"
+        w.writerow([iso(s.time)] + ["" if v is None else f"{v:.10g}" for v in vals] + [dome, tau])
     return out.getvalue()

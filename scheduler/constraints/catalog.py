@@ -38,8 +38,16 @@ What each mask means (formulas and their sources: docs/physics.md):
   SUN             closer to the Sun than safety.sun_avoidance_deg (at any Sun altitude).
   WINDOW          the step [t, t + step) not inside [not_before, not_after], or the periodic
                   event's phase ((t - epoch) / period) mod 1 outside [phase_min, phase_max] at the
-                  start or end of the step (phase_min > phase_max wraps through phase 0).
+                  start or end of the step (phase_min > phase_max wraps through phase 0), or a
+                  moving target's ephemeris table does not cover the time (no position: ALTITUDE
+                  is not set there).
   NIGHT_END       (START) the start time's setup + exposure runs past the end of the grid.
+  AO_STREHL       the request needs the adaptive-optics core (its resolution_arcsec is met by the
+                  corrected core but not by the seeing halo) and the predicted Strehl ratio
+                  (sky.adaptive_optics: fitting, guide-star distance, coherence time) is below the
+                  instrument's ao_strehl_min. RESOLUTION is not set where this is.
+  SURFACE         a dish's Ruze efficiency exp(-(4 pi sigma / lambda)^2) below the telescope's
+                  surface_efficiency_floor (sigma: the sunlit value while the Sun is up).
 
 A limit a request does not set is nan, and a comparison with nan never fails.
 To add a constraint: DEVELOPERS.md, "Adding a constraint".
@@ -79,6 +87,8 @@ class Reason(IntFlag):
     SUN = 1 << 10  # within the sun-avoidance angle
     WINDOW = 1 << 11  # outside the absolute or periodic time window
     NIGHT_END = 1 << 12  # (start only) the whole exposure does not fit before the grid ends
+    AO_STREHL = 1 << 13  # adaptive optics: too little light in the corrected core for the resolution needed
+    SURFACE = 1 << 14  # dish surface efficiency (Ruze) below the floor (sunlit dish)
 
 
 TRANSMISSION_FLOOR = 0.1  # common practice: below a tenth of the light, do not expose
@@ -104,9 +114,14 @@ class Grid:
     sky_mag: np.ndarray  # [n_r, n_t] band sky brightness, nan where not modelled
     limits: Mapping[str, np.ndarray]  # request field -> [n_r] float64, nan = no limit
     duration_steps: np.ndarray  # [n_r]
+    covered: np.ndarray | None = None  # [n_r, n_t] the target has a position (moving targets' tables)
+    surface_eff: np.ndarray | None = None  # [n_r, n_t] dish Ruze efficiency (1 where it does not apply)
     cond: ConditionsGrid | None = None
     fwhm: np.ndarray | None = None  # [n_r, n_t] delivered FWHM in the band
     transmission: np.ndarray | None = None  # [n_r, n_t]
+    strehl: np.ndarray | None = None  # [n_r, n_t] predicted AO Strehl ratio, nan where not modelled
+    halo_fwhm: np.ndarray | None = None  # [n_r, n_t] the image without AO correction
+    core_fwhm: np.ndarray | None = None  # [n_r] the corrected core (diffraction and instrument)
 
     @property
     def times(self) -> np.ndarray:
@@ -197,8 +212,9 @@ class Altitude(Constraint):
         tel = g.config.telescope
         alt = g.sky.alt_deg[g.rows]
         with np.errstate(invalid="ignore"):
-            return (alt < tel.min_altitude_deg) | (alt > tel.max_altitude_deg) | ~np.isfinite(g.airmass) \
+            bad = (alt < tel.min_altitude_deg) | (alt > tel.max_altitude_deg) | ~np.isfinite(g.airmass) \
                 | (g.airmass > g.limits["max_airmass"][:, None])
+        return bad if g.covered is None else bad & g.covered  # no position: WINDOW says it
 
     def detail(self, c):
         alt = np.asarray(c.sky.alt_deg[0, c.sl], dtype=np.float64)
@@ -293,6 +309,20 @@ class Seeing(Constraint):
                 f"{spec.max_seeing_arcsec:g} arcsec limit")
 
 
+def ao_core_lost(g: Grid) -> np.ndarray:
+    """Where the request's resolution needs the AO core (met by the core, not by the halo) and the
+    predicted Strehl ratio is below the instrument's threshold."""
+    n_r = len(g.requests)
+    if g.strehl is None:
+        return np.zeros(g.airmass.shape, dtype=bool)
+    s_min = np.array([g.config.instrument_for(r.band, r.instrument).ao_strehl_min for r in g.requests],
+                     dtype=np.float64).reshape(n_r, 1)
+    res = g.limits["resolution_arcsec"][:, None]
+    with np.errstate(invalid="ignore"):
+        needs_core = (g.core_fwhm[:, None] <= res) & (g.halo_fwhm > res)
+        return g.up & needs_core & np.isfinite(g.strehl) & (g.strehl < s_min)
+
+
 class Resolution(Constraint):
     reason, label = Reason.RESOLUTION, "resolution"
     wording = "delivered resolution in the band (resolution_arcsec)"
@@ -301,7 +331,7 @@ class Resolution(Constraint):
 
     def fails(self, g):
         with np.errstate(invalid="ignore"):
-            return g.up & (g.fwhm > g.limits["resolution_arcsec"][:, None])
+            return g.up & (g.fwhm > g.limits["resolution_arcsec"][:, None]) & ~ao_core_lost(g)
 
     def detail(self, c):
         v = np.where(np.isfinite(c.feas.fwhm_arcsec[0, c.sl]), c.feas.fwhm_arcsec[0, c.sl], np.inf)
@@ -403,7 +433,7 @@ def _in_phase(phase: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
 
 class TimeWindow(Constraint):
     reason, label = Reason.WINDOW, "window"
-    wording = "time window (not_before/not_after or periodic phase)"
+    wording = "time window (not_before/not_after, periodic phase, or the ephemeris table's span)"
 
     def fails(self, g):
         t, step, reqs = g.times, g.step_s, g.requests
@@ -421,6 +451,8 @@ class TimeWindow(Constraint):
             ph0 = np.mod((t[None, :] - epoch) / period, 1.0)
             ph1 = np.mod((t[None, :] + step - epoch) / period, 1.0)
             out[per] |= ~(_in_phase(ph0, lo, hi) & _in_phase(ph1, lo, hi))
+        if g.covered is not None:
+            out |= ~g.covered  # a moving target's table does not reach this time
         return out
 
     def detail(self, c):
@@ -431,6 +463,10 @@ class TimeWindow(Constraint):
         if spec.period_days is not None:
             parts.append(f"periodic window phase {spec.phase_min:g}-{spec.phase_max:g} of {spec.period_days:g} d "
                          f"from {iso(spec.period_epoch)}")
+        if spec.ephemeris is not None:
+            tab = spec.ephemeris
+            parts.append(f"its ephemeris table covers {tab.row_time(0)} (row 1) to {tab.row_time(tab.n_rows - 1)} "
+                         f"(row {tab.n_rows})")
         return "; ".join(parts) + f"; the night runs {c.fmt_t(t[0])} to {c.fmt_t(t[-1] + c.sky.night.step_s)}", None
 
 
@@ -451,10 +487,62 @@ class NightEnd(Constraint):
                 f"it ends at {c.fmt_t(t[-1] + step)}"), None
 
 
+class AoStrehl(Constraint):
+    reason, label = Reason.AO_STREHL, "ao strehl"
+    wording = "adaptive-optics correction (Strehl ratio below the instrument's threshold)"
+    layer = CONDITIONS
+    limits = ("resolution_arcsec",)
+
+    def fails(self, g):
+        return ao_core_lost(g)
+
+    def detail(self, c):
+        s = np.asarray(c.feas.strehl[0, c.sl], dtype=np.float64)
+        if s.size == 0 or np.all(np.isnan(s)):
+            return "no adaptive-optics prediction for this band and instrument", None
+        i = c.best(s, "max")
+        inst = c.config.instrument_for(c.spec.band, c.spec.instrument)
+        sep = c.spec.guide_star_sep_arcsec or 0.0
+        where = f"at {sep:g} arcsec from the guide star" if sep > 0 else "on axis"
+        tau = c.cond.coherence_time_ms
+        tau_txt = ""
+        if tau is not None and np.isfinite(tau[c.now_step + i]) and inst.ao_servo_lag_ms is not None:
+            tau_txt = f", coherence time {tau[c.now_step + i]:.1f} ms"
+        return (f"AO Strehl in {c.spec.band} {s[i]:.2f} {where}, needs {inst.ao_strehl_min:g} "
+                f"(best at {c.at(i)}, seeing {c.cond.seeing_arcsec[c.now_step + i]:.2f}\"{tau_txt}); "
+                f"without the core the image is {c.feas.halo_fwhm[0, c.now_step + i]:.2f}\", "
+                f"its resolution_arcsec is {c.spec.resolution_arcsec:g}"), c.now_step + i
+
+    def breach(self, spec, cond, a, b):
+        return "adaptive-optics Strehl below the instrument's threshold"
+
+
+class Surface(Constraint):
+    reason, label = Reason.SURFACE, "dish surface"
+    wording = "dish surface efficiency (Ruze) below the floor"
+
+    def fails(self, g):
+        if g.surface_eff is None:
+            return np.zeros(g.airmass.shape, dtype=bool)
+        return g.surface_eff < g.config.telescope.surface_efficiency_floor
+
+    def detail(self, c):
+        from scheduler.sky.physics import surface_rms_um
+
+        eff = np.asarray(c.feas.surface_eff[0, c.sl], dtype=np.float64)
+        i = c.best(eff, "max")
+        tel = c.config.telescope
+        sun = float(c.sky.sun_alt_deg[c.now_step + i])
+        lit = "sunlit" if sun > 0 else "at night"
+        return (f"dish surface efficiency in {c.spec.band} {eff[i]:.2f} ({lit}, "
+                f"{float(surface_rms_um(tel, sun)):g} um rms) at {c.at(i)}; the floor is "
+                f"{tel.surface_efficiency_floor:g}"), c.now_step + i
+
+
 # Ordered by bit. The single list: tests/test_catalog.py holds it to one entry per Reason bit.
 CATALOG: tuple[Constraint, ...] = (
     Altitude(), Twilight(), MoonSeparation(), SkyBrightness(), Seeing(), Resolution(), Pwv(), Transmission(),
-    Cloud(), Closure(), SunAvoidance(), TimeWindow(), NightEnd(),
+    Cloud(), Closure(), SunAvoidance(), TimeWindow(), NightEnd(), AoStrehl(), Surface(),
 )
 
 BY_REASON: dict[Reason, Constraint] = {c.reason: c for c in CATALOG}

@@ -32,6 +32,15 @@ Merit, in (0, 1] where ok (0 where not ok), a product of three factors:
               w = 0; one with a loose or no limit in excellent seeing has w near 1.
   w_water     the same with PWV: pwv / max_pwv_mm, or pwv / defaults.pwv_mm without a limit.
 
+Two more factors, 1 where they do not apply (sources in docs/physics.md):
+
+  thermal     bands marked thermal: sqrt(B_best / B), the background-limited sensitivity of
+              the sky now (emissivity 1 - t at the air temperature, Kirchhoff) relative to the
+              band's best sky (zenith, no water, no cloud); with T / T_ideal this is the
+              signal-to-noise ratio of a fixed exposure relative to the best sky.
+  surface     dishes (bands not seeing-limited): Ruze efficiency now / at night (a sunlit
+              dish is less accurate).
+
 The waste factors steer rare good conditions to the requests that need them (a request with
 no seeing limit scores lower in excellent seeing than in ordinary seeing) while never making
 an allowed time worthless: merit >= (T_floor / T_ideal) * 0.5 * 0.75 * X_min / X > 0. Weights
@@ -52,7 +61,8 @@ from scheduler.constraints import catalog
 from scheduler.constraints.catalog import MOON_UP_ALT_DEG, TRANSMISSION_FLOOR, Grid, Reason  # noqa: F401 (re-exported)
 from scheduler.model.config import Band, Instrument, ObservatoryConfig
 from scheduler.model.request import RequestSpec
-from scheduler.sky import physics
+from scheduler.sky import adaptive_optics, physics
+from scheduler.sky import thermal as thermal_sky
 from scheduler.sky.ephemeris import SkyGrid
 
 
@@ -68,6 +78,10 @@ class Feasibility:
     fwhm_arcsec: np.ndarray  # [n_r, n_t] predicted delivered image FWHM in the band
     transmission: np.ndarray  # [n_r, n_t] 0..1 (extinction, water vapour, cloud)
     sky_mag: np.ndarray  # [n_r, n_t] sky brightness in the band, mag/arcsec^2 (nan if not modelled)
+    # Added with the adaptive optics, dish and moving-target physics (defaults keep old builders working):
+    strehl: np.ndarray | None = None  # [n_r, n_t] float32 predicted AO Strehl ratio, nan where not modelled
+    halo_fwhm: np.ndarray | None = None  # [n_r, n_t] float32 image FWHM without AO correction
+    surface_eff: np.ndarray | None = None  # [n_r, n_t] float32 dish Ruze efficiency, 1 where it does not apply
 
 
 SEEING_WASTE_WEIGHT = 0.5
@@ -103,6 +117,10 @@ class StaticLayer:
     limits: Mapping[str, np.ndarray]  # request field -> [n_r], nan = no limit (catalog.LIMIT_FIELDS)
     t_ideal: np.ndarray  # [n_r] band transmission at zenith, no water, no cloud
     groups: tuple[_Group, ...]
+    covered: np.ndarray | None = None  # [n_r, n_t] bool: the target has a position
+    surface_eff: np.ndarray | None = None  # [n_r, n_t] dish Ruze efficiency (1 where it does not apply)
+    surface_best: np.ndarray | None = None  # [n_r] the dish's night efficiency in the band (1 if n/a)
+    guide_sep: np.ndarray | None = None  # [n_r] AO guide-star distance, arcsec (0 when not given)
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -163,8 +181,14 @@ def static_layer(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: 
         max(1, math.ceil((config.instrument_for(r.band, r.instrument).setup_s + r.next_exposure_s) / step - 1e-9))
         for r in requests], dtype=np.int64)
     limits = {name: _limit(requests, name) for name in catalog.LIMIT_FIELDS}
+    covered = sky.covered(rows)
+    surface_eff = np.ones((n_r, n_t), dtype=np.float64)
+    surface_best = np.ones(n_r, dtype=np.float64)
+    for g in groups:
+        surface_eff[g.rows] = physics.surface_efficiency(g.band, config.telescope, sky.sun_alt_deg)[None, :]
+        surface_best[g.rows] = physics.night_surface_efficiency(g.band, config.telescope)
     grid = Grid(requests=requests, config=config, sky=sky, rows=rows, airmass=airmass, sky_mag=sky_mag,
-                limits=limits, duration_steps=durations)
+                limits=limits, duration_steps=durations, covered=covered, surface_eff=surface_eff)
     reasons = np.zeros((n_r, n_t), dtype=np.uint16)
     for c in catalog.of_layer(catalog.STATIC):
         _flag(reasons, c.fails(grid), c.reason)
@@ -175,6 +199,8 @@ def static_layer(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: 
         request_ids=np.array([-1 if r.id is None else r.id for r in requests], dtype=np.int64),
         target_row=rows, step_s=step, reasons=reasons, airmass=airmass, airmass_min=airmass_min,
         sky_mag=sky_mag, duration_steps=durations, limits=limits, t_ideal=t_ideal, groups=groups,
+        covered=covered, surface_eff=surface_eff, surface_best=surface_best,
+        guide_sep=np.array([r.guide_star_sep_arcsec or 0.0 for r in requests], dtype=np.float64),
     )
 
 
@@ -211,17 +237,32 @@ def evaluate(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyG
     pwv = np.asarray(cond.pwv_mm, dtype=np.float64)
     cloud = np.asarray(cond.cloud_mag, dtype=np.float64)
     fwhm = np.empty((n_r, n_t), dtype=np.float64)
+    halo = np.empty((n_r, n_t), dtype=np.float64)
+    core = np.empty(n_r, dtype=np.float64)
     trans = np.empty((n_r, n_t), dtype=np.float64)
+    thermal = np.ones((n_r, n_t), dtype=np.float64)
+    strehl = np.full((n_r, n_t), np.nan)
     ap = config.telescope.aperture_m
+    h_bar = config.site.turbulence_height_m
+    tau0 = None if cond.coherence_time_ms is None else np.asarray(cond.coherence_time_ms, dtype=np.float64)[None, :]
+    guide = st.guide_sep if st.guide_sep is not None else np.zeros(n_r)
     with np.errstate(invalid="ignore", over="ignore"):
         for g in st.groups:  # a handful of (band, instrument) pairs
             x = st.airmass[g.rows]
-            fwhm[g.rows] = physics.delivered_fwhm_arcsec(seeing[None, :], x, g.band, g.instrument, ap)
+            if adaptive_optics.uses_turbulence_model(g.band, g.instrument):
+                strehl[g.rows] = adaptive_optics.strehl(seeing[None, :], x, g.band, g.instrument, h_bar,
+                                                        guide[g.rows][:, None], tau0)
+            fwhm[g.rows] = physics.delivered_fwhm_arcsec(seeing[None, :], x, g.band, g.instrument, ap,
+                                                         strehl=strehl[g.rows])
+            halo[g.rows] = physics.seeing_limited_fwhm_arcsec(seeing[None, :], x, g.band, g.instrument, ap)
+            core[g.rows] = physics.core_fwhm_arcsec(g.band, g.instrument, ap)
             trans[g.rows] = physics.transmission(g.band, pwv[None, :], x, cloud[None, :])
-
+            if g.band.thermal:
+                thermal[g.rows] = thermal_sky.background_factor(g.band, pwv[None, :], x, cloud[None, :])
     grid = Grid(requests=requests, config=config, sky=sky, rows=st.target_row, airmass=st.airmass,
                 sky_mag=st.sky_mag, limits=st.limits, duration_steps=st.duration_steps, cond=cond,
-                fwhm=fwhm, transmission=trans)
+                fwhm=fwhm, transmission=trans, covered=st.covered, surface_eff=st.surface_eff,
+                strehl=strehl, halo_fwhm=halo, core_fwhm=core)
     reasons = st.reasons.copy()
     for c in catalog.of_layer(catalog.CONDITIONS):
         _flag(reasons, c.fails(grid), c.reason)
@@ -230,11 +271,13 @@ def evaluate(requests: Sequence[RequestSpec], target_rows: np.ndarray, sky: SkyG
     for c in catalog.of_layer(catalog.START):  # about start times: they leave ``ok`` alone
         _flag(reasons, c.fails(grid), c.reason)
 
-    merit = _merit(st, ok, seeing, pwv, fwhm, trans, config)
+    merit = _merit(st, ok, seeing, pwv, fwhm, trans, config, thermal)
+    surface = st.surface_eff if st.surface_eff is not None else np.ones((n_r, n_t))
     return Feasibility(
         request_ids=st.request_ids.copy(), target_row=st.target_row.copy(), ok=ok, reasons=reasons,
         merit=merit, duration_steps=st.duration_steps.copy(), start_ok=start_ok,
         fwhm_arcsec=fwhm.astype(np.float32), transmission=trans.astype(np.float32), sky_mag=st.sky_mag,
+        strehl=strehl.astype(np.float32), halo_fwhm=halo.astype(np.float32), surface_eff=surface.astype(np.float32),
     )
 
 
@@ -245,7 +288,7 @@ def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
 
 
 def _merit(st: StaticLayer, ok: np.ndarray, seeing: np.ndarray, pwv: np.ndarray, fwhm: np.ndarray,
-           trans: np.ndarray, config: ObservatoryConfig) -> np.ndarray:
+           trans: np.ndarray, config: ObservatoryConfig, thermal: np.ndarray | None = None) -> np.ndarray:
     """See the module docstring. 0 where not ok."""
     d = config.defaults
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
@@ -265,5 +308,9 @@ def _merit(st: StaticLayer, ok: np.ndarray, seeing: np.ndarray, pwv: np.ndarray,
         w_water = 1.0 - np.clip(r_w, 0.0, 1.0)
 
         m = m_air * m_t * (1.0 - SEEING_WASTE_WEIGHT * w_see) * (1.0 - WATER_WASTE_WEIGHT * w_water)
+        if thermal is not None:
+            m = m * thermal  # thermal bands: sqrt(best sky background / background), 1 elsewhere
+        if st.surface_eff is not None:
+            m = m * st.surface_eff / st.surface_best[:, None]  # dish: efficiency now / at night
     m = np.where(ok, np.clip(np.nan_to_num(m, nan=0.0), 1e-6, 1.0), 0.0)
     return m.astype(np.float32)

@@ -20,7 +20,7 @@ from scheduler.constraints.feasibility import Feasibility, evaluate, reason_name
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import iso, runs, utc
-from scheduler.sky.ephemeris import SkyGrid, compute_sky
+from scheduler.sky.ephemeris import SkyGrid, sky_for
 from scheduler.sky.night import Night, night_for
 
 
@@ -79,7 +79,7 @@ def feasible_windows(config: ObservatoryConfig, spec: RequestSpec, night_date: d
                      *, night: Night | None = None, sky: SkyGrid | None = None) -> dict[str, Any]:
     """Everything from scratch for one request (CLI `request show --night`)."""
     night = night or night_for(config.site, night_date, config.planning.step_s)
-    sky = sky or compute_sky(config.site, night, np.array([spec.ra_deg]), np.array([spec.dec_deg]))
+    sky = sky or sky_for(config.site, night, [spec])[0]
     cond = conditions_on_grid(samples, night.times_unix, config.defaults)
     feas = evaluate([spec], np.array([0]), sky, cond, config)
     out = request_windows(spec, feas, 0, night)

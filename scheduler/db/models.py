@@ -112,6 +112,9 @@ class Request(Base):
     status: Mapped[RequestStatus] = mapped_column(default=RequestStatus.QUEUED)
     completed_repeats: Mapped[int] = mapped_column(default=0)
     partial_exposure_s: Mapped[float] = mapped_column(default=0.0)
+    guide_star_sep_arcsec: Mapped[float | None]  # AO guide star distance (0: on axis)
+    body: Mapped[str | None] = mapped_column(String(16))  # moving target: a planet or Pluto
+    ephemeris_csv: Mapped[str | None] = mapped_column(Text)  # moving target: the PI's table, canonical CSV
     created_at: Mapped[datetime] = mapped_column(default=utcnow)
     updated_at: Mapped[datetime] = mapped_column(default=utcnow, onupdate=utcnow)
 
@@ -145,6 +148,7 @@ class ConditionsSample(Base):
     wind_ms: Mapped[float | None]
     humidity_pct: Mapped[float | None]
     dome_open: Mapped[bool | None]
+    coherence_time_ms: Mapped[float | None]  # tau0 at 500 nm, zenith
 
     report: Mapped[ConditionsReport] = relationship(back_populates="samples")
 
@@ -200,6 +204,10 @@ class PlanEntry(Base):
     moon_sep_deg: Mapped[float | None]
     value: Mapped[float] = mapped_column(default=0.0)
     fixed: Mapped[bool] = mapped_column(default=False)  # kept from the previous plan
+    ra_deg: Mapped[float | None]  # the target's position at the start (a moving target's own)
+    dec_deg: Mapped[float | None]
+    strehl: Mapped[float | None]  # predicted AO Strehl ratio at the start
+    surface_efficiency: Mapped[float | None]  # dish Ruze efficiency at the start
 
     plan: Mapped[Plan] = relationship(back_populates="entries")
 

@@ -102,7 +102,8 @@ def entries_as_planned(plan: Plan | None) -> list[contract.PlanEntry]:
             airmass_start=e.airmass_start, airmass_end=e.airmass_end, predicted_fwhm_arcsec=e.fwhm_arcsec,
             predicted_pwv_mm=e.pwv_mm, transmission=e.transmission, merit=e.merit,
             moon_sep_deg=e.moon_sep_deg if e.moon_sep_deg is not None else float("nan"), value=e.value,
-            fixed=e.fixed,
+            fixed=e.fixed, ra_deg=e.ra_deg, dec_deg=e.dec_deg, strehl=e.strehl,
+            surface_efficiency=e.surface_efficiency,
         ))
     return out
 
@@ -150,6 +151,8 @@ def store_plan(s: Session, result: contract.PlanResult, *, night: date, reason: 
             fwhm_arcsec=float(e.predicted_fwhm_arcsec), pwv_mm=float(e.predicted_pwv_mm),
             transmission=float(e.transmission), merit=float(e.merit),
             moon_sep_deg=_finite_or_none(e.moon_sep_deg), value=float(e.value), fixed=bool(e.fixed),
+            ra_deg=_finite_or_none(e.ra_deg), dec_deg=_finite_or_none(e.dec_deg), strehl=_finite_or_none(e.strehl),
+            surface_efficiency=_finite_or_none(e.surface_efficiency),
         ))
     s.add(plan)
     s.flush()
@@ -209,15 +212,16 @@ def stored_plan(s: Session, plan: Plan) -> contract.StoredPlan:
         transition_s=e.transition_s, setup_s=e.setup_s, exposure_s=e.exposure_s, airmass_start=e.airmass_start,
         airmass_end=e.airmass_end, fwhm_arcsec=e.fwhm_arcsec, pwv_mm=e.pwv_mm, transmission=e.transmission,
         merit=e.merit, moon_sep_deg=e.moon_sep_deg, value=e.value, fixed=e.fixed,
+        ra_deg=e.ra_deg, dec_deg=e.dec_deg, strehl=e.strehl, surface_efficiency=e.surface_efficiency,
     ) for e in sorted(plan.entries, key=lambda x: x.start))
     ids = {e.request_id for e in entries} | {int(u["request_id"]) for u in summary.get("unscheduled", [])}
     requests: dict[int, contract.RequestLabel] = {}
     if ids:
         q = (select(Request.id, Program.code, Request.target, Request.ra_deg, Request.dec_deg, Request.band,
-                    Request.instrument).join(Request.program).where(Request.id.in_(ids)))
-        for rid, code, target, ra, dec, band, instrument in s.execute(q):
+                    Request.instrument, Request.body).join(Request.program).where(Request.id.in_(ids)))
+        for rid, code, target, ra, dec, band, instrument, body in s.execute(q):
             requests[rid] = contract.RequestLabel(id=rid, program=code, target=target, ra_deg=ra, dec_deg=dec,
-                                                  band=band, instrument=instrument)
+                                                  band=band, instrument=instrument, body=body)
     report = s.get(ConditionsReport, plan.conditions_report_id) if plan.conditions_report_id else None
     conditions = (contract.ConditionsLabel(id=report.id, source=report.source, issued_at=report.issued_at)
                   if report is not None else None)

@@ -16,6 +16,7 @@ from sqlalchemy.orm import Session, contains_eager
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso
+from scheduler.sky.bodies import parse_ephemeris_csv
 from scheduler.db.models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
 
 PROGRAM_CODE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
@@ -26,7 +27,7 @@ _SPEC_FIELDS = (
     "resolution_arcsec", "max_seeing_arcsec", "max_pwv_mm", "max_airmass", "min_moon_sep_deg",
     "max_moon_illum", "min_sky_mag", "max_cloud_mag", "not_before", "not_after", "period_epoch",
     "period_days", "phase_min", "phase_max", "priority", "too", "status", "completed_repeats",
-    "partial_exposure_s",
+    "partial_exposure_s", "guide_star_sep_arcsec", "body",
 )
 
 
@@ -80,6 +81,7 @@ def add_requests(s: Session, specs: Iterable[RequestSpec]) -> list[int]:
         if prog is None:
             raise InputError("program", f"unknown program {spec.program!r}")
         row = Request(program_id=prog.id, **{f: getattr(spec, f) for f in _SPEC_FIELDS})
+        row.ephemeris_csv = spec.ephemeris.to_csv() if spec.ephemeris is not None else None
         row.status = RequestStatus.QUEUED
         s.add(row)
         rows.append(row)
@@ -88,7 +90,23 @@ def add_requests(s: Session, specs: Iterable[RequestSpec]) -> list[int]:
 
 
 def to_spec(row: Request) -> RequestSpec:
-    return RequestSpec(program=row.program.code, id=row.id, **{f: getattr(row, f) for f in _SPEC_FIELDS})
+    table = parse_ephemeris_csv(row.ephemeris_csv, f"request {row.id} ephemeris") if row.ephemeris_csv else None
+    return RequestSpec(program=row.program.code, id=row.id, ephemeris=table,
+                       **{f: getattr(row, f) for f in _SPEC_FIELDS})
+
+
+def ephemeris_tables(s: Session, ids: Iterable[int]):
+    """The ephemeris tables of those requests that have one, by request id (for the chart)."""
+    ids = list(ids)
+    if not ids:
+        return {}
+    q = select(Request.id, Request.ephemeris_csv).where(Request.id.in_(ids), Request.ephemeris_csv.is_not(None))
+    return {rid: parse_ephemeris_csv(text, f"request {rid} ephemeris") for rid, text in s.execute(q)}
+
+
+def _table_rows(text: str | None) -> int | None:
+    """Rows of a stored ephemeris table (its header is the first line), None without one."""
+    return None if not text else max(text.count("\n") - 1, 0)
 
 
 def request_dict(row: Request) -> dict[str, Any]:
@@ -123,6 +141,9 @@ def request_dict(row: Request) -> dict[str, Any]:
         "too": row.too,
         "completed_repeats": row.completed_repeats,
         "partial_exposure_s": row.partial_exposure_s,
+        "guide_star_sep_arcsec": row.guide_star_sep_arcsec,
+        "body": row.body,
+        "ephemeris_rows": _table_rows(row.ephemeris_csv),
         "created_at": iso(row.created_at),
         "updated_at": iso(row.updated_at),
     }
@@ -218,6 +239,7 @@ def store_conditions(s: Session, samples: list, source: str, issued_at: datetime
         rep.samples.append(ConditionsSample(
             time=smp.time, seeing_arcsec=smp.seeing_arcsec, pwv_mm=smp.pwv_mm, cloud_mag=smp.cloud_mag,
             wind_ms=smp.wind_ms, humidity_pct=smp.humidity_pct, dome_open=smp.dome_open,
+            coherence_time_ms=smp.coherence_time_ms,
         ))
     s.add(rep)
     s.flush()

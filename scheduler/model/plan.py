@@ -40,6 +40,10 @@ class PlanEntry:
     band: str = ""
     instrument: str = ""
     fixed: bool = False  # kept from the previous plan (in progress or inside the freeze horizon)
+    ra_deg: float | None = None  # ICRS position at the start (a moving target's position then)
+    dec_deg: float | None = None
+    strehl: float | None = None  # predicted AO Strehl ratio at the start, where AO is modelled
+    surface_efficiency: float | None = None  # dish Ruze efficiency at the start, where it applies
 
 
 @dataclass(frozen=True)
@@ -97,6 +101,10 @@ class StoredEntry:
     moon_sep_deg: float | None
     value: float
     fixed: bool
+    ra_deg: float | None = None  # position at the start (moving targets: theirs then); None in older plans
+    dec_deg: float | None = None
+    strehl: float | None = None  # predicted AO Strehl ratio at the start
+    surface_efficiency: float | None = None  # dish Ruze efficiency at the start
 
 
 @dataclass(frozen=True)
@@ -110,6 +118,7 @@ class RequestLabel:
     dec_deg: float
     band: str
     instrument: str | None
+    body: str | None = None  # a moving target's body name (tables: see the request)
 
 
 @dataclass(frozen=True)

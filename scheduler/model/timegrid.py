@@ -1,14 +1,15 @@
 """Time and grid rules, one home for each: ISO-8601 in and out, UTC helpers, the grid step of a
-moment, and runs of True on a grid. Imports nothing of ours beyond errors."""
+moment, and runs of True on a grid. Imports nothing of ours beyond errors and input checks."""
 
 from __future__ import annotations
 
-from datetime import datetime, timezone
+from datetime import date, datetime, timezone
 from typing import Any
 
 import numpy as np
 
 from scheduler.model.errors import InputError
+from scheduler.model.untrusted import shown, type_name
 
 MIN_YEAR, MAX_YEAR = 1900, 2200  # the ephemerides (IERS, planetary series) are trusted in this span
 
@@ -34,25 +35,51 @@ def iso(t: datetime | None) -> str | None:
     return as_utc(t).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def parse_time(value: Any, field_name: str) -> datetime:
-    """ISO-8601; a time without a zone is taken as UTC. Returns an aware UTC datetime."""
+def parse_time(value: Any, field_name: str, *, require_zone: bool = False) -> datetime:
+    """ISO-8601 with a zone (``Z`` or an offset); returns an aware UTC datetime.
+
+    ``require_zone``: a time without a zone is refused (requests and conditions reports: a
+    local time read as UTC would be off by hours without anyone noticing). Otherwise it is
+    taken as UTC (command-line clocks such as ``--now``, where the help says UTC).
+    """
+    example = "e.g. 2026-12-05T03:30:00Z"
     if isinstance(value, datetime):
         t = value
+    elif not isinstance(value, str):
+        raise InputError(field_name, f"must be an ISO-8601 time as text, not {type_name(value)} ({example})")
     else:
-        s = str(value).strip()
+        s = value.strip()
         if s.endswith(("Z", "z")):
             s = s[:-1] + "+00:00"
         try:
             t = datetime.fromisoformat(s)
         except ValueError:
-            raise InputError(field_name, f"{value!r} is not an ISO-8601 time (e.g. 2026-12-05T03:30:00Z)") from None
+            raise InputError(field_name, f"{shown(value)} is not an ISO-8601 time ({example})") from None
+    if require_zone and t.tzinfo is None:
+        raise InputError(field_name, f"{shown(value)} has no time zone; add Z for UTC or an offset such as "
+                                     f"-03:00 ({example})")
     if t.tzinfo is not None and not (MIN_YEAR <= t.year <= MAX_YEAR):
         # checked before the conversion: years 1 and 9999 with an offset overflow astimezone
-        raise InputError(field_name, f"{value!r}: year must be from {MIN_YEAR} to {MAX_YEAR}")
+        raise InputError(field_name, f"{shown(value)}: year must be from {MIN_YEAR} to {MAX_YEAR}")
     t = as_utc(t)
     if not (MIN_YEAR <= t.year <= MAX_YEAR):
-        raise InputError(field_name, f"{value!r}: year must be from {MIN_YEAR} to {MAX_YEAR}")
+        raise InputError(field_name, f"{shown(value)}: year must be from {MIN_YEAR} to {MAX_YEAR}")
     return t
+
+
+def parse_date(value: Any, field_name: str = "night") -> date:
+    """A calendar date YYYY-MM-DD (a night is named by its local evening), within the years
+    the ephemerides are trusted for: a night near year 1 or 9999 would overflow the UTC span."""
+    if not isinstance(value, str):
+        raise InputError(field_name, f"must be a date YYYY-MM-DD as text, not {type_name(value)}")
+    try:
+        d = date.fromisoformat(value.strip())
+    except ValueError:
+        raise InputError(field_name, f"{shown(value)} is not a date YYYY-MM-DD "
+                                     "(the local evening the night begins)") from None
+    if not (MIN_YEAR <= d.year <= MAX_YEAR - 1):
+        raise InputError(field_name, f"{shown(value)}: year must be from {MIN_YEAR} to {MAX_YEAR - 1}")
+    return d
 
 
 def step_of(times_unix: np.ndarray, when: datetime | float) -> int:

@@ -29,7 +29,7 @@ from scheduler.model.config import ObservatoryConfig
 from scheduler.model.plan import PlanEntry, PlanResult
 from scheduler.model.request import ACTIVE_STATUSES, RequestSpec
 from scheduler.model.timegrid import utc
-from scheduler.sky.ephemeris import SkyGrid
+from scheduler.sky.ephemeris import SkyGrid, distinct_targets, sky_for
 from scheduler.sky.night import Night
 from scheduler.solve.bounds import LagrangianResult, lagrangian_bound, sequence_bound
 from scheduler.solve.budget import CpSatBudget, WorkBudget, check_effort
@@ -410,29 +410,15 @@ def _stats(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds, outcome:
 
 
 def target_rows_for(requests: Sequence[RequestSpec]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(ra, dec) of each distinct target, and each request's row among them."""
-    keys = [(float(r.ra_deg), float(r.dec_deg)) for r in requests]
-    uniq = list(dict.fromkeys(keys))
-    pos = {k: i for i, k in enumerate(uniq)}
-    ra = np.array([k[0] for k in uniq], dtype=np.float64)
-    dec = np.array([k[1] for k in uniq], dtype=np.float64)
-    return ra, dec, np.array([pos[k] for k in keys], dtype=np.int64)
+    """(ra, dec) of each distinct target, and each request's row among them (moving targets are
+    told apart by their track; their ra/dec here are only listed positions: use sky_for)."""
+    ra, dec, _, rows = distinct_targets(requests)
+    return ra, dec, rows
 
 
 def _sky_rows(sky, config: ObservatoryConfig, night: Night, requests: Sequence[RequestSpec]):
     """A SkyGrid covering the requests' targets and each request's row in it."""
-    ra, dec, rows = target_rows_for(requests)
-    if sky is None:
-        from scheduler.sky.ephemeris import compute_sky
-        return compute_sky(config.site, night, ra, dec), rows
-    if isinstance(sky, SkyGrid):
-        index = {(float(a), float(d)): i for i, (a, d) in enumerate(zip(sky.ra_deg, sky.dec_deg))}
-        try:
-            where = np.array([index[(float(a), float(d))] for a, d in zip(ra, dec)], dtype=np.int64)
-        except KeyError as e:
-            raise ValueError(f"sky grid has no row for target at (ra, dec) = {e.args[0]}") from None
-        return sky, where[rows]
-    return sky.get(config.site, night, ra, dec), rows  # a SkyCache
+    return sky_for(config.site, night, requests, sky)
 
 
 def entries_on_grid(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntry]:
@@ -486,6 +472,7 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
             moon_sep_deg=float(sky.moon_sep_deg[row, s]), value=ex.coef_at(s) / VALUE_SCALE,
             program=spec.program, target=spec.target, band=spec.band, instrument=inst.name,
             fixed=ex.fixed_start is not None,
+            **_entry_physics(sky, row, s, feas, r),
         )
         if prev is not None:
             pe, pspec, prow = prev
@@ -496,6 +483,16 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
         out.append(entry)
         prev = (entry, spec, row)
     return out
+
+
+def _entry_physics(sky: SkyGrid, row: int, s: int, feas, r: int) -> dict:
+    """Position at the entry's start (a moving target's own), predicted Strehl and dish efficiency."""
+    ra, dec = sky.position_deg(row, s)
+    strehl = None if feas.strehl is None else float(feas.strehl[r, s])
+    surface = None if feas.surface_eff is None else float(feas.surface_eff[r, s])
+    return dict(ra_deg=ra, dec_deg=dec,
+                strehl=strehl if strehl is not None and math.isfinite(strehl) else None,
+                surface_efficiency=surface if surface is not None and surface < 1.0 else None)
 
 
 def _drop_failing(entries, violations, spec_by_id, row_by_id, sky, cond, config, now_step):

@@ -17,7 +17,7 @@ from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
 from scheduler.db import plans, store
 from scheduler.db.session import Database
 from scheduler.model.request import OutcomeResult, RequestSpec
-from scheduler.sky.ephemeris import SkyCache
+from scheduler.sky.ephemeris import SkyCache, sky_for
 from scheduler.sky.night import Night, night_date_for, night_for
 from scheduler.model.plan import PlanEntry, PlanResult
 
@@ -45,7 +45,8 @@ class BuiltPlan:
 
 def sample_of(row) -> Sample:
     return Sample(time=row.time, seeing_arcsec=row.seeing_arcsec, pwv_mm=row.pwv_mm, cloud_mag=row.cloud_mag,
-                  wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open)
+                  wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open,
+                  coherence_time_ms=row.coherence_time_ms)
 
 
 class Planner:
@@ -135,7 +136,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
     Returns (version, violations). Used by `nightplan plan check` and the crash-safety tests.
     Requests are checked as they were when the plan was made (later outcomes are undone).
     """
-    from scheduler.planning.pipeline import entries_on_grid, target_rows_for
+    from scheduler.planning.pipeline import entries_on_grid
     from scheduler.solve.checker import check_plan
 
     planner = planner or Planner(config)
@@ -169,8 +170,7 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
     if len(entries) != len(stored):
         return version, [f"{len(stored) - len(entries)} entries fall outside the night of {night_date}"]
     spec_list = list(specs.values())
-    ra, dec, rows = target_rows_for(spec_list)
-    sky = planner.sky_cache.get(config.site, night, ra, dec)
+    sky, rows = sky_for(config.site, night, spec_list, planner.sky_cache)
     row_by_id = {sp.id: int(r) for sp, r in zip(spec_list, rows)}
     cond = planner.conditions(night, samples, report_id)
     now_step = night.step_of(planned_from)

@@ -27,7 +27,7 @@ import io
 import math
 from dataclasses import dataclass
 from datetime import datetime, timezone
-from typing import Any, Sequence
+from typing import Any, Mapping, Sequence
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -230,8 +230,26 @@ def measured_samples(s, night: Night) -> list:
 
 # --------------------------------------------------------------------------- the figure
 
+class _Target:
+    """What sky_for needs of an entry's target: its position, and its track if it moves."""
+
+    def __init__(self, ra: float, dec: float, track=None):
+        self.ra_deg, self.dec_deg, self.track = ra, dec, track
+
+
+def _entry_targets(entries: Sequence[dict[str, Any]], tracks: Mapping[int, Any] | None) -> list[_Target]:
+    """One target per entry: a moving target (the document's body, or a table in ``tracks`` by
+    request id) follows its track through the night; a fixed one sits at its position."""
+    out = []
+    for e in entries:
+        track = (tracks or {}).get(e["request_id"]) or e.get("body")
+        out.append(_Target(float(e["ra_deg"]), float(e["dec_deg"]), track))
+    return out
+
+
 def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, samples: Sequence, *,
-                 sky=None, now: datetime | None = None, style: str = "day", measured: Sequence = ()):
+                 sky=None, now: datetime | None = None, style: str = "day", measured: Sequence = (),
+                 tracks: Mapping[int, Any] | None = None):
     """The chart as a matplotlib Figure (Agg canvas attached, layout fixed)."""
     import matplotlib
 
@@ -243,16 +261,14 @@ def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch, Rectangle
 
-    from scheduler.sky.ephemeris import compute_sky
+    from scheduler.sky.ephemeris import sky_for
 
     st = style_of(style)
     tz = ZoneInfo(config.site.timezone)
     entries = sorted(doc["entries"], key=lambda e: e["start"])
-    keys = list(dict.fromkeys((e["ra_deg"], e["dec_deg"]) for e in entries if e["ra_deg"] is not None))
-    if sky is None:
-        sky = compute_sky(config.site, night, np.array([k[0] for k in keys], dtype=np.float64),
-                          np.array([k[1] for k in keys], dtype=np.float64))
-    row_of = {k: i for i, k in enumerate(keys)}
+    placed = [e for e in entries if e["ra_deg"] is not None]
+    sky, rows = sky_for(config.site, night, _entry_targets(placed, tracks), sky)
+    row_by_entry = {id(e): int(r) for e, r in zip(placed, rows)}
     times = [datetime.fromtimestamp(float(x), tz=timezone.utc) for x in night.times_unix]
     x = mdates.date2num(times)
     step_d = night.step_s / 86400.0
@@ -307,7 +323,7 @@ def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
     # Targets: one thin whole-night track per target, one thick segment per entry.
     alts: dict[int, np.ndarray] = {}
     for e in entries:
-        r = row_of.get((e["ra_deg"], e["dec_deg"]))
+        r = row_by_entry.get(id(e))
         if r is None or r in alts:
             continue
         alt = np.asarray(sky.alt_deg[r], dtype=np.float64)
@@ -315,7 +331,7 @@ def build_figure(doc: dict[str, Any], night: Night, config: ObservatoryConfig, s
         ax.plot(x, alts[r], color=colours.get(e["band"], st.text), lw=0.8, alpha=0.45, zorder=3)
     seg_top: dict[int, tuple[float, float]] = {}  # id(entry) -> (x middle, top altitude)
     for e in entries:
-        r = row_of.get((e["ra_deg"], e["dec_deg"]))
+        r = row_by_entry.get(id(e))
         if r is None:
             continue
         c = colours.get(e["band"], st.text)
@@ -525,11 +541,11 @@ def _label_entries(fig, ax, axt, entries, seg_top, block_artists, colours, st) -
 
 def render_chart(doc: dict[str, Any], night: Night, config: ObservatoryConfig, samples: Sequence, *,
                  sky=None, now: datetime | None = None, style: str = "day", fmt: str = "png",
-                 measured: Sequence = ()) -> bytes:
+                 measured: Sequence = (), tracks: Mapping[int, Any] | None = None) -> bytes:
     """The chart for plan document ``doc`` on ``night`` with the plan's ``samples``, as PNG, SVG or PDF bytes."""
     if fmt not in FORMATS.values():
         raise InputError("format", f"{fmt!r} is not a chart format; allowed: png, svg, pdf")
-    fig = build_figure(doc, night, config, samples, sky=sky, now=now, style=style, measured=measured)
+    fig = build_figure(doc, night, config, samples, sky=sky, now=now, style=style, measured=measured, tracks=tracks)
     buf = io.BytesIO()
     meta = {"png": None, "svg": {"Date": None}, "pdf": {"CreationDate": None, "ModDate": None}}[fmt]
     fig.savefig(buf, format=fmt, dpi=DPI, facecolor=fig.get_facecolor(), metadata=meta)

@@ -11,6 +11,11 @@ CONTRACT (other tools read the JSON; keep field names and meaning, add fields on
               transmission, merit, ...}]
     unscheduled [{request_id, reason, ...}]
 
+``ra_deg``/``dec_deg`` are the target's ICRS position at the entry's start: for a moving target
+(``body``, or an ephemeris table) its position then. ``strehl`` (predicted adaptive-optics
+Strehl ratio) and ``surface_efficiency`` (a dish's Ruze efficiency) are null where they do not
+apply.
+
 Times are ISO-8601 UTC (``start_local``/``end_local`` add the site's local time with its
 offset). One entry is one execution of the request's full exposure (or, for the next
 execution after a partial outcome, of the exposure still owed: ``exposure_s`` says which).
@@ -47,7 +52,7 @@ ENTRY_FIELDS = (
     "setup_s", "airmass_start", "airmass_end", "predicted_fwhm_arcsec", "predicted_pwv_mm", "transmission",
     "merit",
     "execution", "program", "instrument", "exposure_s", "transition_s", "moon_sep_deg", "value", "fixed",
-    "start_local", "end_local",
+    "start_local", "end_local", "strehl", "surface_efficiency", "body",
 )
 
 
@@ -84,8 +89,9 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
         entries.append({
             "request_id": e.request_id,
             "target": r.target if r else None,
-            "ra_deg": r.ra_deg if r else None,
-            "dec_deg": r.dec_deg if r else None,
+            # the position at the entry's start (a moving target's own then); older plans: the request's
+            "ra_deg": _r(e.ra_deg, 6) if e.ra_deg is not None else (r.ra_deg if r else None),
+            "dec_deg": _r(e.dec_deg, 6) if e.dec_deg is not None else (r.dec_deg if r else None),
             "band": r.band if r else None,
             "band_wavelength_um": band.wavelength_um if band else None,
             "start": iso(e.start),
@@ -106,6 +112,9 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
             "moon_sep_deg": _r(e.moon_sep_deg, 1),
             "value": _r(e.value, 4),
             "fixed": bool(e.fixed),
+            "strehl": _r(e.strehl, 3),  # predicted AO Strehl ratio where AO is modelled, else null
+            "surface_efficiency": _r(e.surface_efficiency, 3),  # dish Ruze efficiency where it applies
+            "body": r.body if r else None,
             "start_local": _local(e.start, tz),
             "end_local": _local(e.end, tz),
         })

@@ -15,7 +15,7 @@ from pathlib import Path
 from sqlalchemy import func, select
 from sqlalchemy.exc import SQLAlchemyError
 
-from scheduler.conditions.files import read_conditions_file
+from scheduler.conditions.files import FileChanged, SettleWatch, is_feed_candidate, take_feed_file
 from scheduler.model.config import ObservatoryConfig
 from scheduler.db import plans, store
 from scheduler.db.models import ConditionsReport, Outcome, Plan, Request, utcnow
@@ -26,12 +26,11 @@ from scheduler.planning.replan import carry_out_orders, orders_reason, replan, t
 from scheduler.model.request import ACTIVE_STATUSES
 from scheduler.service.clock import Clock
 from scheduler.service.log import EventLog
+from scheduler.textfile import file_state
 from scheduler.service.validity import Planned, conditions_changes, entry_failures, outranking_requests
 
-FEED_SUFFIXES = (".csv", ".json")
 DONE_DIR = "done"
 REJECTED_DIR = "rejected"
-SETTLE_S = 1.0  # a dropped file is read once it has not changed for this long
 RETRY_AFTER_FAILURE_S = 60.0  # after a failed automatic re-plan, wait before the next one
 MAX_LISTED = 5  # outcomes or requests named in one reason
 
@@ -55,6 +54,7 @@ class Jobs:
         self._checked_key: tuple | None = None
         self._unmovable: set[str] = set()
         self._auto_paused_until = 0.0
+        self._settle = SettleWatch(config.service.feed_settle_s)  # feed files seen, until they settle
 
     # ------------------------------------------------------------------ helpers
 
@@ -98,7 +98,12 @@ class Jobs:
     # ------------------------------------------------------------------ conditions feed
 
     def ingest_folder(self) -> FeedResult:
-        """Conditions files dropped in the watched folder: stored, then moved to done/ or rejected/."""
+        """Complete conditions files in the watched folder: stored, then moved to done/ or rejected/.
+
+        A file is taken once it has settled (conditions/files.py: size and mtime unchanged for
+        service.feed_settle_s); one still being written is left for a later poll, never stored
+        truncated nor rejected half-read.
+        """
         res = FeedResult()
         if self.watch is None:
             return res
@@ -107,21 +112,23 @@ class Jobs:
         except OSError as e:
             self.log.error("feed_unreadable", folder=self.watch, error=str(e))
             return res
+        self._settle.keep_only(set(names))
         for name in names:
             p = self.watch / name
-            if name.startswith(".") or p.suffix.lower() not in FEED_SUFFIXES or not p.is_file():
-                continue  # partial uploads (.part, .tmp, dot files) and sub-folders are left alone
+            if not is_feed_candidate(name) or not p.is_file() or name in self._unmovable:
+                continue  # partial uploads (.part, dot files), other files and sub-folders are left alone
+            state = file_state(p)
+            if state is None or not self._settle.settled(name, state, time.monotonic(), time.time()):
+                continue  # gone, or still changing (or seen for the first time)
             try:
-                st = p.stat()
-            except FileNotFoundError:
+                taken = take_feed_file(p, state)
+                rep_id = self._store_report(taken.report, p)
+            except FileChanged:
+                self._settle.forget(name)
+                self.log.info("feed_file_changing", file=name)
                 continue
-            if time.time() - st.st_mtime < SETTLE_S:
-                continue  # still being written
-            if name in self._unmovable:
-                continue
-            try:
-                rep_id, n, src = self._ingest_file(p, st.st_size)
             except InputError as e:
+                self._settle.forget(name)
                 dest = self._move(p, REJECTED_DIR)
                 if dest is None:
                     continue
@@ -135,16 +142,18 @@ class Jobs:
             except SQLAlchemyError as e:  # not the file's fault: leave it for the next poll
                 self.log.error("feed_store_failed", file=name, error=f"{type(e).__name__}: {str(e).splitlines()[0]}")
                 break
+            self._settle.forget(name)
             dest = self._move(p, DONE_DIR)  # None: stored, but left in place (logged; not read again)
-            self.log.info("conditions_stored", report=rep_id, samples=n, source=src, file=name, moved_to=dest)
+            rep = taken.report
+            self.log.info("conditions_stored", report=rep_id, samples=len(rep), source=rep.source or name,
+                          file=name, bytes=taken.size, sha256=taken.sha256[:16], first=rep[0].time,
+                          last=rep[-1].time, moved_to=dest)
             res.stored += 1
         return res
 
-    def _ingest_file(self, p: Path, size: int) -> tuple[int, int, str]:
-        report = read_conditions_file(p)
+    def _store_report(self, report, p: Path) -> int:
         src = report.source or p.name
-        rep_id = self.db.retrying(lambda s: store.store_conditions(s, list(report), src, report.issued).id)
-        return rep_id, len(report), src
+        return self.db.retrying(lambda s: store.store_conditions(s, list(report), src, report.issued).id)
 
     def _move(self, p: Path, sub: str) -> Path | None:
         """Move a processed file into done/ or rejected/. On failure (permissions, disk) the file

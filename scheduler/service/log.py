@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import logging
 import logging.handlers
+import os
 import sys
 from datetime import datetime, timezone
 from typing import Any
@@ -64,6 +65,23 @@ class EventLog:
         self._emit(logging.ERROR, event, kv)
 
 
+LOG_FILE_MODE = 0o600  # like the database: operators' names, reasons and file names stay private
+
+
+def create_log_file(path: str | os.PathLike) -> None:
+    """Make sure ``path`` can be appended to, creating it owner-only (0600) if it is new.
+    An existing file keeps its mode (an operator may have opened it to a group on purpose)."""
+    os.close(os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, LOG_FILE_MODE))
+
+
+class PrivateLogFile(logging.handlers.WatchedFileHandler):
+    """A log file reopened when logrotate moves it away, created 0600 each time it is new."""
+
+    def _open(self):
+        fd = os.open(self.baseFilename, os.O_WRONLY | os.O_APPEND | os.O_CREAT, LOG_FILE_MODE)
+        return os.fdopen(fd, "a", encoding=self.encoding, errors=self.errors)
+
+
 def setup_logging(log_file: str | None = None) -> EventLog:
     """Events to stdout, or to ``log_file`` instead (reopened if rotated away by logrotate)."""
     logger = logging.getLogger(LOGGER_NAME)
@@ -71,7 +89,7 @@ def setup_logging(log_file: str | None = None) -> EventLog:
     logger.propagate = False
     logger.setLevel(logging.INFO)
     if log_file:
-        handler: logging.Handler = logging.handlers.WatchedFileHandler(log_file, encoding="utf-8")
+        handler: logging.Handler = PrivateLogFile(log_file, encoding="utf-8")
     else:
         handler = logging.StreamHandler(sys.stdout)
     handler.setFormatter(EventFormatter())

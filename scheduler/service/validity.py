@@ -29,7 +29,7 @@ from scheduler.model.config import ObservatoryConfig
 from scheduler.constraints.catalog import STEP_BITS, STEP_CONSTRAINTS
 from scheduler.constraints.feasibility import Feasibility, evaluate, static_layer
 from scheduler.model.request import RequestSpec
-from scheduler.sky.ephemeris import SkyCache
+from scheduler.sky.ephemeris import SkyCache, sky_for
 from scheduler.sky.night import Night
 from scheduler.solve.objective import science_base_value
 
@@ -49,10 +49,7 @@ def hhmm(t: datetime) -> str:
 
 def feasibility_for(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, specs: Sequence[RequestSpec],
                     cond: ConditionsGrid) -> Feasibility:
-    ra = np.array([s.ra_deg for s in specs], dtype=np.float64)
-    dec = np.array([s.dec_deg for s in specs], dtype=np.float64)
-    sky = sky_cache.get(config.site, night, ra, dec)
-    rows = np.arange(len(specs), dtype=np.int64)
+    sky, rows = sky_for(config.site, night, list(specs), sky_cache)
     return evaluate(list(specs), rows, sky, cond, config, static_layer(list(specs), rows, sky, config))
 
 

@@ -15,19 +15,30 @@ How (one vectorised pass, no Python loop over time):
 3. All targets x all times: one matrix product. Accuracy against a direct astropy
    ICRS -> AltAz transform is checked in tests/test_sky_ephemeris.py (about an arcsecond).
 Altitudes are true (unrefracted); airmass is Kasten & Young 1989 on the true altitude.
+
+Moving targets (planets, PI ephemeris tables; scheduler/sky/bodies.py): a target row may
+carry a *track*. Its geocentric astrometric direction is computed at every grid time (one
+vectorised call per target), all of them go through one ICRS -> topocentric CIRS transform,
+then the same per-time rotation. Parallax, where the distance is known: in the horizon frame
+the site's geocentric position is a constant vector (the frame turns with the Earth), so the
+topocentric vector is rot(t) @ (delta * u(t)) - site. Times a table does not cover have nan
+alt/az/separations and infinite airmass; ``covered`` says which. ``ra_deg``/``dec_deg`` of a
+moving row are its position at the grid's middle; ``position_deg`` gives it at any step.
 """
 
 from __future__ import annotations
 
 import threading
 from collections import OrderedDict
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Sequence
 
 import numpy as np
 
 from scheduler.model.config import Site
 from scheduler.model.errors import InputError
 from scheduler.sky.airmass import kasten_young_1989
+from scheduler.sky.bodies import AU_KM, Track, radec_deg, track_key, track_positions
 from scheduler.sky.night import Night, earth_location
 from scheduler.sky.offline import configure_offline
 
@@ -48,10 +59,42 @@ class SkyGrid:
     moon_illum: np.ndarray  # [n_t] illuminated fraction 0..1
     moon_phase_angle_deg: np.ndarray  # [n_t] 0 = full, 180 = new
     moon_sep_deg: np.ndarray  # [n_tg, n_t]
+    # Moving targets: their rows, and their astrometric ICRS position at every grid time.
+    moving_rows: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))  # [n_mv]
+    track_ra_deg: np.ndarray | None = None  # [n_mv, n_t] float64, nan where not covered
+    track_dec_deg: np.ndarray | None = None  # [n_mv, n_t]
+    track_covered: np.ndarray | None = None  # [n_mv, n_t] bool: the track gives a position
+    track_keys: tuple = ()  # [n_mv] bodies.track_key of each moving row
 
     @property
     def n_targets(self) -> int:
         return int(self.ra_deg.shape[0])
+
+    def _moving_index(self, row: int) -> int | None:
+        hit = np.flatnonzero(self.moving_rows == row)
+        return int(hit[0]) if hit.size else None
+
+    def is_moving(self, row: int) -> bool:
+        return self._moving_index(row) is not None
+
+    def position_deg(self, row: int, step: int) -> tuple[float, float]:
+        """(RA, Dec) ICRS of the target in ``row`` at grid step ``step`` (fixed targets: always the same)."""
+        k = self._moving_index(row)
+        if k is None:
+            return float(self.ra_deg[row]), float(self.dec_deg[row])
+        j = min(max(int(step), 0), self.night.n_times - 1)
+        return float(self.track_ra_deg[k, j]), float(self.track_dec_deg[k, j])
+
+    def covered(self, rows) -> np.ndarray:
+        """[len(rows), n_t] bool: a position is known (always for fixed targets)."""
+        rows = np.asarray(rows, dtype=np.int64)
+        out = np.ones((rows.shape[0], self.night.n_times), dtype=bool)
+        if self.moving_rows.size:
+            for i, r in enumerate(rows.tolist()):  # loop over requests, not time
+                k = self._moving_index(r)
+                if k is not None:
+                    out[i] = self.track_covered[k]
+        return out
 
 
 # --------------------------------------------------------------------------- per night
@@ -69,6 +112,19 @@ class _NightFrame:
     moon_vec: np.ndarray
     moon_illum: np.ndarray
     moon_phase_angle_deg: np.ndarray
+    site_au: np.ndarray  # [3] the site's geocentric position in the horizon frame (north, east, up), AU
+
+
+def _site_horizon_au(loc) -> np.ndarray:
+    """Geocentric position of the site in its own (north, east, up) axes, AU: constant all night."""
+    from astropy import units as u
+
+    p = np.array([loc.x.to_value(u.km), loc.y.to_value(u.km), loc.z.to_value(u.km)]) / AU_KM
+    lon, lat = loc.lon.radian, loc.lat.radian  # geodetic: the AltAz frame's vertical
+    north = np.array([-np.sin(lat) * np.cos(lon), -np.sin(lat) * np.sin(lon), np.cos(lat)])
+    east = np.array([-np.sin(lon), np.cos(lon), 0.0])
+    up = np.array([np.cos(lat) * np.cos(lon), np.cos(lat) * np.sin(lon), np.sin(lat)])
+    return np.array([p @ north, p @ east, p @ up])
 
 
 def _unit(v: np.ndarray) -> np.ndarray:
@@ -123,6 +179,7 @@ def _night_frame(site: Site, night: Night) -> _NightFrame:
         moon_vec=moon.represent_as(UnitSphericalRepresentation).to_cartesian().xyz.value.T,
         moon_illum=0.5 * (1.0 + np.cos(np.radians(phase))),
         moon_phase_angle_deg=phase,
+        site_au=_site_horizon_au(loc),
     )
 
 
@@ -151,21 +208,68 @@ def _sep_deg(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.degrees(np.arccos(np.clip(np.einsum("knj,nj->kn", a, b), -1.0, 1.0)))
 
 
+def _rows_from_horizon(v: np.ndarray, frame: _NightFrame, out: dict, s: slice) -> None:
+    """Fill out[*][s] from horizon-frame vectors v [k, n_t, 3] (any length; nan allowed)."""
+    x, y, z = v[..., 0], v[..., 1], v[..., 2]
+    alt = np.degrees(np.arctan2(z, np.hypot(x, y)))
+    out["alt"][s] = alt
+    out["az"][s] = np.degrees(np.arctan2(y, x)) % 360.0
+    with np.errstate(invalid="ignore"):
+        out["airmass"][s] = kasten_young_1989(alt)
+    v = v / np.linalg.norm(v, axis=-1, keepdims=True)
+    out["sun_sep"][s] = _sep_deg(v, frame.sun_vec)
+    out["moon_sep"][s] = _sep_deg(v, frame.moon_vec)
+
+
+def _empty_rows(n_tg: int, n_t: int) -> dict:
+    return {k: np.empty((n_tg, n_t), dtype=np.float32) for k in ("alt", "az", "airmass", "sun_sep", "moon_sep")}
+
+
 def _target_rows(frame: _NightFrame, v_cirs: np.ndarray) -> _TargetRows:
     n_tg, n_t = v_cirs.shape[0], frame.rot.shape[0]
-    out = {k: np.empty((n_tg, n_t), dtype=np.float32) for k in ("alt", "az", "airmass", "sun_sep", "moon_sep")}
+    out = _empty_rows(n_tg, n_t)
     for i in range(0, n_tg, _CHUNK):  # chunks over targets bound memory; every time at once
         v = np.einsum("nij,kj->kni", frame.rot, v_cirs[i:i + _CHUNK])  # [k, n_t, 3]
-        x, y, z = v[..., 0], v[..., 1], v[..., 2]
-        alt = np.degrees(np.arctan2(z, np.hypot(x, y)))
-        s = slice(i, i + _CHUNK)
-        out["alt"][s] = alt
-        out["az"][s] = np.degrees(np.arctan2(y, x)) % 360.0
-        out["airmass"][s] = kasten_young_1989(alt)
-        v /= np.linalg.norm(v, axis=-1, keepdims=True)
-        out["sun_sep"][s] = _sep_deg(v, frame.sun_vec)
-        out["moon_sep"][s] = _sep_deg(v, frame.moon_vec)
+        _rows_from_horizon(v, frame, out, slice(i, i + _CHUNK))
     return _TargetRows(**out)
+
+
+@dataclass(frozen=True)
+class _TrackRows:
+    rows: _TargetRows
+    ra_deg: np.ndarray  # [k, n_t] astrometric ICRS position at each grid time
+    dec_deg: np.ndarray
+    covered: np.ndarray  # [k, n_t] bool
+
+
+def _track_rows(frame: _NightFrame, tracks: Sequence[Track], times_unix: np.ndarray) -> _TrackRows:
+    """Rows of moving targets: position per grid time, one ICRS -> CIRS transform for all of them."""
+    from astropy import units as u
+    from astropy.coordinates import CIRS, CartesianRepresentation, SkyCoord
+    from astropy.time import Time
+
+    n_t = times_unix.shape[0]
+    k = len(tracks)
+    vec = np.empty((k, n_t, 3))
+    dist = np.empty((k, n_t))
+    covered = np.empty((k, n_t), dtype=bool)
+    for i, tr in enumerate(tracks):  # one vectorised call per target over all times
+        vec[i], dist[i], covered[i] = track_positions(tr, times_unix)
+    ra, dec = radec_deg(vec)
+    safe = np.where(covered[..., None], vec, np.array([1.0, 0.0, 0.0]))  # dummy where unknown; masked below
+    c = SkyCoord(CartesianRepresentation(safe.reshape(-1, 3).T * u.one), frame="icrs")
+    ci = c.transform_to(CIRS(obstime=Time(frame.t_mid_unix, format="unix", scale="utc"), location=frame.location))
+    v_cirs = ci.represent_as("unitspherical").to_cartesian().xyz.value.T.reshape(k, n_t, 3)
+    v = np.einsum("nij,knj->kni", frame.rot, v_cirs)  # [k, n_t, 3] horizon-frame directions
+    near = np.isfinite(dist) & covered
+    # parallax: topocentric = geocentric - site, in the horizon frame (distance in AU)
+    v = np.where(near[..., None], v * np.where(near, dist, 1.0)[..., None] - frame.site_au, v)
+    v[~covered] = np.nan
+    out = _empty_rows(k, n_t)
+    with np.errstate(invalid="ignore"):
+        _rows_from_horizon(v, frame, out, slice(0, k))
+    out["airmass"][~covered] = np.inf
+    return _TrackRows(_TargetRows(**out), ra, dec, covered)
 
 
 def _check_coords(ra_deg, dec_deg) -> tuple[np.ndarray, np.ndarray]:
@@ -180,22 +284,109 @@ def _check_coords(ra_deg, dec_deg) -> tuple[np.ndarray, np.ndarray]:
     return ra, dec
 
 
-def _grid(night: Night, frame: _NightFrame, ra, dec, rows: _TargetRows) -> SkyGrid:
+def _grid(night: Night, frame: _NightFrame, ra, dec, rows: _TargetRows, moving_rows=None,
+          track_ra=None, track_dec=None, track_cov=None, track_keys=None) -> SkyGrid:
+    extra = {}
+    if moving_rows is not None and len(moving_rows):
+        extra = dict(moving_rows=np.asarray(moving_rows, dtype=np.int64), track_ra_deg=track_ra,
+                     track_dec_deg=track_dec, track_covered=track_cov, track_keys=tuple(track_keys or ()))
     return SkyGrid(
         night=night, ra_deg=ra, dec_deg=dec,
         alt_deg=rows.alt, az_deg=rows.az, airmass=rows.airmass,
         sun_alt_deg=frame.sun_alt_deg, sun_sep_deg=rows.sun_sep,
         moon_alt_deg=frame.moon_alt_deg, moon_illum=frame.moon_illum,
-        moon_phase_angle_deg=frame.moon_phase_angle_deg, moon_sep_deg=rows.moon_sep,
+        moon_phase_angle_deg=frame.moon_phase_angle_deg, moon_sep_deg=rows.moon_sep, **extra,
     )
 
 
-def compute_sky(site: Site, night: Night, ra_deg, dec_deg) -> SkyGrid:
-    """Alt/az/airmass and Sun/Moon geometry of all targets (ICRS degrees) on the night's grid."""
+def _check_tracks(tracks, n: int) -> list:
+    if tracks is None:
+        return [None] * n
+    tracks = list(tracks)
+    if len(tracks) != n:
+        raise InputError("tracks", f"{len(tracks)} tracks for {n} targets; give one per target (None for fixed)")
+    for tr in tracks:
+        if tr is not None:
+            track_key(tr)  # validates body names
+    return tracks
+
+
+def _mid_position(tr: _TrackRows, n_t: int, ra: np.ndarray, dec: np.ndarray, where: list[int]) -> None:
+    """Nominal ra/dec of moving rows: their position at the grid's middle (or nearest covered step)."""
+    for i, row in enumerate(where):
+        cov = np.flatnonzero(tr.covered[i])
+        if cov.size:
+            j = int(cov[np.argmin(np.abs(cov - n_t // 2))])
+            ra[row], dec[row] = tr.ra_deg[i, j], tr.dec_deg[i, j]
+
+
+def compute_sky(site: Site, night: Night, ra_deg, dec_deg, tracks: Sequence[Track | None] | None = None) -> SkyGrid:
+    """Alt/az/airmass and Sun/Moon geometry of all targets (ICRS degrees) on the night's grid.
+
+    tracks: optional, one per target: None for a fixed ICRS target, else a body name or an
+    EphemerisTable (its ra/dec given here are ignored and replaced by the mid-grid position).
+    """
     ra, dec = _check_coords(ra_deg, dec_deg)
+    tracks = _check_tracks(tracks, ra.size)
     frame = _night_frame(site, night)
+    mv = [i for i, t in enumerate(tracks) if t is not None]
     rows = _target_rows(frame, _targets_cirs(ra, dec, frame.t_mid_unix, frame.location) if ra.size else np.empty((0, 3)))
-    return _grid(night, frame, ra, dec, rows)
+    if not mv:
+        return _grid(night, frame, ra, dec, rows)
+    tr = _track_rows(frame, [tracks[i] for i in mv], night.times_unix)
+    for k in rows.__dataclass_fields__:
+        getattr(rows, k)[mv] = getattr(tr.rows, k)
+    ra, dec = ra.copy(), dec.copy()
+    _mid_position(tr, night.n_times, ra, dec, mv)
+    return _grid(night, frame, ra, dec, rows, mv, tr.ra_deg, tr.dec_deg, tr.covered,
+                 [track_key(tracks[i]) for i in mv])
+
+
+# --------------------------------------------------------------------------- targets of requests
+
+def target_key(t) -> tuple:
+    """Identity of a request's target: its track's key if it moves, else (ra, dec).
+
+    ``t`` is anything with ``ra_deg``, ``dec_deg`` and optionally ``track`` (a RequestSpec).
+    """
+    track = getattr(t, "track", None)
+    return track_key(track) if track is not None else (float(t.ra_deg), float(t.dec_deg))
+
+
+def distinct_targets(targets: Sequence) -> tuple[np.ndarray, np.ndarray, list, np.ndarray]:
+    """(ra, dec, tracks) of each distinct target, and each item's row among them."""
+    keys = [target_key(t) for t in targets]
+    first: dict[tuple, int] = {}
+    for i, k in enumerate(keys):
+        first.setdefault(k, i)
+    pos = {k: j for j, k in enumerate(first)}
+    reps = [targets[i] for i in first.values()]
+    ra = np.array([float(t.ra_deg) for t in reps], dtype=np.float64)
+    dec = np.array([float(t.dec_deg) for t in reps], dtype=np.float64)
+    tracks = [getattr(t, "track", None) for t in reps]
+    return ra, dec, tracks, np.array([pos[k] for k in keys], dtype=np.int64)
+
+
+def sky_for(site: Site, night: Night, targets: Sequence, sky=None) -> tuple[SkyGrid, np.ndarray]:
+    """The one way to get the sky of a list of requests: (a SkyGrid holding every target, each
+    request's row in it). ``sky``: None (computed here), a SkyGrid that already holds the targets,
+    or a SkyCache. Moving targets get their position at every grid time."""
+    ra, dec, tracks, rows = distinct_targets(targets)
+    if sky is None:
+        return compute_sky(site, night, ra, dec, tracks), rows
+    if isinstance(sky, SkyGrid):
+        index: dict[tuple, int] = {}
+        for i, (a, d) in enumerate(zip(sky.ra_deg.tolist(), sky.dec_deg.tolist())):
+            index.setdefault((float(a), float(d)), i)
+        for r, k in zip(sky.moving_rows.tolist(), sky.track_keys):
+            index[k] = int(r)
+        keys = [(float(a), float(d)) if tr is None else track_key(tr) for a, d, tr in zip(ra, dec, tracks)]
+        try:
+            where = np.array([index[k] for k in keys], dtype=np.int64)
+        except KeyError as e:
+            raise ValueError(f"sky grid has no row for target {e.args[0]}") from None
+        return sky, where[rows]
+    return sky.get(site, night, ra, dec, tracks), rows  # a SkyCache
 
 
 # --------------------------------------------------------------------------- cache
@@ -203,16 +394,20 @@ def compute_sky(site: Site, night: Night, ra_deg, dec_deg) -> SkyGrid:
 class _NightEntry:
     def __init__(self, frame: _NightFrame, n_t: int):
         self.frame = frame
-        self.index: dict[tuple[float, float], int] = {}  # (ra, dec) -> row in the stores
+        self.index: dict[tuple, int] = {}  # (ra, dec) or a track key -> row in the stores
         self.n = 0
-        self.store = {k: np.empty((0, n_t), dtype=np.float32) for k in ("alt", "az", "airmass", "sun_sep", "moon_sep")}
+        self.store = _empty_rows(0, n_t)
+        self.tracks: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}  # row -> (ra, dec, covered)
 
-    def add(self, ra: np.ndarray, dec: np.ndarray, rows: _TargetRows) -> None:
+    def add(self, keys: list[tuple], rows: _TargetRows) -> list[int]:
         for k in self.store:  # amortised growth: re-plans add a handful of targets at a time
             self.store[k] = np.concatenate([self.store[k], getattr(rows, k)])
-        for r, d in zip(ra.tolist(), dec.tolist()):
-            self.index[(r, d)] = self.n
+        where = []
+        for key in keys:
+            self.index[key] = self.n
+            where.append(self.n)
             self.n += 1
+        return where
 
 
 class SkyCache:
@@ -220,6 +415,7 @@ class SkyCache:
 
     get() computes the night's Sun/Moon/rotation once and each target's rows once; asking again
     with a few more targets computes only those. Keeps the ``max_nights`` most recent nights.
+    Moving targets (``tracks``) are keyed by body name or table content, fixed ones by (ra, dec).
     Thread-safe (the service may plan from a worker thread).
     """
 
@@ -235,8 +431,9 @@ class SkyCache:
         t = night.times_unix
         return (site, night.date, night.step_s, float(t[0]) if t.size else None, int(t.size))
 
-    def get(self, site: Site, night: Night, ra_deg, dec_deg) -> SkyGrid:
+    def get(self, site: Site, night: Night, ra_deg, dec_deg, tracks: Sequence[Track | None] | None = None) -> SkyGrid:
         ra, dec = _check_coords(ra_deg, dec_deg)
+        tracks = _check_tracks(tracks, ra.size)
         key = self._key(site, night)
         with self._lock:
             entry = self._nights.get(key)
@@ -247,17 +444,34 @@ class SkyCache:
                 while len(self._nights) > self.max_nights:
                     self._nights.popitem(last=False)
             self._nights.move_to_end(key)
-            keys = list(zip(ra.tolist(), dec.tolist()))
-            new = [i for i, k in enumerate(dict.fromkeys(keys)) if k not in entry.index]
-            if new:
-                uniq = list(dict.fromkeys(keys))
-                nra = np.array([uniq[i][0] for i in new])
-                ndec = np.array([uniq[i][1] for i in new])
-                entry.add(nra, ndec, _target_rows(entry.frame, _targets_cirs(nra, ndec, entry.frame.t_mid_unix, entry.frame.location)))
-                self.targets_computed += len(new)
+            keys = [(r, d) if tr is None else track_key(tr) for r, d, tr in zip(ra.tolist(), dec.tolist(), tracks)]
+            first = {}
+            for i, k in enumerate(keys):
+                if k not in entry.index and k not in first:
+                    first[k] = i
+            fixed = [i for k, i in first.items() if tracks[i] is None]
+            moving = [i for k, i in first.items() if tracks[i] is not None]
+            if fixed:
+                rows = _target_rows(entry.frame, _targets_cirs(ra[fixed], dec[fixed], entry.frame.t_mid_unix,
+                                                              entry.frame.location))
+                entry.add([keys[i] for i in fixed], rows)
+            if moving:
+                tr = _track_rows(entry.frame, [tracks[i] for i in moving], night.times_unix)
+                where = entry.add([keys[i] for i in moving], tr.rows)
+                for j, w in enumerate(where):
+                    entry.tracks[w] = (tr.ra_deg[j], tr.dec_deg[j], tr.covered[j])
+            self.targets_computed += len(first)
             idx = np.fromiter((entry.index[k] for k in keys), dtype=np.intp, count=len(keys))
             rows = _TargetRows(**{k: v[idx] for k, v in entry.store.items()})
-            return _grid(night, entry.frame, ra, dec, rows)
+            mv = [i for i, j in enumerate(idx.tolist()) if j in entry.tracks]
+            if not mv:
+                return _grid(night, entry.frame, ra, dec, rows)
+            tra = np.stack([entry.tracks[int(idx[i])][0] for i in mv])
+            trd = np.stack([entry.tracks[int(idx[i])][1] for i in mv])
+            trc = np.stack([entry.tracks[int(idx[i])][2] for i in mv])
+            ra, dec = ra.copy(), dec.copy()
+            _mid_position(_TrackRows(rows, tra, trd, trc), night.n_times, ra, dec, mv)
+            return _grid(night, entry.frame, ra, dec, rows, mv, tra, trd, trc, [keys[i] for i in mv])
 
     def clear(self) -> None:
         with self._lock:

@@ -59,27 +59,103 @@ def ao_active(seeing500_arcsec, airmass, band: Band, instrument: Instrument):
     return np.broadcast_to(np.asarray(los) < limit, shape).copy()[()]
 
 
-def delivered_fwhm_arcsec(seeing500_arcsec, airmass, band: Band, instrument: Instrument, aperture_m: float):
+def delivered_fwhm_arcsec(seeing500_arcsec, airmass, band: Band, instrument: Instrument, aperture_m: float, *,
+                          turbulence_height_m: float | None = None, guide_sep_arcsec=0.0,
+                          coherence_time_500_ms=None, strehl=None):
     """Delivered image FWHM in the band (arcsec).
 
     Quadrature sum of seeing, diffraction (Airy FWHM 1.03 lambda/D) and the instrument's own
     blur (common practice). No seeing term where band.seeing_limited is False (radio/submm: the
-    beam is the diffraction pattern). Where adaptive optics corrects (see ao_active), the seeing
-    term is dropped so the core sits at the diffraction FWHM (common practice: the real Strehl
-    ratio depends on guide star and seeing; the core width is what the resolution test needs).
+    beam is the diffraction pattern).
+
+    Adaptive optics, two models:
+    - from the turbulence (instrument.ao_actuator_pitch_m set; scheduler/sky/adaptive_optics.py):
+      where the predicted Strehl ratio reaches instrument.ao_strehl_min the image is the
+      corrected core (no seeing term), otherwise the seeing halo. Needs turbulence_height_m;
+      guide_sep_arcsec and coherence_time_500_ms broadcast like the seeing. ``strehl`` may pass
+      a Strehl array already computed for the same arguments.
+    - the fallback switch (ao_seeing_limit_arcsec, see ao_active): no seeing term where active.
     inf where airmass is inf (below the horizon) and the seeing term applies.
     """
+    from scheduler.sky import adaptive_optics as ao
+
     diff = diffraction_fwhm_arcsec(band.wavelength_um, aperture_m)
     inst = instrument.fwhm_arcsec
     s = np.asarray(seeing500_arcsec, dtype=np.float64)
     x = np.asarray(airmass, dtype=np.float64)
-    shape = np.broadcast(s, x).shape
+    shape = np.broadcast(s, x, np.asarray(guide_sep_arcsec)).shape
     if not band.seeing_limited:
         return np.full(shape, float(np.hypot(diff, inst)))[()]
     with np.errstate(invalid="ignore", over="ignore"):
         see = seeing_fwhm_arcsec(s, band.wavelength_um, x)
-    see = np.where(ao_active(s, x, band, instrument), 0.0, see)
-    return np.sqrt(see**2 + diff**2 + inst**2)[()]
+    if ao.uses_turbulence_model(band, instrument):
+        if strehl is None:
+            strehl = ao.strehl(s, x, band, instrument, turbulence_height_m, guide_sep_arcsec, coherence_time_500_ms)
+        corrected = np.asarray(strehl) >= instrument.ao_strehl_min
+    else:
+        corrected = ao_active(s, x, band, instrument)
+    see = np.where(corrected, 0.0, see)
+    return np.broadcast_to(np.sqrt(see**2 + diff**2 + inst**2), shape).copy()[()]
+
+
+def core_fwhm_arcsec(band: Band, instrument: Instrument, aperture_m: float) -> float:
+    """The sharpest image: diffraction core (1.03 lambda/D) and instrument blur in quadrature."""
+    return float(np.hypot(diffraction_fwhm_arcsec(band.wavelength_um, aperture_m), instrument.fwhm_arcsec))
+
+
+def seeing_limited_fwhm_arcsec(seeing500_arcsec, airmass, band: Band, instrument: Instrument, aperture_m: float):
+    """The image with no adaptive-optics correction (the seeing halo): seeing, diffraction and
+    instrument in quadrature; the diffraction pattern alone for bands not seeing-limited."""
+    diff = diffraction_fwhm_arcsec(band.wavelength_um, aperture_m)
+    s = np.asarray(seeing500_arcsec, dtype=np.float64)
+    x = np.asarray(airmass, dtype=np.float64)
+    shape = np.broadcast(s, x).shape
+    if not band.seeing_limited:
+        return np.full(shape, float(np.hypot(diff, instrument.fwhm_arcsec)))[()]
+    with np.errstate(invalid="ignore", over="ignore"):
+        see = seeing_fwhm_arcsec(s, band.wavelength_um, x)
+    return np.sqrt(see**2 + diff**2 + instrument.fwhm_arcsec**2)[()]
+
+
+# --------------------------------------------------------------------------- dish surface
+
+def ruze_efficiency(surface_rms_um, wavelength_um):
+    """Aperture efficiency factor of a reflector with rms surface error sigma: exp(-(4 pi sigma / lambda)^2).
+
+    Ruze (1966), Proc. IEEE 54, 633. sigma = lambda/16 gives exp(-(pi/4)^2) = 0.54.
+    """
+    r = 4.0 * np.pi * np.asarray(surface_rms_um, dtype=np.float64) / np.asarray(wavelength_um, dtype=np.float64)
+    return np.exp(-(r**2))[()]
+
+
+SUNLIT_SUN_ALT_DEG = 0.0  # the dish counts as sunlit while the Sun's centre is above the horizon (common practice)
+
+
+def surface_applies(band: Band, telescope) -> bool:
+    """Ruze's relation applies to bands that are not seeing-limited, on a telescope with a surface error."""
+    return (not band.seeing_limited) and telescope.surface_rms_um is not None
+
+
+def surface_rms_um(telescope, sun_alt_deg):
+    """The dish's rms surface error at each Sun altitude: the daytime value while sunlit."""
+    night = telescope.surface_rms_um
+    day = telescope.surface_rms_day_um if telescope.surface_rms_day_um is not None else night
+    return np.where(np.asarray(sun_alt_deg, dtype=np.float64) > SUNLIT_SUN_ALT_DEG, day, night)[()]
+
+
+def surface_efficiency(band: Band, telescope, sun_alt_deg):
+    """Ruze efficiency of the dish in the band at each Sun altitude; 1 where it does not apply."""
+    sun = np.asarray(sun_alt_deg, dtype=np.float64)
+    if not surface_applies(band, telescope):
+        return np.ones(sun.shape)[()]
+    return ruze_efficiency(surface_rms_um(telescope, sun), band.wavelength_um)
+
+
+def night_surface_efficiency(band: Band, telescope) -> float:
+    """The dish's best (night-time) efficiency in the band; 1.0 where Ruze does not apply."""
+    if not surface_applies(band, telescope):
+        return 1.0
+    return float(ruze_efficiency(telescope.surface_rms_um, band.wavelength_um))
 
 
 # --------------------------------------------------------------------------- transmission

@@ -96,11 +96,31 @@ def _entry_constraints(e: PlanEntry, spec: RequestSpec, row: int, sky: SkyGrid, 
             out.append(_steps_failing("sky too bright", sky_mag < spec.min_sky_mag, steps))
     if spec.max_seeing_arcsec is not None:
         out.append(_steps_failing("seeing over the limit", seeing > spec.max_seeing_arcsec, steps))
+    strehl = _ao_strehl(spec, band, inst, config, seeing, x, cond, steps)
     if spec.resolution_arcsec is not None:
         with np.errstate(invalid="ignore", over="ignore"):
-            fwhm = np.asarray(physics.delivered_fwhm_arcsec(seeing, x, band, inst, tel.aperture_m), dtype=np.float64)
+            fwhm = np.asarray(physics.delivered_fwhm_arcsec(seeing, x, band, inst, tel.aperture_m, strehl=strehl),
+                              dtype=np.float64)
         out.append(_steps_failing("delivered FWHM over the resolution needed", ~(fwhm <= spec.resolution_arcsec),
                                   steps))
+        if strehl is not None:
+            # the core would meet the resolution, the uncorrected image would not, and too little
+            # light is in the core
+            diff = 1.03 * band.wavelength_um * 1e-6 / tel.aperture_m * _RAD_ARCSEC
+            core = math.hypot(diff, inst.fwhm_arcsec)
+            with np.errstate(invalid="ignore", over="ignore"):
+                halo = np.sqrt(np.asarray(physics.seeing_fwhm_arcsec(seeing, band.wavelength_um, x)) ** 2
+                               + diff**2 + inst.fwhm_arcsec**2)
+                lost = (core <= spec.resolution_arcsec) & (halo > spec.resolution_arcsec) & (strehl < inst.ao_strehl_min)
+            out.append(_steps_failing(f"AO Strehl under the instrument's {inst.ao_strehl_min:g}", lost, steps))
+    if not band.seeing_limited and tel.surface_rms_um is not None:
+        sigma = np.where(sun_alt > 0.0, tel.surface_rms_day_um if tel.surface_rms_day_um is not None
+                         else tel.surface_rms_um, tel.surface_rms_um)
+        eff = np.exp(-((4.0 * math.pi * sigma / band.wavelength_um) ** 2))  # Ruze 1966
+        out.append(_steps_failing(f"dish surface efficiency under {tel.surface_efficiency_floor:g}",
+                                  eff < tel.surface_efficiency_floor, steps))
+    if sky.is_moving(row):
+        out.append(_steps_failing("no position (outside the ephemeris table)", ~np.isfinite(alt), steps))
     if spec.max_pwv_mm is not None:
         out.append(_steps_failing("PWV over the limit", pwv > spec.max_pwv_mm, steps))
     trans = np.asarray(physics.transmission(band, pwv, x, cloud), dtype=np.float64)
@@ -124,6 +144,30 @@ def _entry_constraints(e: PlanEntry, spec: RequestSpec, row: int, sky: SkyGrid, 
             bad |= ~inside
         out.append(_steps_failing("outside the periodic window", bad, steps))
     return [Violation(f"request {e.request_id} x{e.execution}: {msg}", e.request_id, e.execution) for msg in out if msg]
+
+
+_RAD_ARCSEC = 180.0 / math.pi * 3600.0
+
+
+def _ao_strehl(spec: RequestSpec, band, inst, config: ObservatoryConfig, seeing: np.ndarray, x: np.ndarray,
+               cond: ConditionsGrid, steps: np.ndarray) -> np.ndarray | None:
+    """Predicted Strehl ratio, written out here on its own (Fried parameter from the seeing,
+    Kolmogorov fitting, anisoplanatic and servo-lag variances, extended Marechal), or None where
+    the instrument's AO is not modelled from the turbulence."""
+    if inst.ao_actuator_pitch_m is None or not band.seeing_limited or band.wavelength_um < inst.ao_min_wavelength_um:
+        return None
+    scale = (band.wavelength_um / 0.5) ** 1.2
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        xf = np.where(np.isfinite(x), x, 1.0)
+        r0 = 0.98 * 0.5e-6 / (seeing / _RAD_ARCSEC) * scale * xf**-0.6
+        var = inst.ao_fitting_coeff * (inst.ao_actuator_pitch_m / r0) ** (5.0 / 3.0)
+        theta0 = 0.314 * r0 / (config.site.turbulence_height_m * xf) * _RAD_ARCSEC
+        var = var + ((spec.guide_star_sep_arcsec or 0.0) / theta0) ** (5.0 / 3.0)
+        if inst.ao_servo_lag_ms is not None and cond.coherence_time_ms is not None:
+            tau = np.asarray(cond.coherence_time_ms, dtype=np.float64)[steps] * scale * xf**-0.6
+            lag = (inst.ao_servo_lag_ms / tau) ** (5.0 / 3.0)
+            var = var + np.where(np.isfinite(lag), lag, 0.0)
+        return np.where(np.isfinite(x), np.exp(-var), 0.0)
 
 
 def _position(sky: SkyGrid, row: int, step: int) -> tuple[float, float]:

@@ -322,6 +322,7 @@ def create_app(db, config: ObservatoryConfig, *, clock=None, token: str | None =
                         headers={"cache-control": "no-store"})
 
     def render_svg(style: str) -> bytes | None:
+        from scheduler.db import store
         from scheduler.report.chart import measured_samples, plan_samples, render_chart
 
         doc, night = load_plan()
@@ -334,7 +335,9 @@ def create_app(db, config: ObservatoryConfig, *, clock=None, token: str | None =
             with db.session() as s:
                 samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
                 measured = measured_samples(s, night)
-            return render_chart(doc, night, config, samples, now=n, style=style, fmt="svg", measured=measured)
+                tracks = store.ephemeris_tables(s, {e["request_id"] for e in doc["entries"]})
+            return render_chart(doc, night, config, samples, now=n, style=style, fmt="svg", measured=measured,
+                                tracks=tracks)
 
         return charts.get((doc["plan"]["version"], latest, style, n.strftime("%Y%m%d%H%M")), make)
 

@@ -1,6 +1,8 @@
 """Write the invented demo scenario: programs, 150 requests, two forecasts for one night and a climatology.
 
 Deterministic (fixed seed, no clock, no network): running it again rewrites identical files.
+The invented comet's ephemeris table is computed from its invented orbit with nightplan's own
+Keplerian code and astropy's built-in (offline) Earth ephemeris.
 Everything here is invented: the programs, their PIs, the fields and the weather. The site is
 the starter observatory.toml's fictional one; the night is the local evening of 2026-12-16
 (a half Moon up for the first half of the night, then dark).
@@ -60,8 +62,19 @@ COLUMNS = [
     "program", "target", "ra", "dec", "band", "exposure_s", "resolution_arcsec", "max_seeing_arcsec",
     "max_pwv_mm", "max_airmass", "min_moon_sep_deg", "max_cloud_mag", "not_before", "not_after",
     "priority", "repeats", "min_spacing_s", "max_moon_illum", "period_epoch", "period_days",
-    "phase_min", "phase_max", "too",
+    "phase_min", "phase_max", "too", "guide_star_sep_arcsec", "body", "ephemeris_file",
 ]
+
+# An invented comet for the TDS program: an elliptic orbit made up for the demo (no real
+# comet has it), perihelion 1.05 AU twelve days after the demo night, about 0.3 AU from the
+# Earth that night, moving about 1 deg/day in RA and 2 deg/day in Dec. Its ephemeris table
+# (geocentric astrometric ICRS, every 2 hours) is computed from the orbit with nightplan's
+# own Keplerian code and the built-in Earth ephemeris, the way a PI's table would arrive.
+COMET_FILE = "comet_tds_2026x1.csv"
+COMET_ORBIT = dict(q_au=1.05, e=0.82, inc_deg=40.0, node_deg=240.0, peri_arg_deg=210.0)
+COMET_PERIHELION = datetime(2026, 12, 29, 3, 0, tzinfo=timezone.utc)
+COMET_TABLE_START = datetime(2026, 12, 15, 0, 0, tzinfo=timezone.utc)
+COMET_TABLE_END = datetime(2026, 12, 19, 0, 0, tzinfo=timezone.utc)
 
 
 def iso(t: datetime) -> str:
@@ -162,7 +175,38 @@ def requests(rng: random.Random) -> list[dict]:
     # Replace two ordinary ones so the queue stays at 150.
     del rows[29]
     del rows[64]
+    # Moving targets and off-axis adaptive optics: a planet in K, the invented comet from its
+    # ephemeris table, and a K-band field whose only guide star is 8 arcsec away (the predicted
+    # Strehl ratio clears the camera's threshold only in the better seeing).
+    add("SFN", "SFN-SATURN", 0.0, 0.0, "K", 600, max_seeing_arcsec=1.2, max_airmass=2.0, priority=9)
+    rows[-1].update(ra="", dec="", body="saturn")
+    add("TDS", "TDS-C2026X1", 0.0, 0.0, "R", 900, max_airmass=2.2, max_moon_illum=0.8, priority=8)
+    rows[-1].update(ra="", dec="", ephemeris_file=COMET_FILE)
+    add("SFN", "SFN-AO-OFFAXIS", 62.5, -41.25, "K", 1200, resolution_arcsec=0.3, guide_star_sep_arcsec=8,
+        max_pwv_mm=6, max_airmass=1.8, priority=8)
+    for i in (130, 100, 50):  # three ordinary ones make room
+        del rows[i]
     return rows
+
+
+def comet_table() -> str:
+    """The invented comet's ephemeris table (CSV time,ra,dec,delta_au)."""
+    from astropy.time import Time
+
+    from scheduler.sky.bodies import orbit_astrometric, orbit_elements, radec_deg
+
+    t_peri = Time(COMET_PERIHELION.timestamp(), format="unix", scale="utc").tdb.jd
+    elements = orbit_elements(perihelion_jd_tdb=t_peri, **COMET_ORBIT)
+    times = []
+    t = COMET_TABLE_START
+    while t <= COMET_TABLE_END:
+        times.append(t)
+        t += timedelta(hours=2)
+    vec, delta = orbit_astrometric(elements, [x.timestamp() for x in times])
+    ra, dec = radec_deg(vec)
+    lines = ["time,ra,dec,delta_au"]
+    lines += [f"{iso(x)},{r:.5f},{d:.5f},{a:.5f}" for x, r, d, a in zip(times, ra, dec, delta)]
+    return "\n".join(lines) + "\n"
 
 
 def forecast(rng: random.Random, *, changed: bool) -> list[dict]:
@@ -210,6 +254,7 @@ def main() -> None:
         w = csv.DictWriter(f, COLUMNS, lineterminator="\n")
         w.writeheader()
         w.writerows(rows)
+    (HERE / COMET_FILE).write_text(comet_table(), encoding="utf-8")
     first = forecast(rng, changed=False)
     with open(HERE / "forecast.csv", "w", newline="", encoding="utf-8") as f:
         w = csv.DictWriter(f, list(first[0]), lineterminator="\n")
