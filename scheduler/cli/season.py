@@ -98,7 +98,7 @@ def simulate(c: Ctx, date_from: str, date_to: str, realizations: int, seed: int,
     import os
 
     from scheduler.db import outlook as outlook_db
-    from scheduler.season.engine import SeasonSetup, program_infos
+    from scheduler.season.engine import SeasonProgram, SeasonSetup
     from scheduler.season.weather import read_climatology_file
     from scheduler.solve.budget import check_effort
 
@@ -132,11 +132,11 @@ def simulate(c: Ctx, date_from: str, date_to: str, realizations: int, seed: int,
             raise InputError("db", "the schema is older than this nightplan; run `nightplan init` to upgrade it "
                                    "before --store")
     with db.session() as s:
-        specs, program_rows, weights = outlook_db.read_queue(s)
+        specs, programs = outlook_db.read_queue(s)
     if not specs:
         raise InputError("queue", "has no active requests (queued, planned or failed); nothing to simulate")
     dates = tuple(start + timedelta(days=k) for k in range(n_nights))
-    setup = SeasonSetup(config, clim, tuple(specs), program_infos(program_rows), dict(weights), dates, seed, effort)
+    setup = SeasonSetup(config, clim, tuple(specs), tuple(SeasonProgram(**p) for p in programs), dates, seed, effort)
 
     from scheduler.season.distribute import dask_client, run_realizations
     from scheduler.season.simulate import aggregate
@@ -146,7 +146,7 @@ def simulate(c: Ctx, date_from: str, date_to: str, realizations: int, seed: int,
                f"effort {effort}, seed {seed}, weather {clim.source}; on {where}", err=True)
     with dask_client(scheduler_address, n_workers) as client:
         outcomes, info = run_realizations(client, setup, realizations, progress=_Progress())
-    doc = aggregate(setup.programs, setup.request_infos(), outcomes, start=start, end=end, seed=seed)
+    doc = aggregate(setup.program_infos(), setup.request_infos(), outcomes, start=start, end=end, seed=seed)
     doc.update({"effort": effort, "weather": clim.source, "caution": CAUTION})
     click.echo(f"peak memory per worker: {', '.join(f'{v:.0f} MiB' for v in info.peak_rss_mib.values())}", err=True)
 

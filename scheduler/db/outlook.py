@@ -19,13 +19,16 @@ from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import iso
 
 
-def read_queue(s: Session) -> tuple[list[RequestSpec], list[tuple[str, int | None, float]], dict[str, float]]:
-    """(active requests, (program code, tier or None, allocated hours) per program, program weights).
-
-    A program's tier is read from its record when the schema has one (None otherwise)."""
-    programs = store.list_programs(s)
-    rows = [(p.code, getattr(p, "tier", None), float(p.hours_allocated)) for p in programs]
-    return store.active_specs(s), rows, store.program_weights(s)
+def read_queue(s: Session) -> tuple[list[RequestSpec], list[dict[str, Any]]]:
+    """(active requests, programs), in one transaction. A program is its code, tier (None where
+    the records have no tier), weight, allocated hours and hours charged so far (0 where the
+    records keep no charges)."""
+    charged_by = getattr(store, "charged_hours_by_program", None)  # where recorded outcomes carry charges
+    charged = charged_by(s) if charged_by is not None else {}
+    programs = [{"code": p.code, "tier": getattr(p, "tier", None), "weight": float(p.weight),
+                 "hours_allocated": float(p.hours_allocated), "hours_charged": float(charged.get(p.code, 0.0))}
+                for p in store.list_programs(s)]
+    return store.active_specs(s), programs
 
 
 def store_outlook(s: Session, doc: Mapping[str, Any], computed_at: datetime, *, effort: int, weather: str) -> int:

@@ -36,15 +36,15 @@ FULL = (90, 300, 8)  # nights, requests, realizations: the run the figures are a
 def _setup(n_requests: int, nights: int, effort: int, seed: int = 1):
     from scheduler.bench import generate_queue
     from scheduler.model.config import starter_config
-    from scheduler.season.engine import SeasonSetup, program_infos
+    from scheduler.season.engine import SeasonProgram, SeasonSetup
     from scheduler.season.weather import read_climatology_file
 
     cfg = starter_config()
     specs, weights = generate_queue(cfg, n_requests)
     clim = read_climatology_file(Path(__file__).resolve().parents[1] / "data" / "demo_queue" / "climatology.csv")
     dates = tuple(START + timedelta(days=k) for k in range(nights))
-    progs = program_infos([(code, None, 40.0) for code in sorted(weights)])
-    return SeasonSetup(cfg, clim, tuple(specs), progs, weights, dates, seed, effort)
+    progs = tuple(SeasonProgram(code, None, weights[code], 40.0) for code in sorted(weights))
+    return SeasonSetup(cfg, clim, tuple(specs), progs, dates, seed, effort)
 
 
 def plan_times(n_requests: int, efforts: list[int]) -> list[dict]:
@@ -53,7 +53,7 @@ def plan_times(n_requests: int, efforts: list[int]) -> list[dict]:
     from scheduler.planning.pipeline import BuildOptions, build_plan
     from scheduler.season.engine import season_draw
     from scheduler.season.weather import CLEAR, draw_night, realization_seed
-    from scheduler.sky.ephemeris import SkyCache
+    from scheduler.sky.ephemeris import SkyCache, sky_for
     from scheduler.sky.night import night_for
 
     setup = _setup(n_requests, 1, 1)
@@ -66,11 +66,11 @@ def plan_times(n_requests: int, efforts: list[int]) -> list[dict]:
             break
     cond = conditions_on_grid(nd.forecast.samples(), night.times_unix, cfg.defaults)
     cache = SkyCache()
-    cache.get(cfg.site, night, [s.ra_deg for s in setup.specs], [s.dec_deg for s in setup.specs])
+    sky_for(cfg.site, night, list(setup.specs), cache)
     out = []
     for e in efforts:
         t0, c0 = time.perf_counter(), time.process_time()
-        r = build_plan(cfg, list(setup.specs), dict(setup.weights), night, cond, sky=cache,
+        r = build_plan(cfg, list(setup.specs), setup.planner_programs({}), night, cond, sky=cache,
                        options=BuildOptions(effort=e, seed=0))
         out.append({"effort": e, "wall_s": time.perf_counter() - t0, "cpu_s": time.process_time() - c0,
                     "entries": len(r.entries), "status": r.solver_status, "objective": r.objective})
@@ -81,7 +81,7 @@ def plan_times(n_requests: int, efforts: list[int]) -> list[dict]:
 def per_night(n_requests: int, nights: int, effort: int) -> dict:
     """One realization through ``nights`` nights in this process: seconds per night."""
     from scheduler.season.engine import initial_state, simulate_nights
-    from scheduler.sky.ephemeris import SkyCache
+    from scheduler.sky.ephemeris import SkyCache, sky_for
     from scheduler.sky.night import night_for
 
     setup = _setup(n_requests, nights, effort)
@@ -92,7 +92,7 @@ def per_night(n_requests: int, nights: int, effort: int) -> dict:
         cfg = setup.config
         night = night_for(cfg.site, setup.dates[i], cfg.planning.step_s)
         t0 = time.perf_counter()
-        cache.get(cfg.site, night, [s.ra_deg for s in setup.specs], [s.dec_deg for s in setup.specs])
+        sky_for(cfg.site, night, list(setup.specs), cache)
         sky_s = time.perf_counter() - t0
         t0, c0 = time.perf_counter(), time.process_time()
         state = simulate_nights(setup, state, [i], cache)
@@ -137,7 +137,7 @@ def dask_run(n_requests: int, nights: int, realizations: int, workers: int, effo
         t1 = time.perf_counter()
         outcomes, info = run_realizations(client, setup, realizations)
         t2 = time.perf_counter()
-    doc = aggregate(setup.programs, setup.request_infos(), outcomes, start=setup.dates[0], end=setup.dates[-1],
+    doc = aggregate(setup.program_infos(), setup.request_infos(), outcomes, start=setup.dates[0], end=setup.dates[-1],
                     seed=setup.seed)
     row = {"requests": n_requests, "nights": nights, "realizations": realizations, "workers": workers,
            "effort": effort, "wall_s": time.perf_counter() - t0, "cluster_start_s": t1 - t0, "simulate_s": t2 - t1,

@@ -42,12 +42,23 @@ from scheduler.season.simulate import NightOutcome, ProgramInfo, RealizationOutc
 from scheduler.season.weather import (
     DEFAULT_MODEL, Climatology, NightDraw, SeasonDraw, WeatherModel, draw_night, draw_season, realization_seed,
 )
-from scheduler.sky.ephemeris import SkyCache
+from scheduler.sky.ephemeris import SkyCache, sky_for
 from scheduler.sky.night import ASTRONOMICAL_ALT_DEG, Night, night_for
 
 MONITOR_STEP_S = 1800.0  # the site reports its conditions every half hour (as often as the forecast samples)
 NOWCAST_HOLD_S = 3600.0  # a report holds the conditions measured now for an hour (about the seeing's correlation time)
 DEFAULT_TIER = 2  # a program without a tier (the column may not exist yet) counts as tier 2
+
+
+@dataclass(frozen=True)
+class SeasonProgram:
+    """A program as the command read it: what the outlook reports and the planner's value reads."""
+
+    code: str
+    tier: int | None  # None: the program records have no tier (counted as DEFAULT_TIER)
+    weight: float
+    hours_allocated: float
+    hours_charged: float = 0.0  # charged before the season (recorded outcomes), where the records tell
 
 
 @dataclass(frozen=True)
@@ -57,8 +68,7 @@ class SeasonSetup:
     config: ObservatoryConfig
     climatology: Climatology
     specs: tuple[RequestSpec, ...]  # the active queue at the season's start, in id order
-    programs: tuple[ProgramInfo, ...]
-    weights: Mapping[str, float]  # program code -> the planner's program weight
+    programs: tuple[SeasonProgram, ...]
     dates: tuple[date, ...]  # the season's nights, consecutive local evening dates
     seed: int
     effort: int
@@ -66,6 +76,23 @@ class SeasonSetup:
 
     def request_infos(self) -> list[RequestInfo]:
         return [RequestInfo(int(s.id), s.program, s.remaining_repeats, s.exposure_s / 3600.0) for s in self.specs]
+
+    def program_infos(self) -> list[ProgramInfo]:
+        return [ProgramInfo(p.code, DEFAULT_TIER if p.tier is None else int(p.tier), p.hours_allocated)
+                for p in self.programs]
+
+    def planner_programs(self, charged_in_season: Mapping[str, float]) -> dict:
+        """The programs as ``build_plan`` reads them, as a build from the database would see them
+        at that point of the season: with the value model's program states (tier, weight,
+        allocated hours, hours charged before and during the season) where the core has them,
+        else the programs' weights."""
+        try:
+            from scheduler.model.program import ProgramState
+        except ModuleNotFoundError:  # a core whose value reads weights only
+            return {p.code: p.weight for p in self.programs}
+        return {p.code: ProgramState(p.code, DEFAULT_TIER if p.tier is None else int(p.tier), p.weight,
+                                     p.hours_allocated, p.hours_charged + charged_in_season.get(p.code, 0.0))
+                for p in self.programs}
 
 
 @dataclass(frozen=True)
@@ -107,11 +134,17 @@ def simulate_nights(setup: SeasonSetup, state: RealizationState, indices: Sequen
     """Run the nights ``setup.dates[i]`` for i in ``indices`` (consecutive, in order) of one realization."""
     draw = season_draw(setup, state.realization)
     specs, nights = state.specs, list(state.nights)
+    charged: dict[str, float] = {}
+    for n in nights:
+        for code, h in sorted(n.charged_h.items()):
+            charged[code] = charged.get(code, 0.0) + h
     for i in indices:
         if len(nights) != i:
             raise ValueError(f"realization {state.realization}: night {i} follows {len(nights)} nights done")
-        specs, outcome = simulate_night(setup, state.realization, draw, i, specs, sky_cache)
+        specs, outcome = simulate_night(setup, state.realization, draw, i, specs, sky_cache, charged)
         nights.append(outcome)
+        for code, h in sorted(outcome.charged_h.items()):
+            charged[code] = charged.get(code, 0.0) + h
     return RealizationState(state.realization, specs, tuple(nights))
 
 
@@ -164,7 +197,8 @@ class _Night:
     specs: dict[int, RequestSpec]
     truth_ok: dict[int, np.ndarray]  # request id -> ok[n_t] under the weather that came
     busy: np.ndarray  # [n_t] bool: telescope moving to, or observing, a target
-    charged: dict[str, float] = field(default_factory=dict)
+    charged_before: dict[str, float]  # hours charged per program in the season before tonight
+    charged: dict[str, float] = field(default_factory=dict)  # tonight
     done: dict[int, int] = field(default_factory=dict)
     failed: dict[int, int] = field(default_factory=dict)
     band_h: dict[str, float] = field(default_factory=dict)
@@ -199,8 +233,10 @@ class _Night:
         opts = BuildOptions(now=now, previous_entries=list(previous) or None, effort=effort,
                             seed=build_seed(s.seed, self.realization, self.night.date, self.builds))
         self.builds += 1
-        result = build_plan(s.config, self.active(), dict(s.weights), self.night, cond, sky=self.sky_cache,
-                            options=opts)
+        so_far = {code: self.charged_before.get(code, 0.0) + self.charged.get(code, 0.0)
+                  for code in sorted(set(self.charged_before) | set(self.charged))}
+        result = build_plan(s.config, self.active(), s.planner_programs(so_far), self.night, cond,
+                            sky=self.sky_cache, options=opts)
         return None if result.violations else result  # a plan the checker refuses is never put in force
 
     def start(self, e: PlanEntry) -> _Run:
@@ -238,7 +274,8 @@ def report_at(samples: tuple[Sequence[Sample], Sequence[Sample]], night: Night, 
 
 
 def simulate_night(setup: SeasonSetup, realization: int, season: SeasonDraw, i: int, specs: Sequence[RequestSpec],
-                   sky_cache: SkyCache) -> tuple[tuple[RequestSpec, ...], NightOutcome]:
+                   sky_cache: SkyCache, charged: Mapping[str, float] | None = None
+                   ) -> tuple[tuple[RequestSpec, ...], NightOutcome]:
     """Night ``i`` of the season: its weather drawn, then ``run_night``."""
     cfg = setup.config
     night = night_for(cfg.site, setup.dates[i], cfg.planning.step_s)
@@ -246,20 +283,21 @@ def simulate_night(setup: SeasonSetup, realization: int, season: SeasonDraw, i: 
         return expire(specs, night.start), NightOutcome(night.date)
     draw = draw_night(setup.climatology, season, i, night.times_unix, cfg.safety,
                       realization_seed(setup.seed, realization), setup.model)
-    return run_night(setup, realization, night, draw, specs, sky_cache)
+    return run_night(setup, realization, night, draw, specs, sky_cache, charged)
 
 
 def run_night(setup: SeasonSetup, realization: int, night: Night, draw: NightDraw, specs: Sequence[RequestSpec],
-              sky_cache: SkyCache) -> tuple[tuple[RequestSpec, ...], NightOutcome]:
-    """One night of one realization given its weather: (the queue after it, what happened)."""
+              sky_cache: SkyCache, charged: Mapping[str, float] | None = None
+              ) -> tuple[tuple[RequestSpec, ...], NightOutcome]:
+    """One night of one realization given its weather (``charged``: hours charged per program
+    in the season before this night): (the queue after it, what happened)."""
     from scheduler.service.validity import Planned, conditions_changes, entry_failures, feasibility_for
 
     cfg = setup.config
     specs = expire(specs, night.start)
     # The whole season's targets in one call: computed once per night on this worker, then
     # every realization planning this night reads them from the cache.
-    sky = sky_cache.get(cfg.site, night, np.array([s.ra_deg for s in setup.specs]),
-                        np.array([s.dec_deg for s in setup.specs]))
+    sky, _ = sky_for(cfg.site, night, list(setup.specs), sky_cache)
     samples = (draw.actual.samples(), draw.forecast.samples())
     actual = conditions_on_grid(samples[0], night.times_unix, cfg.defaults)
     forecast = conditions_on_grid(samples[1], night.times_unix, cfg.defaults)
@@ -268,7 +306,8 @@ def run_night(setup: SeasonSetup, realization: int, night: Night, draw: NightDra
     active = [s for s in specs if s.status in ACTIVE_STATUSES]
     truth = feasibility_for(cfg, night, sky_cache, active, actual) if active else None
     truth_ok = {int(s.id): truth.ok[r] for r, s in enumerate(active)} if truth is not None else {}
-    run = _Night(setup, realization, night, sky_cache, by_id, truth_ok, np.zeros(night.n_times, dtype=bool))
+    run = _Night(setup, realization, night, sky_cache, by_id, truth_ok, np.zeros(night.n_times, dtype=bool),
+                 dict(charged or {}))
 
     plan = run.build(forecast, None, ()) if active else None
     entries = sorted(plan.entries, key=lambda e: e.start_step) if plan else []
@@ -339,7 +378,3 @@ def _night_outcome(run: _Night, sky, actual: ConditionsGrid) -> NightOutcome:
         builds=run.builds,
     )
 
-
-def program_infos(rows: Sequence[tuple[str, int | None, float]]) -> tuple[ProgramInfo, ...]:
-    """(code, tier or None, allocated hours) -> ProgramInfo, a missing tier counted as DEFAULT_TIER."""
-    return tuple(ProgramInfo(code, DEFAULT_TIER if tier is None else int(tier), float(h)) for code, tier, h in rows)
