@@ -38,6 +38,10 @@ def _check_range(field: str, value: int, lo: int, hi: int, unit: str = "") -> in
     return value
 
 
+def _n(k: int, what: str) -> str:
+    return f"{k} {what}{'' if k == 1 else 's'}"
+
+
 def _out_dir(text: str | None) -> Path | None:
     if text is None:
         return None
@@ -142,9 +146,10 @@ def simulate(c: Ctx, date_from: str, date_to: str, realizations: int, seed: int,
     from scheduler.season.simulate import aggregate
 
     where = scheduler_address or f"a local Dask cluster of {n_workers} worker process{'es' if n_workers > 1 else ''}"
-    click.echo(f"season {start} to {end}: {n_nights} nights x {realizations} realizations, {len(specs)} requests, "
-               f"effort {effort}, seed {seed}, weather {clim.source}; on {where}", err=True)
     with dask_client(scheduler_address, n_workers) as client:
+        click.echo(f"season {start} to {end}: {_n(n_nights, 'night')} x {_n(realizations, 'realization')}, "
+                   f"{_n(len(specs), 'request')}, effort {effort}, seed {seed}, weather {clim.source}; on {where}",
+                   err=True)
         outcomes, info = run_realizations(client, setup, realizations, progress=_Progress())
     doc = aggregate(setup.program_infos(), setup.request_infos(), outcomes, start=start, end=end, seed=seed)
     doc.update({"effort": effort, "weather": clim.source, "caution": CAUTION})
