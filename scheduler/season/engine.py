@@ -38,10 +38,13 @@ from scheduler.conditions.ingest import Sample
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.plan import PlanEntry, PlanResult
 from scheduler.model.request import ACTIVE_STATUSES, OutcomeResult, RequestSpec, RequestStatus
+from scheduler.model.timegrid import utc
+from scheduler.planning.pipeline import BuildOptions, build_plan
 from scheduler.season.simulate import NightOutcome, ProgramInfo, RealizationOutcome, RequestInfo
 from scheduler.season.weather import (
     DEFAULT_MODEL, Climatology, NightDraw, SeasonDraw, WeatherModel, draw_night, draw_season, realization_seed,
 )
+from scheduler.service.validity import Planned, conditions_changes, entry_failures, feasibility_for
 from scheduler.sky.ephemeris import SkyCache, sky_for
 from scheduler.sky.night import ASTRONOMICAL_ALT_DEG, Night, night_for
 
@@ -225,8 +228,6 @@ class _Night:
         return [s for s in self.specs.values() if s.status in ACTIVE_STATUSES]
 
     def build(self, cond: ConditionsGrid, now_step: int | None, previous: Sequence[PlanEntry]) -> PlanResult | None:
-        from scheduler.planning.pipeline import BuildOptions, build_plan
-
         s = self.setup
         now = None if now_step is None else _at(self.night, now_step)
         effort = s.effort if now_step is None else replan_effort(s.effort, s.config)
@@ -251,8 +252,6 @@ class _Night:
 
 
 def _at(night: Night, step: int) -> datetime:
-    from scheduler.model.timegrid import utc
-
     return utc(float(night.times_unix[0]) + step * night.step_s)
 
 
@@ -266,8 +265,6 @@ def report_at(samples: tuple[Sequence[Sample], Sequence[Sample]], night: Night, 
     past = [s for s in measured if s.time.timestamp() <= t_now]
     out = list(past)
     if past:
-        from scheduler.model.timegrid import utc
-
         out.append(replace(past[-1], time=utc(t_now + NOWCAST_HOLD_S), dome_open=None))
     out += [replace(s, dome_open=None) for s in forecast if s.time.timestamp() > t_now + NOWCAST_HOLD_S]
     return out
@@ -291,8 +288,6 @@ def run_night(setup: SeasonSetup, realization: int, night: Night, draw: NightDra
               ) -> tuple[tuple[RequestSpec, ...], NightOutcome]:
     """One night of one realization given its weather (``charged``: hours charged per program
     in the season before this night): (the queue after it, what happened)."""
-    from scheduler.service.validity import Planned, conditions_changes, entry_failures, feasibility_for
-
     cfg = setup.config
     specs = expire(specs, night.start)
     # The whole season's targets in one call: computed once per night on this worker, then
