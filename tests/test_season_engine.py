@@ -15,10 +15,11 @@ import pytest
 
 from scheduler.conditions.grid import conditions_on_grid
 from scheduler.model.config import starter_config
+from scheduler.model.program import ProgramState
 from scheduler.model.request import RequestSpec
 from scheduler.planning.pipeline import BuildOptions, build_plan
 from scheduler.season.engine import (
-    NOWCAST_HOLD_S, SeasonProgram, SeasonSetup, apply_outcome, build_seed, expire, initial_state, replan_effort,
+    NOWCAST_HOLD_S, SeasonSetup, apply_outcome, build_seed, expire, initial_state, replan_effort,
     report_at, run_night, simulate_nights,
 )
 from scheduler.season.weather import CLEAR, LOST, NightDraw, WeatherSeries, read_climatology_file
@@ -50,7 +51,7 @@ def spec(rid=1, **kw) -> RequestSpec:
 
 
 def setup_for(specs, effort=1) -> SeasonSetup:
-    return SeasonSetup(CFG, CLIM, tuple(specs), (SeasonProgram("ENG", None, 1.0, 10.0),), (NIGHT_DATE,),
+    return SeasonSetup(CFG, CLIM, tuple(specs), (ProgramState("ENG", 2, 1.0, 10.0),), (NIGHT_DATE,),
                        seed=3, effort=effort)
 
 
@@ -161,7 +162,7 @@ def test_replans_get_the_services_share_of_the_effort():
 def test_a_realization_is_the_same_in_one_block_or_night_by_night():
     specs = [spec(1), spec(2, ra_deg=(RA + 40) % 360, band="R", exposure_s=1800.0),
              spec(3, ra_deg=(RA + 320) % 360, band="I", exposure_s=1200.0, max_seeing_arcsec=None)]
-    setup = SeasonSetup(CFG, CLIM, tuple(specs), (SeasonProgram("ENG", 1, 1.0, 10.0),),
+    setup = SeasonSetup(CFG, CLIM, tuple(specs), (ProgramState("ENG", 1, 1.0, 10.0),),
                         (NIGHT_DATE, NIGHT_DATE + timedelta(days=1)), seed=11, effort=1)
     whole = simulate_nights(setup, initial_state(setup, 1), [0, 1], SkyCache())
     step = simulate_nights(setup, initial_state(setup, 1), [0], SkyCache())
@@ -172,15 +173,10 @@ def test_a_realization_is_the_same_in_one_block_or_night_by_night():
 
 
 def test_the_planner_sees_the_hours_charged_so_far():
-    """Programs reach build_plan as a build from the database would see them: with the value
-    model's program states (charged before the season plus in it) where the core has them."""
-    setup = SeasonSetup(CFG, CLIM, (spec(),), (SeasonProgram("ENG", None, 1.5, 10.0, hours_charged=2.0),),
+    """Programs reach build_plan as a build from the database would see them: hours charged
+    before the season plus those charged in it."""
+    setup = SeasonSetup(CFG, CLIM, (spec(),), (ProgramState("ENG", 3, 1.5, 10.0, hours_charged=2.0),),
                         (NIGHT_DATE,), seed=3, effort=1)
-    assert [(p.code, p.tier, p.allocated_h) for p in setup.program_infos()] == [("ENG", 2, 10.0)]
-    seen = setup.planner_programs({"ENG": 3.0})
-    try:
-        from scheduler.model.program import ProgramState
-    except ModuleNotFoundError:
-        assert seen == {"ENG": 1.5}  # this core's value reads the weight only
-        return
-    assert seen == {"ENG": ProgramState("ENG", 2, 1.5, 10.0, 5.0)}
+    assert [(p.code, p.tier, p.allocated_h) for p in setup.program_infos()] == [("ENG", 3, 10.0)]
+    assert setup.planner_programs({"ENG": 3.0}) == {"ENG": ProgramState("ENG", 3, 1.5, 10.0, 5.0)}
+    assert setup.planner_programs({}) == {"ENG": ProgramState("ENG", 3, 1.5, 10.0, 2.0)}

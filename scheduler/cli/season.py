@@ -102,7 +102,7 @@ def simulate(c: Ctx, date_from: str, date_to: str, realizations: int, seed: int,
     import os
 
     from scheduler.db import outlook as outlook_db
-    from scheduler.season.engine import SeasonProgram, SeasonSetup
+    from scheduler.season.engine import SeasonSetup
     from scheduler.season.weather import read_climatology_file
     from scheduler.solve.budget import check_effort
 
@@ -140,7 +140,7 @@ def simulate(c: Ctx, date_from: str, date_to: str, realizations: int, seed: int,
     if not specs:
         raise InputError("queue", "has no active requests (queued, planned or failed); nothing to simulate")
     dates = tuple(start + timedelta(days=k) for k in range(n_nights))
-    setup = SeasonSetup(config, clim, tuple(specs), tuple(SeasonProgram(**p) for p in programs), dates, seed, effort)
+    setup = SeasonSetup(config, clim, tuple(specs), tuple(programs), dates, seed, effort)
 
     from scheduler.season.distribute import dask_client, run_realizations
     from scheduler.season.simulate import aggregate

@@ -14,21 +14,15 @@ from sqlalchemy.orm import Session
 
 from scheduler.db import store
 from scheduler.db.models import Program, SeasonOutlook
-from scheduler.model.errors import NotFoundError
+from scheduler.model.program import ProgramState
 from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import iso
 
 
-def read_queue(s: Session) -> tuple[list[RequestSpec], list[dict[str, Any]]]:
-    """(active requests, programs), in one transaction. A program is its code, tier (None where
-    the records have no tier), weight, allocated hours and hours charged so far (0 where the
-    records keep no charges)."""
-    charged_by = getattr(store, "charged_hours_by_program", None)  # where recorded outcomes carry charges
-    charged = charged_by(s) if charged_by is not None else {}
-    programs = [{"code": p.code, "tier": getattr(p, "tier", None), "weight": float(p.weight),
-                 "hours_allocated": float(p.hours_allocated), "hours_charged": float(charged.get(p.code, 0.0))}
-                for p in store.list_programs(s)]
-    return store.active_specs(s), programs
+def read_queue(s: Session) -> tuple[list[RequestSpec], list[ProgramState]]:
+    """(active requests, programs with their tier, weight, allocated and charged hours), in one
+    transaction: what a plan build reads of the queue."""
+    return store.active_specs(s), list(store.program_states(s).values())
 
 
 def store_outlook(s: Session, doc: Mapping[str, Any], computed_at: datetime, *, effort: int, weather: str) -> int:
@@ -82,14 +76,6 @@ def program_outlook(s: Session, code: str) -> dict[str, Any] | None:
         return None
     return {"completion": {"mean": o.completion_mean, "p10": o.completion_p10, "p90": o.completion_p90},
             "charged_h_mean": o.charged_h_mean, **_run(o)}
-
-
-def program_with_outlook(s: Session, code: str) -> tuple[dict[str, Any], dict[str, Any] | None]:
-    """(`program list`'s fields of one program, its newest stored outlook or None)."""
-    prog = s.scalar(select(Program).where(Program.code == code))
-    if prog is None:
-        raise NotFoundError(f"program {code!r} not found")
-    return store.program_dict(prog), program_outlook(s, code)
 
 
 def outlook_line(o: Mapping[str, Any] | None, kind: str) -> str:

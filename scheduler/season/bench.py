@@ -36,14 +36,15 @@ FULL = (90, 300, 8)  # nights, requests, realizations: the run the figures are a
 def _setup(n_requests: int, nights: int, effort: int, seed: int = 1):
     from scheduler.bench import generate_queue
     from scheduler.model.config import starter_config
-    from scheduler.season.engine import SeasonProgram, SeasonSetup
+    from scheduler.model.program import ProgramState
+    from scheduler.season.engine import SeasonSetup
     from scheduler.season.weather import read_climatology_file
 
     cfg = starter_config()
     specs, weights = generate_queue(cfg, n_requests)
     clim = read_climatology_file(Path(__file__).resolve().parents[1] / "data" / "demo_queue" / "climatology.csv")
     dates = tuple(START + timedelta(days=k) for k in range(nights))
-    progs = tuple(SeasonProgram(code, None, weights[code], 40.0) for code in sorted(weights))
+    progs = tuple(ProgramState(code, weight=weights[code], hours_allocated=40.0) for code in sorted(weights))
     return SeasonSetup(cfg, clim, tuple(specs), progs, dates, seed, effort)
 
 

@@ -36,7 +36,9 @@ import numpy as np
 from scheduler.conditions.grid import ConditionsGrid, conditions_on_grid
 from scheduler.conditions.ingest import Sample
 from scheduler.model.config import ObservatoryConfig
+from scheduler.model.charging import charged_hours
 from scheduler.model.plan import PlanEntry, PlanResult
+from scheduler.model.program import ProgramState
 from scheduler.model.request import ACTIVE_STATUSES, OutcomeResult, RequestSpec, RequestStatus
 from scheduler.model.timegrid import utc
 from scheduler.planning.pipeline import BuildOptions, build_plan
@@ -50,18 +52,6 @@ from scheduler.sky.night import ASTRONOMICAL_ALT_DEG, Night, night_for
 
 MONITOR_STEP_S = 1800.0  # the site reports its conditions every half hour (as often as the forecast samples)
 NOWCAST_HOLD_S = 3600.0  # a report holds the conditions measured now for an hour (about the seeing's correlation time)
-DEFAULT_TIER = 2  # a program without a tier (the column may not exist yet) counts as tier 2
-
-
-@dataclass(frozen=True)
-class SeasonProgram:
-    """A program as the command read it: what the outlook reports and the planner's value reads."""
-
-    code: str
-    tier: int | None  # None: the program records have no tier (counted as DEFAULT_TIER)
-    weight: float
-    hours_allocated: float
-    hours_charged: float = 0.0  # charged before the season (recorded outcomes), where the records tell
 
 
 @dataclass(frozen=True)
@@ -71,7 +61,7 @@ class SeasonSetup:
     config: ObservatoryConfig
     climatology: Climatology
     specs: tuple[RequestSpec, ...]  # the active queue at the season's start, in id order
-    programs: tuple[SeasonProgram, ...]
+    programs: tuple[ProgramState, ...]  # as the database had them at the season's start (hours charged so far)
     dates: tuple[date, ...]  # the season's nights, consecutive local evening dates
     seed: int
     effort: int
@@ -81,20 +71,12 @@ class SeasonSetup:
         return [RequestInfo(int(s.id), s.program, s.remaining_repeats, s.exposure_s / 3600.0) for s in self.specs]
 
     def program_infos(self) -> list[ProgramInfo]:
-        return [ProgramInfo(p.code, DEFAULT_TIER if p.tier is None else int(p.tier), p.hours_allocated)
-                for p in self.programs]
+        return [ProgramInfo(p.code, int(p.tier), p.hours_allocated) for p in self.programs]
 
-    def planner_programs(self, charged_in_season: Mapping[str, float]) -> dict:
+    def planner_programs(self, charged_in_season: Mapping[str, float]) -> dict[str, ProgramState]:
         """The programs as ``build_plan`` reads them, as a build from the database would see them
-        at that point of the season: with the value model's program states (tier, weight,
-        allocated hours, hours charged before and during the season) where the core has them,
-        else the programs' weights."""
-        try:
-            from scheduler.model.program import ProgramState
-        except ModuleNotFoundError:  # a core whose value reads weights only
-            return {p.code: p.weight for p in self.programs}
-        return {p.code: ProgramState(p.code, DEFAULT_TIER if p.tier is None else int(p.tier), p.weight,
-                                     p.hours_allocated, p.hours_charged + charged_in_season.get(p.code, 0.0))
+        at that point of the season: the hours charged so far include the season's."""
+        return {p.code: replace(p, hours_charged=p.hours_charged + charged_in_season.get(p.code, 0.0))
                 for p in self.programs}
 
 
@@ -171,13 +153,13 @@ def apply_outcome(spec: RequestSpec, result: str) -> RequestSpec:
     raise ValueError(f"unknown result {result!r}")
 
 
-def charged_h(result: str, entry: PlanEntry) -> float:
-    """Hours charged for an outcome recorded against a plan entry: a done execution is charged
-    the entry's time as planned (setup + exposure) plus the transition into it; a failure is
-    the telescope's or the weather's and is not charged."""
-    if result != OutcomeResult.DONE:
-        return 0.0
-    return ((entry.end - entry.start).total_seconds() + entry.transition_s) / 3600.0
+def charged_h(result: str, entry: PlanEntry, spec: RequestSpec) -> float:
+    """Hours an outcome recorded against a plan entry charges (model/charging.py, the recording
+    rule with its default charge: done is charged the entry's time as planned plus the
+    transition into it; failed is the telescope's or the weather's, not charged)."""
+    planned_s = (entry.end - entry.start).total_seconds() + entry.transition_s
+    return charged_hours(str(result), None, planned_s=planned_s, request_exposure_s=spec.exposure_s,
+                         achieved_exposure_s=None)
 
 
 # --------------------------------------------------------------------------- the night
@@ -219,7 +201,7 @@ class _Night:
         self.specs[rid] = apply_outcome(spec, run.result)
         if run.result == OutcomeResult.DONE:
             self.done[rid] = self.done.get(rid, 0) + 1
-            self.charged[spec.program] = self.charged.get(spec.program, 0.0) + charged_h(OutcomeResult.DONE, e)
+            self.charged[spec.program] = self.charged.get(spec.program, 0.0) + charged_h(run.result, e, spec)
             self.band_h[spec.band] = self.band_h.get(spec.band, 0.0) + (e.end - e.start).total_seconds() / 3600.0
         else:
             self.failed[rid] = self.failed.get(rid, 0) + 1

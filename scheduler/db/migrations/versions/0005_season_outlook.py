@@ -1,7 +1,7 @@
 """season outlook: the stored result of `season simulate --store`
 
 Revision ID: season_outlook
-Revises: 0003
+Revises: 0004
 Create Date: 2026-12-02
 """
 from alembic import op
@@ -9,7 +9,7 @@ import sqlalchemy as sa
 
 
 revision = 'season_outlook'
-down_revision = '0003'
+down_revision = '0004'
 branch_labels = None
 depends_on = None
 
