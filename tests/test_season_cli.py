@@ -76,7 +76,8 @@ def queue_folder(tmp_path_factory) -> Path:
     folder = tmp_path_factory.mktemp("season")
     run_cli("init", cwd=folder, check=True)
     run_cli("program", "add", "EASY", "--pi", "Dr. Ada Quillfeather", "--hours", "5", cwd=folder, check=True)
-    run_cli("program", "add", "MIXED", "--pi", "Dr. Bram Oteleku", "--hours", "3", cwd=folder, check=True)
+    run_cli("program", "add", "MIXED", "--pi", "Dr. Bram Oteleku", "--hours", "3", "--tier", "1", cwd=folder,
+            check=True)
     (folder / "q.csv").write_text(_queue_csv(_transiting_ra(-30.0)), encoding="utf-8")
     run_cli("request", "import", "q.csv", cwd=folder, check=True)
     run_cli("plan", "build", "--night", FIRST.isoformat(), "--time-limit", "1", cwd=folder, check=True)
@@ -98,12 +99,13 @@ def test_five_nights_two_realizations_end_to_end(queue_folder, one_worker):
     proc, doc, _, _ = one_worker
     assert (doc["from"], doc["to"], doc["realizations"], doc["seed"], doc["nights"]) == \
         (FIRST.isoformat(), LAST.isoformat(), 2, 5, 5)
-    assert [p["code"] for p in doc["programs"]] == ["EASY", "MIXED"]
+    assert [(p["code"], p["tier"]) for p in doc["programs"]] == [("MIXED", 1), ("EASY", 2)]  # by tier
     for p in doc["programs"]:
-        assert p["tier"] == 2 and set(p) >= {"code", "tier", "allocated_h", "charged_h", "completion"}
+        assert set(p) >= {"code", "tier", "allocated_h", "charged_h", "completion"}
         for k in ("charged_h", "completion"):
             assert set(p[k]) == {"mean", "p10", "p90"} and p[k]["p10"] <= p[k]["mean"] <= p[k]["p90"]
-    assert [p["allocated_h"] for p in doc["programs"]] == [5.0, 3.0]
+    assert [p["allocated_h"] for p in doc["programs"]] == [3.0, 5.0]
+    assert set(doc["cumulative_charged_h_by_tier"]["tiers"]) == {"1", "2"}
     assert {r["id"] for r in doc["requests"]} == {1, 2, 3, 4, 5}
     assert all(0.0 <= r["p_complete"] <= 1.0 for r in doc["requests"])
     assert set(doc["hours_by_band"]) <= {"V", "R", "I"} and doc["hours_by_band"]
@@ -163,10 +165,10 @@ def test_store_on_an_existing_cluster_then_show(queue_folder, one_worker):
     assert before["tables"]["plan"] and before["tables"]["request"]  # the queue and its plan were there
     shown = run_cli("request", "show", "4", cwd=queue_folder, check=True).stdout
     assert "outlook: probability of completion 0.00 (computed " in " ".join(shown.split())
-    easy = one_worker[1]["programs"][0]["completion"]
+    easy = next(p for p in one_worker[1]["programs"] if p["code"] == "EASY")["completion"]
     got = cli_json("program", "show", "EASY", cwd=queue_folder)["outlook"]
     assert got["completion"] == easy and got["realizations"] == 2 and got["from"] == FIRST.isoformat()
-    assert "completion " in run_cli("program", "show", "EASY", cwd=queue_folder, check=True).stdout
+    assert "season outlook: completion " in run_cli("program", "show", "EASY", cwd=queue_folder, check=True).stdout
 
 
 BAD = [

@@ -45,8 +45,8 @@ def completion_chart(doc: Mapping[str, Any], path: str | Path) -> None:
     ax.set_yticks(y, [f"{p['code']} (tier {p['tier'] if p['tier'] is not None else '-'})" for p in progs])
     ax.set_xlim(0, 105)
     ax.set_xlabel("completion: share of the work queued at the season's start that gets done (%)")
-    ax.set_title(f"Season outlook {doc['from']} to {doc['to']}: completion per program "
-                 f"(bar: mean; whiskers: 10-90 % of {doc['realizations']} realizations)", fontsize=10)
+    ax.set_title(f"Season outlook {doc['from']} to {doc['to']}: completion per program\n"
+                 f"bar: mean; whiskers: 10-90 % of {doc['realizations']} realizations", fontsize=10)
     ax.grid(axis="x", color="#dddddd")
     ax.set_axisbelow(True)
     fig.text(0.01, 0.01, CAUTION, fontsize=8, color="#555555")
@@ -74,9 +74,10 @@ def charged_by_tier_chart(doc: Mapping[str, Any], path: str | Path) -> None:
                  f"({doc['realizations']} realizations)", fontsize=10)
     ax.grid(color="#dddddd")
     ax.set_axisbelow(True)
-    ax.set_ylim(bottom=0)
+    top = max((max(v["p90"], default=0.0) for v in cum["tiers"].values()), default=0.0)
+    ax.set_ylim(0, max(1.0, 1.15 * top))
     if tiers:
-        ax.legend(fontsize=8, loc="upper left")
+        ax.legend(fontsize=8, loc="best")
     from matplotlib.dates import DateFormatter, DayLocator
 
     ax.xaxis.set_major_locator(DayLocator(interval=max(1, (len(dates) + 7) // 8)))  # whole nights, about 8 labels
