@@ -10,4 +10,4 @@ given); the command line lives in scheduler/cli/season.py.
 
 # The work budget of each simulated night's first plan (`season simulate --effort`): a night of
 # 300 requests plans in about 1 s of one core (docs/benchmarks.md, "Season simulation").
-DEFAULT_EFFORT = 2
+DEFAULT_EFFORT = 3

@@ -24,6 +24,7 @@ from __future__ import annotations
 import logging
 import resource
 import sys
+import time
 import uuid
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -69,6 +70,10 @@ def peak_rss_mib() -> float:
     return kib / (1024.0 * 1024.0) if sys.platform == "darwin" else kib / 1024.0
 
 
+def _cpu_s() -> float:
+    return time.process_time()
+
+
 def _sky_computed() -> dict:
     c = worker_sky_cache()
     return {"nights": c.nights_computed, "targets": c.targets_computed}
@@ -81,6 +86,7 @@ class RunInfo:
     workers: int
     peak_rss_mib: dict  # worker address -> peak resident memory, MiB
     sky_nights_computed: dict  # worker address -> nights whose sky it computed
+    cpu_s: dict  # worker address -> CPU seconds the worker process has used (its start included)
 
 
 @contextmanager
@@ -149,6 +155,7 @@ def run_realizations(client, setup: SeasonSetup, realizations: int,
             progress(done_r, realizations, done_n, n * realizations)
     info = RunInfo(workers=len(client.scheduler_info()["workers"]),
                    peak_rss_mib={w: round(v, 1) for w, v in sorted(client.run(peak_rss_mib).items())},
-                   sky_nights_computed={w: v["nights"] for w, v in sorted(client.run(_sky_computed).items())})
+                   sky_nights_computed={w: v["nights"] for w, v in sorted(client.run(_sky_computed).items())},
+                   cpu_s={w: round(v, 1) for w, v in sorted(client.run(_cpu_s).items())})
     return sorted(outcomes, key=lambda o: o.realization), info
 
