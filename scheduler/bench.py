@@ -494,7 +494,10 @@ def write_docs(out: Path, data: dict) -> None:
               "  cannot stay; each of the others earns 0.2 x its value for starting within 2 min of its old start.",
               "- The queue is never shrunk to meet a target: every generated request enters feasibility, and every",
               "  request with a feasible start tonight enters the model.", ""]
-    (out / "benchmarks.md").write_text("\n".join(lines), encoding="utf-8")
+    # the season section (python -m scheduler.season.bench) is kept as it is
+    old = (out / "benchmarks.md").read_text(encoding="utf-8") if (out / "benchmarks.md").exists() else ""
+    season = old[old.find("<!-- season-benchmark:begin -->"):] if "<!-- season-benchmark:begin -->" in old else ""
+    (out / "benchmarks.md").write_text("\n".join(lines) + ("\n" + season if season else ""), encoding="utf-8")
 
 
 def _pct(x) -> str:

@@ -15,7 +15,7 @@ import sys
 
 import click
 
-from scheduler.cli import database, demo, plan, queue, service, sky, web
+from scheduler.cli import database, demo, plan, queue, season, service, sky, web
 from scheduler.cli.common import Ctx
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.report.safe_text import clean
@@ -37,7 +37,7 @@ def cli(ctx: click.Context, db_url: str | None, config_path: str | None) -> None
 
 # The command modules, each adding its commands to the root group. A new module is imported
 # above and listed here.
-COMMAND_MODULES = (database, queue, sky, plan, service, web, demo)
+COMMAND_MODULES = (database, queue, sky, plan, service, web, demo, season)
 
 for _module in COMMAND_MODULES:
     _module.register(cli)

@@ -82,13 +82,14 @@ def program_list(c: Ctx, as_json: bool) -> None:
 @click.option("--json", "as_json", is_flag=True, help="print JSON")
 @pass_ctx
 def program_show(c: Ctx, code: str, as_json: bool) -> None:
-    """One program: tier, allocated, charged and remaining hours, completion."""
-    from scheduler.db import store
+    """One program: tier, allocated, charged and remaining hours, completion; its last stored season outlook."""
+    from scheduler.db import outlook, store
 
     with c.db().session() as s:
         r = store.program_report(s, code)[0]
+        season = outlook.program_outlook(s, code)
     if as_json:
-        echo_json(r)
+        echo_json({**r, "outlook": season} if season is not None else r)
         return
     past = r["hours_remaining"] is not None and r["hours_remaining"] <= 0
     lines = [f"program {r['code']} (PI {clean(r['pi'])}), tier {r['tier']}, weight {r['weight']:g}",
@@ -97,6 +98,8 @@ def program_show(c: Ctx, code: str, as_json: bool) -> None:
              + (" - past its allocation: not planned unless planning.allow_overfill" if past else ""),
              f"  completion {100 * r['completion']:.0f} % ({r['executions_done']} of {r['executions']} executions "
              f"done, {r['requests']} requests)"]
+    if season is not None:
+        lines.append(f"  season outlook: {outlook.outlook_line(season, 'program')}")
     click.echo("\n".join(lines))
 
 
@@ -305,8 +308,9 @@ def _limits_text(r: dict[str, Any]) -> str:
 @click.option("--json", "as_json", is_flag=True, help="print JSON")
 @pass_ctx
 def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> None:
-    """Show one request (and, with --night, when it can be observed)."""
+    """Show one request (and, with --night, when it can be observed), and its last stored season outlook."""
     from scheduler.db import store
+    from scheduler.db.outlook import outlook_line, request_outlook
 
     with c.db().session() as s:
         row = store.get_request(s, request_id)
@@ -314,17 +318,20 @@ def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> N
         spec = store.to_spec(row)
         report = store.latest_conditions(s)
         samples = list(report.samples) if report is not None else []
+        season = request_outlook(s, request_id)
     if night:
         from scheduler.constraints.windows import feasible_windows
 
         d["windows"] = feasible_windows(c.config(), spec, parse_night(night), samples)
     if as_json:
-        echo_json(d)
+        echo_json({**d, "outlook": season} if season is not None else d)
         return
     for k, v in d.items():
         if k == "windows" or v is None:
             continue
         click.echo(f"{k:>20}: {clean(v)}")
+    if season is not None:
+        click.echo(f"{'outlook':>20}: {outlook_line(season, 'request')}")
     if night:
         w = d["windows"]
         click.echo(f"{'night':>20}: {night}")

@@ -269,3 +269,29 @@ class ServiceLock(Base):
     host: Mapped[str] = mapped_column(String(200))
     started_at: Mapped[datetime]
     heartbeat_at: Mapped[datetime]
+
+
+class SeasonOutlook(Base):
+    """One subject's result of a stored season outlook (`season simulate --store`): a request's
+    probability of completion or a program's completion spread. Rows of one run share
+    ``computed_at`` and the run's parameters; the newest row per subject is its outlook."""
+
+    __tablename__ = "season_outlook"
+    __table_args__ = (Index("ix_season_outlook_request", "request_id", "computed_at"),
+                      Index("ix_season_outlook_program", "program_id", "computed_at"))
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    computed_at: Mapped[datetime]
+    season_from: Mapped[date]
+    season_to: Mapped[date]
+    realizations: Mapped[int]
+    seed: Mapped[int]
+    effort: Mapped[int]
+    weather: Mapped[str] = mapped_column(String(200))  # the climatology file's name
+    request_id: Mapped[int | None] = mapped_column(ForeignKey("request.id"))
+    program_id: Mapped[int | None] = mapped_column(ForeignKey("program.id"))
+    p_complete: Mapped[float | None]  # requests
+    completion_mean: Mapped[float | None]  # programs
+    completion_p10: Mapped[float | None]
+    completion_p90: Mapped[float | None]
+    charged_h_mean: Mapped[float | None]

@@ -58,6 +58,8 @@ class NightOutcome:
     hours_by_band: Mapping[str, float] = field(default_factory=dict)  # band -> hours observed
     weather_lost_h: float = 0.0  # dark hours with the dome closed for weather
     idle_dark_h: float = 0.0  # dark hours open to the sky with nothing executing
+    failed: Mapping[int, int] = field(default_factory=dict)  # request id -> executions failed that night
+    builds: int = 0  # plans built that night (the first one and the re-plans)
 
 
 @dataclass(frozen=True)
@@ -136,6 +138,8 @@ def aggregate(programs: Sequence[ProgramInfo], requests: Sequence[RequestInfo],
         "hours_by_band": _by_band(runs),
         "weather_lost_h": spread([sum(n.weather_lost_h for n in o.nights) for o in runs]),
         "idle_dark_h": spread([sum(n.idle_dark_h for n in o.nights) for o in runs]),
+        "failed_executions": spread([sum(sum(n.failed.values()) for n in o.nights) for o in runs]),
+        "builds_per_night": spread([sum(n.builds for n in o.nights) / max(len(o.nights), 1) for o in runs]),
         "cumulative_charged_h_by_tier": _cumulative_by_tier(programs, runs),
     }
 
