@@ -46,8 +46,6 @@ def test_request_import_file_shapes(workdir, name, text, field):
     assert cli_json("request", "list", cwd=workdir) == []
 
 
-@pytest.mark.xfail(strict=True, reason="program add: db/store.add_program should call model.request.validate_program "
-                                       "and the CLI take --hours/--weight as text")
 @pytest.mark.parametrize("args, field", [
     (["NL\n", "--pi", "Dr. X"], "code"),
     (["P2", "--pi", "Dr. \u202eX"], "pi"),
@@ -60,19 +58,16 @@ def test_program_add_refuses(workdir, args, field):
     assert [p["code"] for p in cli_json("program", "list", cwd=workdir)] == ["STAR-1"]
 
 
-@pytest.mark.xfail(strict=True, reason="conditions load --source: the CLI should pass it through model.untrusted.check_text")
 def test_conditions_source_with_escapes_is_refused(workdir):
     f = workdir / "c.csv"
     f.write_text("time,pwv_mm\n2026-12-16T23:00:00Z,1\n", encoding="utf-8")
     _refused(run_cli("conditions", "load", str(f), "--source", "met\x1b]0;owned\x07", cwd=workdir), "source")
 
 
-@pytest.mark.xfail(strict=True, reason="plan build/replan --reason: the CLI should pass it through model.untrusted.check_text")
 def test_replan_reason_with_escapes_is_refused(workdir):
     _refused(run_cli("replan", "--reason", "storm\x1b[2J", cwd=workdir), "reason")
 
 
-@pytest.mark.xfail(strict=True, reason="almanac/plan --night: the CLI should use model.timegrid.parse_date")
 def test_night_at_the_end_of_the_calendar_is_refused(workdir):
     _refused(run_cli("almanac", "--night", "9999-12-31", cwd=workdir), "night")
 

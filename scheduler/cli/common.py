@@ -15,7 +15,7 @@ import click
 
 from scheduler.model.config import ObservatoryConfig, load_config
 from scheduler.model.errors import InputError
-from scheduler.model.timegrid import parse_time
+from scheduler.model.timegrid import parse_date, parse_time
 from scheduler.report.safe_text import clean
 
 CONFIG_FILE = "observatory.toml"
@@ -74,10 +74,8 @@ def _term_width() -> int:
 
 
 def parse_night(text: str) -> date:
-    try:
-        return date.fromisoformat(text)
-    except ValueError:
-        raise InputError("night", f"{text!r} is not a date YYYY-MM-DD (the local evening the night begins)") from None
+    """A --night option: a date YYYY-MM-DD within the years the ephemerides are trusted for."""
+    return parse_date(text, "night")
 
 
 def now_or(text: str | None, field: str) -> datetime:

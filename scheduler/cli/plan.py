@@ -13,7 +13,10 @@ from scheduler.cli.common import Ctx, console, echo_json, now_or, parse_night, p
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import OutcomeResult, RequestStatus
 from scheduler.model.timegrid import iso
+from scheduler.model.untrusted import check_text
 from scheduler.report.safe_text import cell, clean
+
+MAX_REASON = 2000  # characters of a plan's or an order's reason
 
 
 # --------------------------------------------------------------------------- helpers
@@ -64,9 +67,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
 
     if time_limit is not None and not (0.1 <= time_limit <= 3600):
         raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 3600 seconds")
-    reason = (reason or "").strip()
-    if not reason or len(reason) > 2000:
-        raise InputError("reason", "must be 1 to 2000 characters")
+    reason = check_text(reason, "reason", max_len=MAX_REASON)
     now = now_or(now_text, "now")
     config = c.config()
     db = c.db()

@@ -39,10 +39,10 @@ def program() -> None:
 @program.command("add")
 @click.argument("code")
 @click.option("--pi", required=True, help="principal investigator")
-@click.option("--hours", type=float, default=0.0, show_default=True, help="allocated hours (0 to 10000)")
-@click.option("--weight", type=float, default=1.0, show_default=True, help="rank weight in the objective (0 to 100]")
+@click.option("--hours", default="0", show_default=True, help="allocated hours (0 to 10000)")
+@click.option("--weight", default="1", show_default=True, help="rank weight in the objective (0 to 100]")
 @pass_ctx
-def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float) -> None:
+def program_add(c: Ctx, code: str, pi: str, hours: str, weight: str) -> None:
     """Create a program CODE."""
     from scheduler.db import store
 

@@ -11,6 +11,7 @@ import click
 
 from scheduler.cli.common import Ctx, echo_json, pass_ctx
 from scheduler.model.errors import InputError
+from scheduler.model.untrusted import check_text
 from scheduler.report.safe_text import clean
 
 POLL_RANGE = (0.2, 600.0)
@@ -136,6 +137,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
     from scheduler.service.lock import read_lock
 
     _use_db(c, db_url)
+    reason = check_text(reason, "reason", max_len=2000)  # shown by `status` and `plan show`
     if not (1.0 <= timeout_s <= 86400):
         raise InputError("timeout", f"{timeout_s:g} is out of range; allowed 1 to 86400 seconds")
     clock = Clock.from_option(clock_text)

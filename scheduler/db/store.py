@@ -6,7 +6,6 @@ command or a service job is exactly one transaction (all or nothing).
 
 from __future__ import annotations
 
-import re
 from datetime import datetime
 from typing import Any, Iterable
 
@@ -14,12 +13,12 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, contains_eager
 
 from scheduler.model.errors import InputError, NotFoundError
-from scheduler.model.request import ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus
+from scheduler.model.request import (
+    ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus, validate_program,
+)
 from scheduler.model.timegrid import iso
 from scheduler.sky.bodies import parse_ephemeris_csv
 from scheduler.db.models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
-
-PROGRAM_CODE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 
 # request columns copied 1:1 between RequestSpec and the Request row
 _SPEC_FIELDS = (
@@ -33,16 +32,10 @@ _SPEC_FIELDS = (
 
 # --------------------------------------------------------------------------- programs
 
-def add_program(s: Session, code: str, pi: str, hours: float = 0.0, weight: float = 1.0) -> Program:
-    if not PROGRAM_CODE.match(code or ""):
-        raise InputError("code", f"{code!r}: 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit")
-    pi = (pi or "").strip()
-    if not pi or len(pi) > 200 or any(ord(c) < 32 for c in pi):
-        raise InputError("pi", "must be 1 to 200 printable characters")
-    if not (0 <= hours <= 10000):
-        raise InputError("hours", f"{hours} is out of range; allowed 0 to 10000")
-    if not (0 < weight <= 100):
-        raise InputError("weight", f"{weight} is out of range; allowed greater than 0 and at most 100")
+def add_program(s: Session, code: str, pi: str, hours: float | str = 0.0, weight: float | str = 1.0) -> Program:
+    """A new program; its fields are checked by the one rule (model.request.validate_program),
+    whatever the caller: the CLI passes --hours/--weight as typed, so '1_0' is refused there too."""
+    code, pi, hours, weight = validate_program(code, pi, hours, weight)
     if s.scalar(select(Program).where(Program.code == code)) is not None:
         raise InputError("code", f"program {code!r} already exists")
     prog = Program(code=code, pi=pi, hours_allocated=hours, weight=weight)
