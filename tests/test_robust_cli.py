@@ -87,3 +87,78 @@ def test_file_names_with_controls_are_stored_escaped(workdir):
     finally:
         db.dispose()
     assert sources == ["'met\\x1b]0;owned\\x07.csv'", "'dome\\u202ecsv.csv'"]
+
+
+# --------------------------------------------------------------------------- request import
+
+HEADER = "program,target,ra,dec,band,exposure_s"
+
+
+@pytest.mark.parametrize("name, text, field, row", [
+    ("object.json", '[{"program": "STAR-1", "target": {"x": 1}, "ra": 10, "dec": -20, "band": "V", "exposure_s": 100}]',
+     "target", 1),
+    ("list.json", '[{"program": "STAR-1", "target": "a", "ra": [10], "dec": -20, "band": "V", "exposure_s": 100}]',
+     "ra", 1),
+    ("entry.json", '[{"program": "STAR-1", "target": "a", "ra": 10, "dec": -20, "band": "V", "exposure_s": 100}, 7]',
+     "request", 2),
+    ("surplus.csv", f"{HEADER}\nSTAR-1,a,10,-20,V,100\nSTAR-1,b,10,-20,V,100,9\n", "columns", 3),
+    ("cell.csv", f"{HEADER},not_after\nSTAR-1,a,10,-20,V,100," + "9" * 132_000 + "\n", "not_after", 2),
+    ("twice.csv", f"{HEADER},program\nSTAR-1,a,10,-20,V,100,OTHER\n", "program", 1),
+], ids=["json-object-for-text", "json-list-for-ra", "json-entry-not-object", "csv-surplus-value",
+        "csv-cell-over-limit", "csv-program-twice"])
+def test_request_import_names_column_and_row(workdir, name, text, field, row):
+    """request import parses through model.request.parse_import_text: the wrong shape is refused
+    naming the column and the row, and nothing is imported."""
+    f = workdir / name
+    f.write_text(text, encoding="utf-8")
+    line = refused(run_cli("request", "import", str(f), cwd=workdir), field)
+    assert f"row {row}: {field}: " in line
+    assert cli_json("request", "list", cwd=workdir) == []
+
+
+def test_import_refuses_a_past_not_after_unless_allow_past(workdir):
+    """request import passes now= and --allow-past to validate_request."""
+    f = workdir / "past.csv"
+    f.write_text(f"{HEADER},not_after\nSTAR-1,a,10,-20,V,100,2099-01-01T00:00:00Z\n"
+                 f"STAR-1,b,10,-20,V,100,2020-01-01T00:00:00Z\n", encoding="utf-8")
+    line = refused(run_cli("request", "import", str(f), cwd=workdir), "not_after")
+    assert "row 3: " in line and "--allow-past" in line
+    assert cli_json("request", "list", cwd=workdir) == []
+    run_cli("request", "import", str(f), "--allow-past", cwd=workdir, check=True)
+    assert [r["target"] for r in cli_json("request", "list", cwd=workdir)] == ["a", "b"]
+
+
+def test_a_large_import_summarises_its_warnings(workdir):
+    """20,000 rows, 2,223 of them never observable from the (southern) site: a few lines, not thousands."""
+    lines = [HEADER]
+    for i in range(20_000):
+        lines.append(f"STAR-1,T{i},{(i * 0.017) % 360:.3f},{'+75' if i % 9 == 0 else '-30'},V,100")
+    f = workdir / "big.csv"
+    f.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    proc = run_cli("request", "import", str(f), cwd=workdir)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "imported 20000 requests (ids 1-20000)"
+    warnings = proc.stderr.strip().splitlines()
+    assert len(warnings) == 6, proc.stderr
+    assert all("never observable" in w for w in warnings)
+    assert "2223 of 20000 requests are never observable" in warnings[-1]
+    assert "2218 more (ids 46 to 19999: 2218 culminate below the telescope's altitude limit)" in warnings[-1]
+
+
+def test_demo_imports_with_allow_past_once_its_night_is_over(workdir):
+    """The demo's night is fixed (scenario.json): once the clock passes its windows the demo's
+    import takes --allow-past, and the scenario imports whole with it through the real CLI."""
+    import csv
+    from datetime import datetime, timezone
+
+    from scheduler.demo import DATA_DIR, past_flag
+
+    requests = DATA_DIR / "requests.csv"
+    assert past_flag(requests, datetime(2027, 1, 1, tzinfo=timezone.utc)) == ["--allow-past"]
+    assert past_flag(requests, datetime(2026, 12, 16, 18, tzinfo=timezone.utc)) == []
+    with open(DATA_DIR / "programs.csv", encoding="utf-8", newline="") as f:
+        for row in csv.DictReader(f):
+            run_cli("program", "add", row["code"], "--pi", row["pi"], "--hours", row["hours"], "--weight",
+                    row["weight"], cwd=workdir, check=True)
+    out = run_cli("request", "import", str(requests), "--allow-past", cwd=workdir, check=True).stdout
+    assert out.startswith("imported 150 requests")

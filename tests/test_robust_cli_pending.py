@@ -25,11 +25,9 @@ def _refused(proc, field: str) -> None:
     assert "\x1b" not in proc.stderr + proc.stdout
 
 
-IMPORT_WIRING = "request import still parses its file in cli/main.py; call model.request.parse_import_text"
 GOOD = "STAR-1,Invented 1,10,-20,V,100"
 
 
-@pytest.mark.xfail(strict=True, reason=IMPORT_WIRING)
 @pytest.mark.parametrize("name, text, field", [
     ("twice.csv", f"program,target,ra,dec,band,exposure_s,ra\n{GOOD},200\n", "ra"),
     ("deep.json", "[" * 100_000 + "]" * 100_000, "file"),
@@ -72,8 +70,6 @@ def test_night_at_the_end_of_the_calendar_is_refused(workdir):
     _refused(run_cli("almanac", "--night", "9999-12-31", cwd=workdir), "night")
 
 
-@pytest.mark.xfail(strict=True, reason="request add/import: the CLI should pass now= and an --allow-past flag "
-                                       "to validate_request")
 def test_not_after_in_the_past_needs_allow_past(workdir):
     args = ["request", "add", "--program", "STAR-1", "--target", "a", "--ra", "10", "--dec", "-20", "--band", "V",
             "--exposure", "100", "--not-after", "2020-01-01T00:00:00Z"]
