@@ -1,6 +1,6 @@
 """Issue-level bad input and operator mistakes through the real CLI on a real SQLite file.
 
-Companion of tests/test_robust_cli_pending.py (the reproductions as first filed): each test
+Companion of tests/test_robust_cli_reproductions.py (the reproductions as first filed): each test
 here fails on a command line that does not call the shared check named in its docstring.
 """
 

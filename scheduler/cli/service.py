@@ -68,7 +68,7 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
     from scheduler.service.clock import Clock
     from scheduler.service.daemon import Service
     from scheduler.service.lock import STALE_AFTER_S, LockHeld
-    from scheduler.service.log import setup_logging
+    from scheduler.service.log import create_log_file, setup_logging
 
     _use_db(c, db_url)
     lo, hi = POLL_RANGE
@@ -86,7 +86,7 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
     db = c.db()
     if log_file:
         try:
-            Path(log_file).open("a", encoding="utf-8").close()
+            create_log_file(log_file)  # owner-only (0600), like the database
         except OSError as e:
             raise InputError("log-file", f"{log_file}: cannot append ({e.strerror})") from None
     page = _web_thread(db, config, clock, web, once, web_host, web_port, web_token_file)

@@ -1,9 +1,10 @@
-"""Defects whose fix is ready in the core but not yet called by the command line.
+"""The issue's reproductions that needed the command line wired to the core's checks.
 
-Each test states the behaviour the command must have, through the real CLI on a real SQLite
-file, and is marked xfail(strict=True) until the command calls the check named in its reason:
-when the wiring lands the test passes, strict xfail turns that into a failure, and the marker
-must then be removed. None of them may be left marked once the command-line work is done.
+Each test states the behaviour a command must have, through the real CLI on a real SQLite
+file: request import through model.request.parse_import_text, program add through
+validate_program, --source and --reason through model.untrusted.check_text, --night through
+model.timegrid.parse_date, --allow-past, and the 0600 service log (service.log.create_log_file).
+More cases of each are in tests/test_robust_cli.py.
 """
 
 from __future__ import annotations
@@ -77,8 +78,6 @@ def test_not_after_in_the_past_needs_allow_past(workdir):
     assert run_cli(*args, "--allow-past", cwd=workdir).returncode == 0
 
 
-@pytest.mark.xfail(strict=True, reason="serve --log-file: the CLI pre-creates the file with the umask's mode; "
-                                       "call service.log.create_log_file instead")
 def test_serve_log_file_is_private(workdir):
     old = os.umask(0o022)
     try:
