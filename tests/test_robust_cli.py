@@ -162,3 +162,110 @@ def test_demo_imports_with_allow_past_once_its_night_is_over(workdir):
                     row["weight"], cwd=workdir, check=True)
     out = run_cli("request", "import", str(requests), "--allow-past", cwd=workdir, check=True).stdout
     assert out.startswith("imported 150 requests")
+
+
+# --------------------------------------------------------------------------- several forecasts, one night
+
+NIGHT = "2026-12-16"
+BEFORE = "2026-12-16T18:00:00Z"
+# Every request needs PWV <= 3 mm: impossible on the starter defaults (8 mm), so an entry shows
+# that a forecast, not the defaults, was used at its time.
+DRY = "\n".join(["program,target,ra,dec,band,exposure_s,max_pwv_mm"] +
+                [f"STAR-1,DRY-{k},{20 + 18 * k},-30,J,1200,3" for k in range(8)]) + "\n"
+
+
+def forecast(first: str, hours: int, pwv: float) -> str:
+    from datetime import datetime, timedelta
+
+    t0 = datetime.fromisoformat(first.replace("Z", "+00:00"))
+    rows = ["time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome"]
+    rows += [f"{(t0 + timedelta(hours=h)).strftime('%Y-%m-%dT%H:%M:%SZ')},0.7,{pwv},0.0,5,30,open"
+             for h in range(hours + 1)]
+    return "\n".join(rows) + "\n"
+
+
+def load(folder, name: str, text: str) -> None:
+    (folder / name).write_text(text, encoding="utf-8")
+    run_cli("conditions", "load", name, "--source", name, cwd=folder, check=True)
+
+
+def dry_queue(folder) -> None:
+    (folder / "dry.csv").write_text(DRY, encoding="utf-8")
+    run_cli("request", "import", "dry.csv", cwd=folder, check=True)
+
+
+def build_night(folder):
+    return run_cli("plan", "build", "--night", NIGHT, "--now", BEFORE, "--time-limit", "1", "--reason", "test",
+                   cwd=folder)
+
+
+def test_tomorrows_forecast_does_not_replace_tonights(workdir):
+    """The planner takes, per time, the newest report covering it (conditions/merge.py)."""
+    dry_queue(workdir)
+    load(workdir, "tonight.csv", forecast("2026-12-16T22:00:00Z", 12, 2.0))
+    load(workdir, "tomorrow.csv", forecast("2026-12-17T22:00:00Z", 12, 9.0))  # newer, 0 % of tonight
+    proc = build_night(workdir)
+    assert proc.returncode == 0, proc.stderr
+    assert "warning" not in proc.stderr
+    doc = cli_json("plan", "show", cwd=workdir)
+    cond = doc["plan"]["conditions"]
+    assert cond["report_id"] == 1 and cond["report_ids"] == [1] and cond["source"] == "tonight.csv"
+    assert cond["forecast_share"] == 1.0 and cond["warning"] is None
+    assert len(doc["entries"]) >= 4 and {e["predicted_pwv_mm"] for e in doc["entries"]} == {2.0}
+
+
+def test_where_forecasts_overlap_the_newest_wins_and_plan_check_uses_both(workdir):
+    dry_queue(workdir)
+    load(workdir, "night.csv", forecast("2026-12-16T22:00:00Z", 12, 2.0))
+    load(workdir, "update.csv", forecast("2026-12-16T23:00:00Z", 2, 2.5))  # newer, 23:00 to 01:00 only
+    assert build_night(workdir).returncode == 0
+    doc = cli_json("plan", "show", cwd=workdir)
+    assert doc["plan"]["conditions"]["report_ids"] == [2, 1]
+    late = [e for e in doc["entries"] if e["start"] >= "2026-12-17T01:30:00Z"]
+    early = [e for e in doc["entries"] if "2026-12-16T23:00:00Z" <= e["start"] and e["end"] <= "2026-12-17T01:00:00Z"]
+    assert late and {e["predicted_pwv_mm"] for e in late} == {2.0}  # the older report, where the update is silent
+    assert all(e["predicted_pwv_mm"] == 2.5 for e in early)
+    check = run_cli("plan", "check", cwd=workdir)
+    assert check.returncode == 0 and "every entry passes the checker" in check.stdout, check.stdout
+    text = run_cli("plan", "show", cwd=workdir, check=True).stdout
+    assert "report 2 from update.csv" in text and "report 1)" in text
+
+
+@pytest.mark.parametrize("how", ["plan build", "serve --once"])
+def test_a_night_without_its_forecast_warns(workdir, how):
+    """plan build, the service log and status say when forecasts cover less than
+    planning.min_forecast_share of the night (merge.coverage_warning)."""
+    dry_queue(workdir)
+    load(workdir, "tomorrow.csv", forecast("2026-12-17T22:00:00Z", 12, 2.0))
+    if how == "plan build":
+        proc = build_night(workdir)
+        assert proc.returncode == 0, proc.stderr
+        said = proc.stderr
+    else:
+        proc = run_cli("serve", "--once", "--clock", BEFORE, cwd=workdir, timeout=120)
+        assert proc.returncode == 0, proc.stdout + proc.stderr
+        said = next(line for line in proc.stdout.splitlines() if " forecast_coverage_low " in line)
+        assert " WARNING " in said and " share=0 " in said and " min_share=0.5 " in said
+    assert "conditions reports cover 0 % of the night of 2026-12-16" in said
+    assert "min_forecast_share" in said
+    status = run_cli("status", cwd=workdir, check=True).stdout
+    assert "warning:    conditions reports cover 0 % of the night of 2026-12-16" in status
+    assert cli_json("status", cwd=workdir)["plan"]["forecast_share"] == 0.0
+    assert "  warning: conditions reports cover 0 %" in run_cli("plan", "show", cwd=workdir, check=True).stdout
+
+
+def test_the_service_keeps_its_plan_when_a_forecast_for_another_night_arrives(workdir):
+    """The validity check compares the night's merged conditions, not the newest report alone."""
+    dry_queue(workdir)
+    load(workdir, "tonight.csv", forecast("2026-12-16T22:00:00Z", 12, 2.0))
+    clock = "2026-12-16T23:30:00Z"
+    first = run_cli("serve", "--once", "--clock", clock, cwd=workdir, timeout=120)
+    assert " plan_stored version=1 " in first.stdout, first.stdout + first.stderr
+    load(workdir, "tomorrow.csv", forecast("2026-12-17T22:00:00Z", 12, 9.0))
+    second = run_cli("serve", "--once", "--clock", clock, cwd=workdir, timeout=120)
+    assert second.returncode == 0 and " plan_still_valid version=1 " in second.stdout, second.stdout
+    assert " replan_start " not in second.stdout
+    load(workdir, "wet.csv", forecast("2026-12-17T00:00:00Z", 3, 9.0))  # tonight, 00:00 to 03:00: wet
+    third = run_cli("serve", "--once", "--clock", clock, cwd=workdir, timeout=120)
+    assert " replan_start trigger=validity " in third.stdout and "conditions report 3 (wet.csv)" in third.stdout, \
+        third.stdout

@@ -103,6 +103,8 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
         for v in r.violations[1:5]:
             click.echo(f"  {v}", err=True)
         sys.exit(1)
+    if built.conditions_warning:
+        warn(built.conditions_warning)
     doc, _, _ = load_document(c, built.version)
     sm, p = doc["summary"], doc["plan"]
     out = console()
@@ -225,14 +227,6 @@ def plan_check(c: Ctx, version: int | None) -> None:
     click.echo(f"plan {v}: every entry passes the checker")
 
 
-def _plan_samples(c: Ctx, doc) -> list:
-    """The conditions samples a plan was built on (empty: defaults were assumed)."""
-    from scheduler.report.chart import plan_samples
-
-    with c.db().session() as s:
-        return plan_samples(s, doc["plan"]["conditions"]["report_id"])
-
-
 @plan.command("why")
 @click.argument("request_id", type=int)
 @click.option("--version", type=int, help="plan version (default: the newest active plan)")
@@ -241,8 +235,8 @@ def _plan_samples(c: Ctx, doc) -> list:
 def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> None:
     """Why request ID is in the plan, or which constraint or which entries keep it out."""
 
-    from scheduler.conditions.grid import conditions_on_grid
-    from scheduler.db import store
+    from scheduler.db import plans, store
+    from scheduler.planning.planner import Planner, stored_plan_reports
     from scheduler.report.why import explain
     from scheduler.sky.ephemeris import sky_for
 
@@ -250,10 +244,11 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
         spec = store.to_spec(store.get_request(s, request_id))
         weights = store.program_weights(s)
     doc, night, config = load_document(c, version)
+    with c.db().session() as s:  # the conditions the plan was built on: every report it used
+        reports = stored_plan_reports(s, plans.get_plan(s, doc["plan"]["version"]))
     solver_reason = next((u["reason"] for u in doc["unscheduled"] if u["request_id"] == request_id), None)
     sky = sky_for(config.site, night, [spec])[0]
-    cond = conditions_on_grid(_plan_samples(c, doc), night.times_unix, config.defaults,
-                              doc["plan"]["conditions"]["report_id"])
+    cond = Planner(config).night_conditions(night, reports)
     res = explain(config, spec, night, sky, cond, doc, weights, solver_reason)
     if as_json:
         echo_json(res)

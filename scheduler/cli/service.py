@@ -211,6 +211,8 @@ def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
                    f"built {plan_d['created_at']} from {plan_d['planned_from']}, {plan_d['entries']} entries, "
                    f"{plan_d['solver_status']}")
         click.echo(f"reason:     {clean(plan_d['reason'])}")
+        if plan_d.get("conditions_warning"):
+            click.echo(f"warning:    {clean(plan_d['conditions_warning'])}")
     else:
         click.echo("plan:       none yet")
     if rep_d:

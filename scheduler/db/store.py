@@ -9,8 +9,8 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any, Iterable
 
-from sqlalchemy import select
-from sqlalchemy.orm import Session, contains_eager
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session, contains_eager, selectinload
 
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import (
@@ -241,3 +241,26 @@ def store_conditions(s: Session, samples: list, source: str, issued_at: datetime
 
 def latest_conditions(s: Session) -> ConditionsReport | None:
     return s.scalar(select(ConditionsReport).order_by(ConditionsReport.id.desc()).limit(1))
+
+
+def conditions_reports_for(s: Session, start: datetime, end: datetime) -> list[ConditionsReport]:
+    """The reports that can speak for the span [start, end], with their samples: every report
+    whose samples reach into it, and the one(s) that ended last before it (what a report said
+    last, such as the dome state, holds after it; conditions/merge.py decides per time)."""
+    spans = s.execute(select(ConditionsSample.report_id, func.min(ConditionsSample.time),
+                             func.max(ConditionsSample.time))
+                      .where(ConditionsSample.time <= end).group_by(ConditionsSample.report_id)).all()
+    ids = {rid for rid, _first, last in spans if last >= start}
+    ended = [last for _rid, _first, last in spans if last < start]
+    if ended:
+        ids |= {rid for rid, _first, last in spans if last == max(ended)}
+    return conditions_reports(s, ids)
+
+
+def conditions_reports(s: Session, ids) -> list[ConditionsReport]:
+    """These reports with their samples (those that still exist), by id."""
+    ids = list(ids)
+    if not ids:
+        return []
+    return list(s.scalars(select(ConditionsReport).where(ConditionsReport.id.in_(ids))
+                          .options(selectinload(ConditionsReport.samples)).order_by(ConditionsReport.id)))

@@ -143,6 +143,12 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
         "issued_at": iso(report.issued_at) if report else None,
         "covered_fraction": _r(cover, 3),
         "note": None if report else "no conditions report: the configuration's conservative defaults were assumed",
+        # every report the plan used, newest first (per time the newest covering it), the share of
+        # the night they cover and the warning when below planning.min_forecast_share
+        "report_ids": summary.get("conditions_report_ids",
+                                  [plan.conditions_report_id] if plan.conditions_report_id is not None else []),
+        "forecast_share": _r(summary.get("forecast_share"), 3),
+        "warning": summary.get("conditions_warning"),
     }
     return {
         "format": "nightplan-plan/1",

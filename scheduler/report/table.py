@@ -56,9 +56,14 @@ def summary_lines(doc: dict[str, Any]) -> list[str]:
         lines.append(f"  conditions: {c['note']}")
     else:
         cov = c["covered_fraction"]
-        lines.append(f"  conditions assumed: report {c['report_id']} from {c['source']}, issued {c['issued_at']}; "
-                     f"covers {_pct(cov)} of the night" + ("" if cov is None or cov >= 0.999 else
-                                                            " (defaults elsewhere)"))
+        older = [str(i) for i in c.get("report_ids") or [] if i != c["report_id"]]
+        lines.append(f"  conditions assumed: report {c['report_id']} from {c['source']}, issued {c['issued_at']}"
+                     + (f" (and, where it is silent, report{'s' if len(older) > 1 else ''} {', '.join(older)})"
+                        if older else "")
+                     + f"; covers {_pct(cov)} of the night" + ("" if cov is None or cov >= 0.999 else
+                                                              " (defaults elsewhere)"))
+    if c.get("warning"):
+        lines.append(f"  warning: {c['warning']}")
     return lines
 
 
