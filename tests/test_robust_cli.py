@@ -269,3 +269,41 @@ def test_the_service_keeps_its_plan_when_a_forecast_for_another_night_arrives(wo
     third = run_cli("serve", "--once", "--clock", clock, cwd=workdir, timeout=120)
     assert " replan_start trigger=validity " in third.stdout and "conditions report 3 (wet.csv)" in third.stdout, \
         third.stdout
+
+
+# --------------------------------------------------------------------------- the operators' safety net
+
+
+def test_serve_once_exits_non_zero_after_a_failed_replan(workdir):
+    """A re-plan that cannot store its plan (here a real SQLite trigger refuses the write, as a
+    full disk would) makes `serve --once` exit 1, so cron and monitoring notice."""
+    import sqlite3
+
+    dry_queue(workdir)
+    con = sqlite3.connect(workdir / "nightplan.sqlite")
+    con.execute("CREATE TRIGGER refuse_plans BEFORE INSERT ON plan BEGIN SELECT RAISE(ABORT, 'database or disk is "
+                "full'); END")
+    con.commit()
+    con.close()
+    proc = run_cli("serve", "--once", "--clock", BEFORE, cwd=workdir, timeout=120)
+    assert proc.returncode == 1, proc.stdout + proc.stderr
+    assert " replan_failed " in proc.stdout and "disk is full" in proc.stdout
+    assert " service_stopped mode=once exit_code=1 failed_jobs=- failed_replans=1" in proc.stdout
+    assert proc.stderr.strip() == "nightplan: error: serve --once: a job or re-plan failed; see the log above"
+    assert cli_json("plan", "list", cwd=workdir) == []
+
+    # an operator's order that fails is a failure too (the plan in place is still valid)
+    con = sqlite3.connect(workdir / "nightplan.sqlite")
+    con.execute("DROP TRIGGER refuse_plans")
+    con.commit()
+    ok = run_cli("serve", "--once", "--clock", BEFORE, cwd=workdir, timeout=120)
+    assert ok.returncode == 0 and " plan_stored version=1 " in ok.stdout, ok.stdout + ok.stderr
+    con.execute("CREATE TRIGGER refuse_plans BEFORE INSERT ON plan BEGIN SELECT RAISE(ABORT, 'disk I/O error'); END")
+    con.execute("INSERT INTO replan_order (requested_by, reason, requested_at) VALUES ('op@test', 'guider fixed', "
+                "'2026-12-02 10:00:00')")
+    con.commit()
+    con.close()
+    order = run_cli("serve", "--once", "--clock", BEFORE, cwd=workdir, timeout=120)
+    assert order.returncode == 1, order.stdout
+    assert " ERROR order_done orders=1 " in order.stdout and "disk I/O error" in order.stdout
+    assert " plan_still_valid version=1 " in order.stdout and " replan_failed " not in order.stdout

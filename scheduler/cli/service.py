@@ -99,6 +99,9 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
                                     f"stop it first (a dead one is taken over after {STALE_AFTER_S:g} s "
                                     f"without heartbeat)") from None
     if code:
+        if once:
+            where = f"the log ({log_file})" if log_file else "the log above"
+            click.echo(f"nightplan: error: serve --once: a job or re-plan failed; see {where}", err=True)
         sys.exit(code)
 
 

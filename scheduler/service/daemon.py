@@ -53,20 +53,24 @@ class Service:
 
     # ------------------------------------------------------------------ job wrapper
 
-    def _guard(self, name: str, fn: Callable[[], object]) -> Callable[[], None]:
-        """A job that never raises: a failure is one log line and the service keeps running."""
-        def run() -> None:
+    def _guard(self, name: str, fn: Callable[[], object]) -> Callable[[], bool]:
+        """A job that never raises: a failure is one log line and the service keeps running.
+        The wrapped job returns False when it failed."""
+        def run() -> bool:
             if self._stop.is_set():
-                return
+                return True
             try:
                 fn()
             except LockLost as e:
                 self.log.error("lock_lost", error=str(e))
                 self.exit_code = 1
                 self._stop.set()
+                return False
             except Exception as e:  # noqa: BLE001 - keep the service alive
                 first = (str(e).strip().splitlines() or [repr(e)])[0][:500]
                 self.log.error("job_failed", job=name, error=f"{type(e).__name__}: {first}")
+                return False
+            return True
         return run
 
     def _after_feed(self) -> None:
@@ -89,17 +93,26 @@ class Service:
                       heartbeat_min=self.config.planning.heartbeat_min)
 
     def run_once(self) -> int:
-        """--once: every job one time, in order, then release the lock."""
+        """--once: every job one time, in order, then release the lock.
+
+        Exit status 1 when a job failed or a re-plan stored nothing (disk full, a damaged file,
+        the checker refusing the plan): cron and monitoring see it, not only the log.
+        """
         self.start_lock()
         self._started("once")
+        failed_jobs: list[str] = []
         try:
             for name, fn in (("expire", self.jobs.expire), ("feed", self.jobs.ingest_folder),
                              ("orders", self.jobs.take_orders), ("validity", self.jobs.check_validity),
                              ("heartbeat", self.jobs.heartbeat)):
-                self._guard(name, fn)()
+                if not self._guard(name, fn)():
+                    failed_jobs.append(name)
         finally:
             self.lock.release()
-            self.log.info("service_stopped", mode="once")
+            if failed_jobs or self.jobs.failed_replans:
+                self.exit_code = self.exit_code or 1
+            self.log.info("service_stopped", mode="once", exit_code=self.exit_code,
+                          failed_jobs=",".join(failed_jobs) or None, failed_replans=self.jobs.failed_replans)
         return self.exit_code
 
     def run_forever(self) -> int:

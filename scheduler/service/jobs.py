@@ -55,6 +55,7 @@ class Jobs:
         self._unmovable: set[str] = set()
         self._auto_paused_until = 0.0
         self._settle = SettleWatch(config.service.feed_settle_s)  # feed files seen, until they settle
+        self.failed_replans = 0  # re-plans that stored nothing (`serve --once` exits non-zero after one)
 
     # ------------------------------------------------------------------ helpers
 
@@ -97,6 +98,7 @@ class Jobs:
             self.log.error("replan_failed", trigger=trigger, error=f"{type(e).__name__}: {e}")
             ok = False
         if not ok:
+            self.failed_replans += 1
             self._auto_paused_until = time.monotonic() + RETRY_AFTER_FAILURE_S
 
     # ------------------------------------------------------------------ conditions feed
@@ -189,6 +191,8 @@ class Jobs:
         result, version = carry_out_orders(self.db, [o[0] for o in orders],
                                            lambda: self.replan(orders_reason(orders), trigger="order"))
         (self.log.info if version is not None else self.log.error)("order_done", orders=ids, result=result)
+        if version is None:
+            self.failed_replans += 1
         return len(orders)
 
     # ------------------------------------------------------------------ validity
