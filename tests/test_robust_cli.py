@@ -307,3 +307,66 @@ def test_serve_once_exits_non_zero_after_a_failed_replan(workdir):
     assert order.returncode == 1, order.stdout
     assert " ERROR order_done orders=1 " in order.stdout and "disk I/O error" in order.stdout
     assert " plan_still_valid version=1 " in order.stdout and " replan_failed " not in order.stdout
+
+
+def _filled_queue(folder) -> None:
+    lines = [HEADER] + [f"STAR-1,T{i},{i % 360},-30,V,100" for i in range(600)]
+    (folder / "many.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+    run_cli("request", "import", "many.csv", cwd=folder, check=True)
+
+
+def _damage_page(path, page: int) -> None:
+    """Overwrite one page of a closed SQLite file with bytes no page can hold."""
+    import sqlite3
+
+    con = sqlite3.connect(path)
+    size = con.execute("PRAGMA page_size").fetchone()[0]
+    con.close()
+    with open(path, "r+b") as f:
+        f.seek((page - 1) * size)
+        f.write(b"\xa5" * size)
+
+
+def _pages(path) -> tuple[int, int]:
+    """(page count, root page of the request status index) of a closed SQLite file."""
+    import sqlite3
+
+    con = sqlite3.connect(path)
+    n = con.execute("PRAGMA page_count").fetchone()[0]
+    root = con.execute("SELECT rootpage FROM sqlite_master WHERE name = 'ix_request_status'").fetchone()[0]
+    con.close()
+    return n, root
+
+
+def test_db_check_on_a_sound_file(workdir):
+    _filled_queue(workdir)
+    for args in ([], ["--quick"]):
+        proc = run_cli("db", "check", *args, cwd=workdir)
+        assert proc.returncode == 0, proc.stdout + proc.stderr
+        check = "quick_check" if args else "integrity_check"
+        assert proc.stdout.strip() == f"database: {(workdir / 'nightplan.sqlite').resolve()}: PRAGMA {check}: ok"
+
+
+@pytest.mark.parametrize("which", ["middle", "index"])
+def test_a_damaged_page_is_found_and_the_service_refuses_the_file(workdir, which):
+    """A page in the middle of the file (a table's) or an index page: `db check` reports it
+    (exit 1) and `serve` refuses to start. With the index page damaged, ordinary writes still
+    succeed: only the check notices."""
+    _filled_queue(workdir)
+    db = workdir / "nightplan.sqlite"
+    n, index_root = _pages(db)
+    _damage_page(db, n // 2 if which == "middle" else index_root)
+    if which == "index":
+        run_cli("program", "add", "P2", "--pi", "Dr. Aino Vesk", cwd=workdir, check=True)  # unnoticed by a write
+    check = run_cli("db", "check", cwd=workdir)
+    assert check.returncode == 1, check.stdout + check.stderr
+    assert ": PRAGMA integrity_check: DAMAGED" in check.stdout and "restore the latest backup" in check.stdout
+    quick = run_cli("db", "check", "--quick", cwd=workdir)
+    assert quick.returncode == 1 and "PRAGMA quick_check: DAMAGED" in quick.stdout
+    serve = run_cli("serve", "--once", "--log-file", "svc.log", cwd=workdir, timeout=120)
+    assert serve.returncode == 1, serve.stdout + serve.stderr
+    lines = serve.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("nightplan: error: db: sqlite:///nightplan.sqlite is damaged "
+                                                   "(PRAGMA quick_check: "), serve.stderr
+    log = (workdir / "svc.log").read_text(encoding="utf-8")
+    assert " ERROR database_damaged " in log and "service_started" not in log

@@ -74,5 +74,8 @@ def main(argv: list[str] | None = None) -> None:
 
         kind = "database" if isinstance(e, SQLAlchemyError) else type(e).__name__
         first = str(e).strip().splitlines()[0] if str(e).strip() else repr(e)
-        click.echo(f"nightplan: error: {kind}: {clean(first[:300])} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
+        hint = "; `nightplan db check` lists the damage" if kind == "database" and (
+            "malformed" in first or "not a database" in first) else ""
+        click.echo(f"nightplan: error: {kind}: {clean(first[:300])}{hint} (set NIGHTPLAN_DEBUG=1 for the trace)",
+                   err=True)
         sys.exit(1)

@@ -66,7 +66,7 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
     licensed operators decide.
     """
     from scheduler.service.clock import Clock
-    from scheduler.service.daemon import Service
+    from scheduler.service.daemon import DatabaseDamaged, Service
     from scheduler.service.lock import STALE_AFTER_S, LockHeld
     from scheduler.service.log import create_log_file, setup_logging
 
@@ -98,6 +98,12 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
         raise InputError("service", f"another nightplan service already runs on {db.url} ({e.info.describe()}); "
                                     f"stop it first (a dead one is taken over after {STALE_AFTER_S:g} s "
                                     f"without heartbeat)") from None
+    except DatabaseDamaged as e:
+        click.echo(f"nightplan: error: db: {db.url} is damaged ({e.what}: {clean(e.problems[0])}"
+                   f"{f' and {len(e.problems) - 1} more' if len(e.problems) > 1 else ''}); the service does not run "
+                   "on a damaged database: `nightplan db check` lists the damage; restore the latest backup",
+                   err=True)
+        sys.exit(1)
     if code:
         if once:
             where = f"the log ({log_file})" if log_file else "the log above"

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import os
 import random
+import sqlite3
 import time
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -93,6 +94,63 @@ class Database:
 
     def dispose(self) -> None:
         self.engine.dispose()
+
+    def check_integrity(self, *, quick: bool = False) -> tuple[str, list[str]]:
+        """(what was checked, the problems found: empty when the database is sound).
+
+        SQLite: ``PRAGMA integrity_check`` (every page, every index against its table) or, with
+        ``quick``, ``PRAGMA quick_check`` (page structure, no index contents; what the service
+        runs at start). A file too damaged for the check to finish is one problem: SQLite's message.
+        PostgreSQL offers a client no whole-database check: the server answers a catalog query
+        and every nightplan table is read end to end (page-level checks are the server's: data
+        checksums, the amcheck extension). Other databases: the tables are read end to end.
+        """
+        from sqlalchemy import func, select
+        from sqlalchemy.exc import DBAPIError
+        from sqlalchemy.sql import table
+
+        from scheduler.db.models import Base
+
+        dialect = self.engine.dialect.name
+        if dialect == "sqlite":
+            what = "PRAGMA quick_check" if quick else "PRAGMA integrity_check"
+            try:
+                raw = self.engine.raw_connection()
+                try:
+                    cur = raw.cursor()
+                    if quick:
+                        cur.execute("PRAGMA quick_check")
+                    else:
+                        cur.execute("PRAGMA integrity_check")
+                    rows = [str(r[0]) for r in cur.fetchall()]
+                    cur.close()
+                finally:
+                    raw.close()
+            except DBAPIError as e:
+                return what, [f"the check could not finish: {e.orig}"]
+            except sqlite3.DatabaseError as e:  # raised by the cursor itself, outside SQLAlchemy's wrapping
+                return what, [f"the check could not finish: {e}"]
+            lines = [line for r in rows for line in r.splitlines() if line and not line.startswith("*** in database")]
+            return what, [] if lines == ["ok"] else lines
+        if dialect == "postgresql":
+            what = ("PostgreSQL: a catalog query and every nightplan table read end to end (the server offers "
+                    "clients no whole-database check; page checks are its data checksums and amcheck)")
+        else:
+            what = f"{dialect}: every nightplan table read end to end"
+        problems = []
+        with self.engine.connect() as conn:
+            if dialect == "postgresql":
+                try:
+                    conn.execute(select(func.count()).select_from(table("pg_class", schema="pg_catalog"))).scalar()
+                except DBAPIError as e:
+                    return what, [f"catalog query failed: {str(e.orig).strip().splitlines()[0]}"]
+            for t in Base.metadata.sorted_tables:
+                try:
+                    conn.execute(select(func.count()).select_from(t)).scalar()
+                except DBAPIError as e:
+                    problems.append(f"table {t.name}: {str(e.orig).strip().splitlines()[0]}")
+                    conn.rollback()
+        return what, problems
 
 
 def open_db(url: str | None = None, *, create_file: bool = True) -> Database:

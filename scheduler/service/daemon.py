@@ -33,6 +33,15 @@ from scheduler.service.log import EventLog
 MAINTENANCE_S = 60.0
 
 
+class DatabaseDamaged(Exception):
+    """The start-up integrity check found damage: the service refuses to run on the file."""
+
+    def __init__(self, what: str, problems: list[str]):
+        super().__init__(problems[0])
+        self.what = what
+        self.problems = problems
+
+
 class Service:
     def __init__(self, db: Database, config: ObservatoryConfig, *, log: EventLog, clock: Clock,
                  watch: Path | None = None, poll_s: float = 2.0, time_limit_s: float | None = None, web=None):
@@ -80,6 +89,15 @@ class Service:
 
     # ------------------------------------------------------------------ run
 
+    def check_database(self) -> None:
+        """The quick integrity check at start: a damaged database is refused, never served
+        (a write into a damaged file can spread the damage)."""
+        what, problems = self.db.check_integrity(quick=True)
+        if problems:
+            self.log.error("database_damaged", db=self.db.url, check=what, problems=len(problems), first=problems[0])
+            raise DatabaseDamaged(what, problems)
+        self.log.info("database_checked", check=what, result="ok")
+
     def start_lock(self) -> None:
         """Take the database lock (raises LockHeld if a live service has it)."""
         taken = self.lock.acquire()
@@ -98,6 +116,7 @@ class Service:
         Exit status 1 when a job failed or a re-plan stored nothing (disk full, a damaged file,
         the checker refusing the plan): cron and monitoring see it, not only the log.
         """
+        self.check_database()
         self.start_lock()
         self._started("once")
         failed_jobs: list[str] = []
@@ -119,6 +138,7 @@ class Service:
         from apscheduler.executors.pool import ThreadPoolExecutor
         from apscheduler.schedulers.background import BackgroundScheduler
 
+        self.check_database()
         self.start_lock()
         previous = {sig: signal.signal(sig, self._on_signal) for sig in (signal.SIGTERM, signal.SIGINT)}
         sched = BackgroundScheduler(
