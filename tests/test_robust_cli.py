@@ -370,3 +370,46 @@ def test_a_damaged_page_is_found_and_the_service_refuses_the_file(workdir, which
                                                    "(PRAGMA quick_check: "), serve.stderr
     log = (workdir / "svc.log").read_text(encoding="utf-8")
     assert " ERROR database_damaged " in log and "service_started" not in log
+
+
+def test_a_read_only_folder_is_named_and_the_file_can_be_read_read_only(workdir):
+    """SQLite in WAL mode must create FILE-wal and FILE-shm even to read: in a folder the user
+    cannot write, say so and how to open the file read-only (db/session.py)."""
+    import json
+    import os
+    import subprocess
+
+    def lock(on: bool) -> None:
+        if os.geteuid() == 0:  # the superuser writes through a mode of 0555; an immutable folder stops it
+            r = subprocess.run(["chattr", "+i" if on else "-i", str(workdir)], capture_output=True)
+            if r.returncode != 0:
+                pytest.skip(f"cannot make a folder read-only for the superuser here: {r.stderr!r}")
+        else:
+            workdir.chmod(0o555 if on else 0o755)
+
+    lock(True)
+    try:
+        line = refused(run_cli("program", "list", cwd=workdir), "db")
+        assert f"the folder {workdir.resolve()} is read-only for this user" in line
+        full = (workdir / "nightplan.sqlite").resolve()
+        assert f"'sqlite:///file:{full}?mode=ro&uri=true'" in line
+        assert f"'sqlite:///file:{full}?immutable=1&uri=true'" in line
+        url = f"sqlite:///file:{full}?immutable=1&uri=true"
+        ro = run_cli("--db", url, "program", "list", "--json", cwd=workdir)
+        assert ro.returncode == 0, ro.stderr
+        assert [p["code"] for p in json.loads(ro.stdout)] == ["STAR-1"]
+        write = run_cli("--db", url, "program", "add", "P2", "--pi", "Dr. Y", cwd=workdir)
+        assert write.returncode == 1 and "the database is open read-only" in write.stderr
+        assert sorted(p.name for p in workdir.iterdir()) == ["nightplan.sqlite", "observatory.toml"]
+    finally:
+        lock(False)
+    assert [p["code"] for p in cli_json("program", "list", cwd=workdir)] == ["STAR-1"]  # writable again: as usual
+
+
+def test_db_check_on_postgresql_says_what_it_checked(tmp_path, pg_url):
+    """PostgreSQL: what the server offers a client (a catalog query, every table read end to end)."""
+    run_cli("--db", pg_url, "init", cwd=tmp_path, check=True)
+    proc = run_cli("--db", pg_url, "db", "check", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "PostgreSQL: a catalog query and every nightplan table read end to end" in proc.stdout
+    assert proc.stdout.strip().endswith(": ok") and "amcheck" in proc.stdout
