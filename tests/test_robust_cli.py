@@ -413,3 +413,29 @@ def test_db_check_on_postgresql_says_what_it_checked(tmp_path, pg_url):
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert "PostgreSQL: a catalog query and every nightplan table read end to end" in proc.stdout
     assert proc.stdout.strip().endswith(": ok") and "amcheck" in proc.stdout
+
+
+def test_exports_and_charts_follow_the_umask_while_logs_stay_private(workdir):
+    import os
+    import stat
+
+    dry_queue(workdir)
+    load(workdir, "tonight.csv", forecast("2026-12-16T22:00:00Z", 12, 2.0))
+    assert build_night(workdir).returncode == 0
+    old = os.umask(0o022)
+    try:
+        run_cli("plan", "export", "--format", "json", "-o", "plan.json", cwd=workdir, check=True)
+        run_cli("plan", "export", "--format", "csv", "-o", "out/plan.csv", cwd=workdir, check=True)
+        run_cli("plan", "chart", "-o", "plan.png", "--at", "2026-12-17T01:00:00Z", cwd=workdir, check=True)
+        run_cli("serve", "--once", "--log-file", "svc.log", "--clock", BEFORE, cwd=workdir, timeout=120)
+        os.umask(0o027)
+        run_cli("plan", "export", "--format", "json", "-o", "group.json", cwd=workdir, check=True)
+    finally:
+        os.umask(old)
+
+    def mode(name):
+        return stat.S_IMODE(os.stat(workdir / name).st_mode)
+
+    assert [mode(n) for n in ("plan.json", "out/plan.csv", "plan.png", "group.json")] == [0o644, 0o644, 0o644, 0o640]
+    assert mode("svc.log") == 0o600 and mode("nightplan.sqlite") == 0o600
+    assert not [p for p in workdir.rglob(".*.tmp")]  # no temporary file left behind
