@@ -439,3 +439,22 @@ def test_exports_and_charts_follow_the_umask_while_logs_stay_private(workdir):
     assert [mode(n) for n in ("plan.json", "out/plan.csv", "plan.png", "group.json")] == [0o644, 0o644, 0o644, 0o640]
     assert mode("svc.log") == 0o600 and mode("nightplan.sqlite") == 0o600
     assert not [p for p in workdir.rglob(".*.tmp")]  # no temporary file left behind
+
+
+# --------------------------------------------------------------------------- operators' mistakes
+
+
+def test_record_refuses_a_request_not_in_the_plan_unless_unplanned(workdir):
+    dry_queue(workdir)
+    (workdir / "wet.csv").write_text(HEADER + "\nSTAR-1,NEVER,105,70,V,100\n", encoding="utf-8")  # never rises
+    run_cli("request", "import", "wet.csv", cwd=workdir, check=True)
+    load(workdir, "tonight.csv", forecast("2026-12-16T22:00:00Z", 12, 2.0))
+    assert build_night(workdir).returncode == 0
+    planned = {e["request_id"] for e in cli_json("plan", "show", cwd=workdir)["entries"]}
+    assert 9 not in planned and 1 in planned
+    line = refused(run_cli("record", "9", "--result", "done", cwd=workdir), "id")
+    assert "request 9 is in no active plan" in line and "--unplanned" in line
+    assert {r["id"]: r["status"] for r in cli_json("request", "list", cwd=workdir)}[9] == "queued"
+    assert "recorded" in run_cli("record", "9", "--result", "done", "--unplanned", cwd=workdir, check=True).stdout
+    assert "recorded" in run_cli("record", "1", "--result", "done", cwd=workdir, check=True).stdout
+    assert {r["id"]: r["status"] for r in cli_json("request", "list", cwd=workdir)}[9] == "done"

@@ -312,9 +312,13 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
 @click.option("--result", type=click.Choice([r.value for r in OutcomeResult]), required=True, help="what happened")
 @click.option("--exposure", type=float, help="exposure actually achieved, seconds (required for partial)")
 @click.option("--note", help="observer's note (at most 2000 characters)")
+@click.option("--unplanned", is_flag=True, help="the request is in no active plan (observed outside the plan): "
+                                                "record it anyway")
 @pass_ctx
-def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: str | None) -> None:
-    """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back."""
+def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: str | None, unplanned: bool) -> None:
+    """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back.
+
+    The request must be in an active plan (a mistyped id is refused) unless --unplanned."""
     from scheduler.db import plans, store
 
     if result == OutcomeResult.PARTIAL and exposure is None:
@@ -331,6 +335,9 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
             started = [e for e in mine if e.start <= now]
             entry_id = (started[-1] if started else mine[0]).id
         out = store.record_outcome(s, request_id, result, exposure, note, entry_id)
+        if not mine and not unplanned:  # after the outcome's own checks; the transaction rolls back
+            raise InputError("id", f"request {request_id} is in no active plan, so no outcome is expected for it "
+                                   "(a mistyped id?); if it was observed outside the plan, add --unplanned")
         row = store.get_request(s, request_id)
         return out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s
 
