@@ -458,3 +458,31 @@ def test_record_refuses_a_request_not_in_the_plan_unless_unplanned(workdir):
     assert "recorded" in run_cli("record", "9", "--result", "done", "--unplanned", cwd=workdir, check=True).stdout
     assert "recorded" in run_cli("record", "1", "--result", "done", cwd=workdir, check=True).stdout
     assert {r["id"]: r["status"] for r in cli_json("request", "list", cwd=workdir)}[9] == "done"
+
+
+@pytest.mark.parametrize("columns", [80, 30])
+def test_plan_show_fits_the_terminal_and_always_shows_ids_and_start_times(workdir, columns):
+    """At 80 columns (and even 30) every line fits; each entry's id and dated start time show
+    (the night crosses midnight in UTC); other columns are left out first, and the caption says so."""
+    import re
+
+    from rich.cells import cell_len
+
+    dry_queue(workdir)
+    load(workdir, "tonight.csv", forecast("2026-12-16T22:00:00Z", 12, 2.0))
+    assert build_night(workdir).returncode == 0
+    entries = cli_json("plan", "show", cwd=workdir)["entries"]
+    assert len(entries) >= 4
+    out = run_cli("plan", "show", cwd=workdir, env={"COLUMNS": str(columns)}, check=True).stdout
+    lines = out.splitlines()
+    assert max(cell_len(line) for line in lines) <= columns, out
+    for e in entries:
+        start = f"{e['start'][5:10]} {e['start'][11:16]}"  # MM-DD HH:MM
+        assert any(re.match(rf"^│{start}\b.*│ +{e['request_id']} │", line) for line in lines), (start, out)
+    caption = " ".join(out.split())
+    assert "left out at this width:" in caption and "merit" in caption
+    if columns == 30:
+        assert "end times" in caption
+    wide = run_cli("plan", "show", cwd=workdir, env={"COLUMNS": "200"}, check=True).stdout
+    assert "merit" in wide.splitlines()[9] or any("merit" in line and "┃" in line for line in wide.splitlines())
+    assert "left out" not in wide

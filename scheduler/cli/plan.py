@@ -17,6 +17,7 @@ from scheduler.model.untrusted import check_text
 from scheduler.report.safe_text import cell, clean
 
 MAX_REASON = 2000  # characters of a plan's or an order's reason
+MIN_TABLE_WIDTH = 30  # `plan show` fits its table to the terminal down to this width
 
 
 # --------------------------------------------------------------------------- helpers
@@ -141,7 +142,7 @@ def plan_show(c: Ctx, version: int | None, show_unscheduled: bool, as_json: bool
     if as_json:
         echo_json(doc)
         return
-    print_plan(console(), doc, unscheduled=show_unscheduled)
+    print_plan(console(min_width=MIN_TABLE_WIDTH), doc, unscheduled=show_unscheduled)
 
 
 @plan.command("list")
