@@ -486,3 +486,24 @@ def test_plan_show_fits_the_terminal_and_always_shows_ids_and_start_times(workdi
     wide = run_cli("plan", "show", cwd=workdir, env={"COLUMNS": "200"}, check=True).stdout
     assert "merit" in wide.splitlines()[9] or any("merit" in line and "┃" in line for line in wide.splitlines())
     assert "left out" not in wide
+
+
+def test_next_in_the_afternoon_says_when_the_night_starts(workdir):
+    dry_queue(workdir)
+    load(workdir, "tonight.csv", forecast("2026-12-16T22:00:00Z", 12, 2.0))
+    assert build_night(workdir).returncode == 0
+    doc = cli_json("plan", "show", cwd=workdir)
+    first = min(doc["entries"], key=lambda e: e["start"])
+    start = doc["night"]["start"]  # 23:20 UTC at the starter site
+    out = run_cli("next", "--at", "2026-12-16T15:00:00Z", cwd=workdir, check=True).stdout
+    now = next(line for line in out.splitlines() if line.startswith("NOW"))
+    assert "move to" not in now
+    assert now.startswith(f"NOW   the night has not begun: it starts at {start[11:16]} UTC")
+    js = cli_json("next", "--at", "2026-12-16T15:00:00Z", cwd=workdir)
+    assert js["night_started"] is False and js["state"] == "before"
+    assert 8 * 60 + 20 <= js["minutes_to_night"] <= 8 * 60 + 21  # 15:00 to 23:20:33 UTC
+    m = int(round(js["minutes_to_night"]))
+    assert f"in {m // 60} h {m % 60:02d} min" in now
+    assert f"the first entry, #{first['request_id']} {first['target']}," in now
+    inside = run_cli("next", "--at", start, cwd=workdir, check=True).stdout  # the night has begun: move to it
+    assert f"NOW   nothing in progress: move to #{first['request_id']} {first['target']}" in inside

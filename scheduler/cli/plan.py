@@ -299,6 +299,13 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
         click.echo("NOW   the plan is finished for this night")
     elif res["state"] == "empty":
         click.echo("NOW   the plan has no entries")
+    elif not res["night_started"]:
+        first = res["upcoming"][0]
+        mins = int(round(res["minutes_to_night"]))
+        click.echo(f"NOW   the night has not begun: it starts at {hm(res['night_start'])} UTC "
+                   f"({hm(res['night_start_local'])} local), in {mins // 60} h {mins % 60:02d} min; the first entry, "
+                   f"#{first['request_id']} {clean(first['target'])}, starts at {hm(first['start'])} UTC "
+                   f"({hm(first['start_local'])} local)")
     else:
         first = res["upcoming"][0]
         click.echo(f"NOW   nothing in progress: move to #{first['request_id']} {clean(first['target'])}, which starts "
