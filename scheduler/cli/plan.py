@@ -104,7 +104,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
         for v in r.violations[1:5]:
             click.echo(f"  {v}", err=True)
         sys.exit(1)
-    if built.conditions_warning:
+    if built.conditions_warning and has_conditions:  # with none stored, the warning above said it
         warn(built.conditions_warning)
     doc, _, _ = load_document(c, built.version)
     sm, p = doc["summary"], doc["plan"]
