@@ -507,3 +507,13 @@ def test_next_in_the_afternoon_says_when_the_night_starts(workdir):
     assert f"the first entry, #{first['request_id']} {first['target']}," in now
     inside = run_cli("next", "--at", start, cwd=workdir, check=True).stdout  # the night has begun: move to it
     assert f"NOW   nothing in progress: move to #{first['request_id']} {first['target']}" in inside
+
+
+def test_a_csv_cell_holding_only_a_control_is_not_read_as_empty(workdir):
+    """CSV and JSON agree: `too` holding U+0085 is refused in both (str.strip() used to empty the cell)."""
+    (workdir / "nel.csv").write_text(f"{HEADER},too\nSTAR-1,a,10,-20,V,100,\x85\n", encoding="utf-8")
+    refused(run_cli("request", "import", "nel.csv", cwd=workdir), "too")
+    (workdir / "nel.json").write_text('[{"program": "STAR-1", "target": "a", "ra": 10, "dec": -20, "band": "V", '
+                                      '"exposure_s": 100, "too": "\\u0085"}]', encoding="utf-8")
+    refused(run_cli("request", "import", "nel.json", cwd=workdir), "too")
+    assert cli_json("request", "list", cwd=workdir) == []
