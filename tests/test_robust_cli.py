@@ -350,7 +350,7 @@ def test_db_check_on_a_sound_file(workdir):
 @pytest.mark.parametrize("which", ["middle", "index"])
 def test_a_damaged_page_is_found_and_the_service_refuses_the_file(workdir, which):
     """A page in the middle of the file (a table's) or an index page: `db check` reports it
-    (exit 1) and `serve` refuses to start. With the index page damaged, ordinary writes still
+    (exit 1) and `serve` refuses to start (exit 3). With the index page damaged, ordinary writes still
     succeed: only the check notices."""
     _filled_queue(workdir)
     db = workdir / "nightplan.sqlite"
@@ -364,7 +364,7 @@ def test_a_damaged_page_is_found_and_the_service_refuses_the_file(workdir, which
     quick = run_cli("db", "check", "--quick", cwd=workdir)
     assert quick.returncode == 1 and "PRAGMA quick_check: DAMAGED" in quick.stdout
     serve = run_cli("serve", "--once", "--log-file", "svc.log", cwd=workdir, timeout=120)
-    assert serve.returncode == 1, serve.stdout + serve.stderr
+    assert serve.returncode == 3, serve.stdout + serve.stderr
     lines = serve.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("nightplan: error: db: sqlite:///nightplan.sqlite is damaged "
                                                    "(PRAGMA quick_check: "), serve.stderr

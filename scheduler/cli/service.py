@@ -15,6 +15,7 @@ from scheduler.model.untrusted import check_text
 from scheduler.report.safe_text import clean
 
 POLL_RANGE = (0.2, 600.0)
+DAMAGED_EXIT = 3  # `serve` refused a damaged database
 
 
 def _use_db(c: Ctx, db_url: str | None) -> None:
@@ -103,7 +104,7 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
                    f"{f' and {len(e.problems) - 1} more' if len(e.problems) > 1 else ''}); the service does not run "
                    "on a damaged database: `nightplan db check` lists the damage; restore the latest backup",
                    err=True)
-        sys.exit(1)
+        sys.exit(DAMAGED_EXIT)  # its own status: restarting will not help (systemd: RestartPreventExitStatus)
     if code:
         if once:
             where = f"the log ({log_file})" if log_file else "the log above"
