@@ -258,7 +258,7 @@ def test_copy_an_upgraded_database_to_postgres(tmp_path, pg_url):
     counts = fill_0001(src)
     migrate.upgrade(src)
     dst = open_db(pg_url)
-    assert copy_database(src, dst) == counts
+    assert copy_database(src, dst) == {**counts, "opportunity": 0}  # a table made after 0001: empty
     check_upgraded(dst, counts)
     dst.dispose()
     src.dispose()

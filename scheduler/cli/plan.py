@@ -243,14 +243,16 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
 
     with c.db().session() as s:  # an unknown id fails before any sky work
         spec = store.to_spec(store.get_request(s, request_id))
-        weights = store.program_weights(s)
+        weights = store.program_states(s)
     doc, night, config = load_document(c, version)
     with c.db().session() as s:  # the conditions the plan was built on: every report it used
         reports = stored_plan_reports(s, plans.get_plan(s, doc["plan"]["version"]))
     solver_reason = next((u["reason"] for u in doc["unscheduled"] if u["request_id"] == request_id), None)
+    from scheduler.constraints.opportunities import count_opportunities
+    later = int(count_opportunities(config, [spec], night.date).future()[0])
     sky = sky_for(config.site, night, [spec])[0]
     cond = Planner(config).night_conditions(night, reports)
-    res = explain(config, spec, night, sky, cond, doc, weights, solver_reason)
+    res = explain(config, spec, night, sky, cond, doc, weights, solver_reason, later)
     if as_json:
         echo_json(res)
         return
@@ -320,10 +322,14 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
 @click.option("--result", type=click.Choice([r.value for r in OutcomeResult]), required=True, help="what happened")
 @click.option("--exposure", type=float, help="exposure actually achieved, seconds (required for partial)")
 @click.option("--note", help="observer's note (at most 2000 characters)")
+@click.option("--charge", type=click.Choice(["none", "program"]),
+              help="who pays the time: program (default for done and partial: the time as planned, or the "
+                   "exposure achieved) or none (default for failed: the telescope's or the weather's fault)")
 @click.option("--unplanned", is_flag=True, help="the request is in no active plan (observed outside the plan): "
                                                 "record it anyway")
 @pass_ctx
-def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: str | None, unplanned: bool) -> None:
+def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: str | None,
+           charge: str | None, unplanned: bool) -> None:
     """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back.
 
     The request must be in an active plan (a mistyped id is refused) unless --unplanned."""
@@ -342,14 +348,15 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
         if mine:
             started = [e for e in mine if e.start <= now]
             entry_id = (started[-1] if started else mine[0]).id
-        out = store.record_outcome(s, request_id, result, exposure, note, entry_id)
+        out = store.record_outcome(s, request_id, result, exposure, note, entry_id, charge)
         if not mine and not unplanned:  # after the outcome's own checks; the transaction rolls back
             raise InputError("id", f"request {request_id} is in no active plan, so no outcome is expected for it "
                                    "(a mistyped id?); if it was observed outside the plan, add --unplanned")
         row = store.get_request(s, request_id)
-        return out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s
+        return (out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s,
+                out.charged_h, row.program.code)
 
-    oid, status, done_n, reps, part, exp = c.db().retrying(work)
+    oid, status, done_n, reps, part, exp, charged_h, code = c.db().retrying(work)
     if status == RequestStatus.DONE:
         tail = "all executions done; it leaves the queue"
     elif result == OutcomeResult.PARTIAL:
@@ -359,8 +366,8 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
         tail = "back in the queue"
     else:
         tail = f"{done_n} of {reps} executions done; the rest stay queued"
-    click.echo(f"outcome {oid} recorded: request {request_id} {result}; {tail} (status {status}). "
-               f"The next plan build reflects it.")
+    click.echo(f"outcome {oid} recorded: request {request_id} {result}; {tail} (status {status}); "
+               f"{charged_h:.2f} h charged to program {code}. The next plan build reflects it.")
 
 
 def register(cli: click.Group) -> None:

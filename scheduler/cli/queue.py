@@ -1,4 +1,4 @@
-"""Commands for principal investigators: `program add|list` and `request add|import|list|show|withdraw`."""
+"""Commands for principal investigators: `program add|list|show` and `request add|import|list|show|withdraw`."""
 
 from __future__ import annotations
 
@@ -30,41 +30,71 @@ def read_ephemeris(path: str | Path, shown: str) -> str:
 
 @click.group()
 def program() -> None:
-    """Science programs: code, PI, allocated hours, weight."""
+    """Science programs: code, PI, tier, allocated hours, weight; hours charged and completion."""
 
 
 @program.command("add")
 @click.argument("code")
 @click.option("--pi", required=True, help="principal investigator")
-@click.option("--hours", default="0", show_default=True, help="allocated hours (0 to 10000)")
+@click.option("--hours", default="0", show_default=True, help="allocated hours (0 to 10000; 0: no allocation)")
 @click.option("--weight", default="1", show_default=True, help="rank weight in the objective (0 to 100]")
+@click.option("--tier", type=int, default=2, show_default=True, help="tier, 1 (highest) to 9: tiers are strict")
 @pass_ctx
-def program_add(c: Ctx, code: str, pi: str, hours: str, weight: str) -> None:
+def program_add(c: Ctx, code: str, pi: str, hours: str, weight: str, tier: int) -> None:
     """Create a program CODE."""
     from scheduler.db import store
 
-    prog = c.db().retrying(lambda s: store.program_dict(store.add_program(s, code, pi, hours, weight)))
-    click.echo(f"program {prog['code']} added (PI {clean(prog['pi'])}, {prog['hours']:g} h, weight {prog['weight']:g})")
+    prog = c.db().retrying(lambda s: store.program_dict(store.add_program(s, code, pi, hours, weight, tier)))
+    click.echo(f"program {prog['code']} added (PI {clean(prog['pi'])}, tier {prog['tier']}, {prog['hours']:g} h, "
+               f"weight {prog['weight']:g})")
+
+
+def _hours(x) -> str:
+    return "-" if x is None else f"{x:.2f}"
 
 
 @program.command("list")
 @click.option("--json", "as_json", is_flag=True, help="print JSON")
 @pass_ctx
 def program_list(c: Ctx, as_json: bool) -> None:
-    """List programs."""
+    """List programs: tier, allocated, charged and remaining hours, completion."""
     from scheduler.db import store
 
     with c.db().session() as s:
-        rows = [store.program_dict(p) for p in store.list_programs(s)]
+        rows = store.program_report(s)
     if as_json:
         echo_json(rows)
         return
     from scheduler.report.safe_text import SafeTable as Table
 
-    t = Table("code", "PI", "hours", "weight", title="programs")
+    t = Table("code", "PI", "tier", "weight", "allocated h", "charged h", "remaining h", "completion", title="programs")
     for r in rows:
-        t.add_row(r["code"], r["pi"], f"{r['hours']:g}", f"{r['weight']:g}")
+        t.add_row(r["code"], r["pi"], str(r["tier"]), f"{r['weight']:g}", f"{r['hours']:g}", _hours(r["hours_charged"]),
+                  _hours(r["hours_remaining"]), f"{100 * r['completion']:.0f} % ({r['executions_done']}/{r['executions']})")
     console().print(t)
+
+
+@program.command("show")
+@click.argument("code")
+@click.option("--json", "as_json", is_flag=True, help="print JSON")
+@pass_ctx
+def program_show(c: Ctx, code: str, as_json: bool) -> None:
+    """One program: tier, allocated, charged and remaining hours, completion."""
+    from scheduler.db import store
+
+    with c.db().session() as s:
+        r = store.program_report(s, code)[0]
+    if as_json:
+        echo_json(r)
+        return
+    past = r["hours_remaining"] is not None and r["hours_remaining"] <= 0
+    lines = [f"program {r['code']} (PI {clean(r['pi'])}), tier {r['tier']}, weight {r['weight']:g}",
+             f"  allocated {r['hours']:g} h" + (" (no allocation: not balanced)" if r["hours"] <= 0 else ""),
+             f"  charged {r['hours_charged']:.2f} h, remaining {_hours(r['hours_remaining'])} h"
+             + (" - past its allocation: not planned unless planning.allow_overfill" if past else ""),
+             f"  completion {100 * r['completion']:.0f} % ({r['executions_done']} of {r['executions']} executions "
+             f"done, {r['requests']} requests)"]
+    click.echo("\n".join(lines))
 
 
 # --------------------------------------------------------------------------- requests

@@ -74,6 +74,7 @@ class Program(Base):
     pi: Mapped[str] = mapped_column(String(200))
     hours_allocated: Mapped[float] = mapped_column(default=0.0)
     weight: Mapped[float] = mapped_column(default=1.0)
+    tier: Mapped[int] = mapped_column(default=2, server_default="2")  # 1 = most important; tiers are strict
     created_at: Mapped[datetime] = mapped_column(default=utcnow)
 
     requests: Mapped[list[Request]] = relationship(back_populates="program")
@@ -204,6 +205,11 @@ class PlanEntry(Base):
     moon_sep_deg: Mapped[float | None]
     value: Mapped[float] = mapped_column(default=0.0)
     fixed: Mapped[bool] = mapped_column(default=False)  # kept from the previous plan
+    # factors of the value (model/plan.PlanEntry); plans stored before them read as the defaults
+    tier: Mapped[int] = mapped_column(default=2, server_default="2")
+    urgency: Mapped[float] = mapped_column(default=1.0, server_default="1")
+    opportunities_left: Mapped[int | None]
+    balance: Mapped[float] = mapped_column(default=1.0, server_default="1")
     ra_deg: Mapped[float | None]  # the target's position at the start (a moving target's own)
     dec_deg: Mapped[float | None]
     strehl: Mapped[float | None]  # predicted AO Strehl ratio at the start
@@ -222,6 +228,21 @@ class Outcome(Base):
     exposure_s: Mapped[float | None]
     note: Mapped[str | None] = mapped_column(Text)
     recorded_at: Mapped[datetime] = mapped_column(default=utcnow)
+    charge: Mapped[str] = mapped_column(String(16), default="program", server_default="program")  # none | program
+    charged_h: Mapped[float] = mapped_column(default=0.0, server_default="0")  # hours charged to the program
+
+
+class Opportunity(Base):
+    """Cache of the remaining-opportunities count (constraints/opportunities.py): whether a
+    request (by the hash of the fields the count reads) has a feasible start on a night, for a
+    configuration (by hash). Rows of past nights are removed as nights go by."""
+
+    __tablename__ = "opportunity"
+
+    config_key: Mapped[str] = mapped_column(String(16), primary_key=True)
+    request_key: Mapped[str] = mapped_column(String(16), primary_key=True)
+    night: Mapped[date] = mapped_column(primary_key=True)
+    feasible: Mapped[bool]
 
 
 class ReplanOrder(Base):

@@ -102,6 +102,7 @@ def entries_as_planned(plan: Plan | None) -> list[contract.PlanEntry]:
             airmass_start=e.airmass_start, airmass_end=e.airmass_end, predicted_fwhm_arcsec=e.fwhm_arcsec,
             predicted_pwv_mm=e.pwv_mm, transmission=e.transmission, merit=e.merit,
             moon_sep_deg=e.moon_sep_deg if e.moon_sep_deg is not None else float("nan"), value=e.value,
+            tier=e.tier, urgency=e.urgency, opportunities_left=e.opportunities_left, balance=e.balance,
             fixed=e.fixed, ra_deg=e.ra_deg, dec_deg=e.dec_deg, strehl=e.strehl,
             surface_efficiency=e.surface_efficiency,
         ))
@@ -151,6 +152,8 @@ def store_plan(s: Session, result: contract.PlanResult, *, night: date, reason: 
             fwhm_arcsec=float(e.predicted_fwhm_arcsec), pwv_mm=float(e.predicted_pwv_mm),
             transmission=float(e.transmission), merit=float(e.merit),
             moon_sep_deg=_finite_or_none(e.moon_sep_deg), value=float(e.value), fixed=bool(e.fixed),
+            tier=int(e.tier), urgency=float(e.urgency), balance=float(e.balance),
+            opportunities_left=None if e.opportunities_left is None else int(e.opportunities_left),
             ra_deg=_finite_or_none(e.ra_deg), dec_deg=_finite_or_none(e.dec_deg), strehl=_finite_or_none(e.strehl),
             surface_efficiency=_finite_or_none(e.surface_efficiency),
         ))
@@ -211,6 +214,7 @@ def stored_plan(s: Session, plan: Plan) -> contract.StoredPlan:
         request_id=e.request_id, execution=e.execution, start=e.start, end=e.end, slew_s=e.slew_s,
         transition_s=e.transition_s, setup_s=e.setup_s, exposure_s=e.exposure_s, airmass_start=e.airmass_start,
         airmass_end=e.airmass_end, fwhm_arcsec=e.fwhm_arcsec, pwv_mm=e.pwv_mm, transmission=e.transmission,
+        tier=e.tier, urgency=e.urgency, opportunities_left=e.opportunities_left, balance=e.balance,
         merit=e.merit, moon_sep_deg=e.moon_sep_deg, value=e.value, fixed=e.fixed,
         ra_deg=e.ra_deg, dec_deg=e.dec_deg, strehl=e.strehl, surface_efficiency=e.surface_efficiency,
     ) for e in sorted(plan.entries, key=lambda x: x.start))

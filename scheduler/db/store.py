@@ -6,19 +6,23 @@ command or a service job is exactly one transaction (all or nothing).
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import date, datetime
 from typing import Any, Iterable
 
-from sqlalchemy import func, select
+from sqlalchemy import delete, func, select
 from sqlalchemy.orm import Session, contains_eager, selectinload
 
+from scheduler.model.charging import charged_hours, completion, resolve_charge
 from scheduler.model.errors import InputError, NotFoundError
+from scheduler.model.program import DEFAULT_TIER, ProgramState
 from scheduler.model.request import (
     ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus, validate_program,
 )
 from scheduler.model.timegrid import iso
 from scheduler.sky.bodies import parse_ephemeris_csv
-from scheduler.db.models import ConditionsReport, ConditionsSample, Outcome, Program, Request, utcnow
+from scheduler.db.models import (
+    ConditionsReport, ConditionsSample, Opportunity, Outcome, PlanEntry, Program, Request, utcnow,
+)
 
 # request columns copied 1:1 between RequestSpec and the Request row
 _SPEC_FIELDS = (
@@ -32,23 +36,75 @@ _SPEC_FIELDS = (
 
 # --------------------------------------------------------------------------- programs
 
-def add_program(s: Session, code: str, pi: str, hours: float | str = 0.0, weight: float | str = 1.0) -> Program:
-    """A new program; its fields are checked by the one rule (model.request.validate_program),
-    whatever the caller: the CLI passes --hours/--weight as typed, so '1_0' is refused there too."""
+MAX_TIER = 9
+
+
+def add_program(s: Session, code: str, pi: str, hours: float | str = 0.0, weight: float | str = 1.0,
+                tier: int = DEFAULT_TIER) -> Program:
+    """A new program; code, PI, hours and weight are checked by the one rule
+    (model.request.validate_program), whatever the caller: the CLI passes --hours/--weight as
+    typed, so '1_0' is refused there too."""
     code, pi, hours, weight = validate_program(code, pi, hours, weight)
+    if isinstance(tier, bool) or not isinstance(tier, int) or not (1 <= tier <= MAX_TIER):
+        raise InputError("tier", f"{tier!r} is out of range; allowed a whole number from 1 (highest) to {MAX_TIER}")
     if s.scalar(select(Program).where(Program.code == code)) is not None:
         raise InputError("code", f"program {code!r} already exists")
-    prog = Program(code=code, pi=pi, hours_allocated=hours, weight=weight)
+    prog = Program(code=code, pi=pi, hours_allocated=hours, weight=weight, tier=tier)
     s.add(prog)
     s.flush()
     return prog
 
 
 def program_dict(p: Program, used_hours: float | None = None) -> dict[str, Any]:
-    d = {"code": p.code, "pi": p.pi, "hours": p.hours_allocated, "weight": p.weight, "created_at": iso(p.created_at)}
+    d = {"code": p.code, "pi": p.pi, "hours": p.hours_allocated, "weight": p.weight, "tier": p.tier,
+         "created_at": iso(p.created_at)}
     if used_hours is not None:
         d["hours_done"] = round(used_hours, 3)
     return d
+
+
+def charged_hours_by_program(s: Session) -> dict[str, float]:
+    """Hours charged to each program by its recorded outcomes (model/charging.py)."""
+    q = (select(Program.code, func.coalesce(func.sum(Outcome.charged_h), 0.0))
+         .select_from(Program).join(Request, Request.program_id == Program.id, isouter=True)
+         .join(Outcome, Outcome.request_id == Request.id, isouter=True).group_by(Program.code))
+    return {code: float(h or 0.0) for code, h in s.execute(q).all()}
+
+
+def program_states(s: Session) -> dict[str, ProgramState]:
+    """What the planner's value needs of every program: tier, weight, allocated and charged hours."""
+    charged = charged_hours_by_program(s)
+    return {p.code: ProgramState(p.code, tier=int(p.tier), weight=float(p.weight),
+                                 hours_allocated=float(p.hours_allocated), hours_charged=charged.get(p.code, 0.0))
+            for p in list_programs(s)}
+
+
+def program_report(s: Session, code: str | None = None) -> list[dict[str, Any]]:
+    """Per program: allocated, charged and remaining hours, completion (executions done over
+    executions asked, withdrawn requests left out), request counts."""
+    charged = charged_hours_by_program(s)
+    q = (select(Program.code, func.coalesce(func.sum(Request.completed_repeats), 0), func.coalesce(func.sum(Request.repeats), 0),
+                func.count(Request.id))
+         .select_from(Program).join(Request, (Request.program_id == Program.id) & (Request.status != RequestStatus.WITHDRAWN),
+                                    isouter=True).group_by(Program.code))
+    counts = {c: (int(d), int(t), int(n)) for c, d, t, n in s.execute(q).all()}
+    progs = list_programs(s) if code is None else [get_program(s, code)]
+    out = []
+    for p in progs:
+        done, total, n = counts.get(p.code, (0, 0, 0))
+        h = charged.get(p.code, 0.0)
+        out.append({**program_dict(p), "hours_charged": round(h, 4),
+                    "hours_remaining": round(p.hours_allocated - h, 4) if p.hours_allocated > 0 else None,
+                    "executions_done": done, "executions": total, "requests": n,
+                    "completion": round(completion(done, total), 4)})
+    return out
+
+
+def get_program(s: Session, code: str) -> Program:
+    p = s.scalar(select(Program).where(Program.code == code))
+    if p is None:
+        raise NotFoundError(f"program {code!r} not found")
+    return p
 
 
 def list_programs(s: Session) -> list[Program]:
@@ -189,9 +245,10 @@ def expire_requests(s: Session, now: datetime) -> list[int]:
 # --------------------------------------------------------------------------- outcomes
 
 def record_outcome(s: Session, request_id: int, result: str, exposure_s: float | None = None,
-                   note: str | None = None, plan_entry_id: int | None = None) -> Outcome:
+                   note: str | None = None, plan_entry_id: int | None = None, charge: str | None = None) -> Outcome:
     """done: one execution complete (the request leaves the queue when all repeats are done);
-    partial: the exposure achieved is credited and the rest stays queued; failed: back to the queue."""
+    partial: the exposure achieved is credited and the rest stays queued; failed: back to the queue.
+    charge: none | program (default per result: model/charging.py); the hours are stored with it."""
     try:
         result = OutcomeResult(result)
     except ValueError:
@@ -217,7 +274,16 @@ def record_outcome(s: Session, request_id: int, result: str, exposure_s: float |
     else:
         row.status = RequestStatus.QUEUED
     row.updated_at = utcnow()
-    out = Outcome(request_id=request_id, result=result, exposure_s=exposure_s, note=note, plan_entry_id=plan_entry_id)
+    how = resolve_charge(result.value, charge)
+    planned_s = None
+    if plan_entry_id is not None:
+        e = s.get(PlanEntry, plan_entry_id)
+        if e is not None:
+            planned_s = (e.end - e.start).total_seconds() + float(e.transition_s or 0.0)
+    hours = charged_hours(result.value, how, planned_s=planned_s, request_exposure_s=row.exposure_s,
+                          achieved_exposure_s=exposure_s)
+    out = Outcome(request_id=request_id, result=result, exposure_s=exposure_s, note=note, plan_entry_id=plan_entry_id,
+                  charge=how, charged_h=hours)
     s.add(out)
     s.flush()
     return out
@@ -264,3 +330,28 @@ def conditions_reports(s: Session, ids) -> list[ConditionsReport]:
         return []
     return list(s.scalars(select(ConditionsReport).where(ConditionsReport.id.in_(ids))
                           .options(selectinload(ConditionsReport.samples)).order_by(ConditionsReport.id)))
+
+
+# --------------------------------------------------------------------------- opportunities cache
+
+def load_opportunities(s: Session, config_key: str, first: date, last: date) -> list[tuple[str, str, date, bool]]:
+    """Cached verdicts (config key, request key, night, feasible) for nights first..last."""
+    q = select(Opportunity.config_key, Opportunity.request_key, Opportunity.night, Opportunity.feasible).where(
+        Opportunity.config_key == config_key, Opportunity.night >= first, Opportunity.night <= last)
+    return [tuple(r) for r in s.execute(q).all()]
+
+
+def save_opportunities(s: Session, rows: list[tuple[str, str, date, bool]], before: date) -> None:
+    """Store new verdicts (a row another process stored meanwhile is left as it is) and drop
+    those of nights before ``before``."""
+    s.execute(delete(Opportunity).where(Opportunity.night < before))
+    if not rows:
+        return
+    name = s.get_bind().dialect.name
+    if name == "postgresql":
+        from sqlalchemy.dialects.postgresql import insert
+    else:
+        from sqlalchemy.dialects.sqlite import insert
+    values = [{"config_key": c, "request_key": r, "night": n, "feasible": bool(f)} for c, r, n, f in rows]
+    for i in range(0, len(values), 5000):
+        s.execute(insert(Opportunity).values(values[i:i + 5000]).on_conflict_do_nothing())

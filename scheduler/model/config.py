@@ -124,6 +124,13 @@ class Planning:
     replan_seeing_change_arcsec: float = 0.2
     replan_pwv_change_mm: float = 1.0
     heartbeat_min: float = 30.0
+    # The science value (docs/solver.md): steep priorities, urgency across nights, balance.
+    priority_ratio: float = 2.0  # weight of priority p is priority_ratio ** (p - 5)
+    lookahead_nights: int = 60  # horizon of the remaining-opportunities count
+    urgency_max: float = 4.0  # urgency factor of a request whose last opportunity is tonight
+    balance_max: float = 2.0  # a program's balance factor stays within [1/balance_max, balance_max]
+    allow_overfill: bool = False  # plan programs past their allocated hours (at the lowest balance)
+    opportunity_step_min: int = 10  # coarse grid of the opportunities count, minutes
     # warn (plan build, service log, status) when forecasts cover less than this share of the night
     min_forecast_share: float = 0.5
 
@@ -286,7 +293,9 @@ INSTRUMENT_KEYS = ("name", "bands", "setup_s", "filter_change_s", "instrument_ch
 SAFETY_KEYS = ("sun_avoidance_deg", "max_wind_ms", "max_humidity_pct")
 DEFAULTS_KEYS = ("seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome_open")
 PLANNING_KEYS = ("step_s", "time_limit_s", "replan_time_limit_s", "gap_tolerance", "freeze_horizon_min",
-                 "replan_seeing_change_arcsec", "replan_pwv_change_mm", "heartbeat_min", "min_forecast_share")
+                 "replan_seeing_change_arcsec", "replan_pwv_change_mm", "heartbeat_min", "min_forecast_share",
+                 "priority_ratio", "lookahead_nights", "urgency_max", "balance_max", "allow_overfill",
+                 "opportunity_step_min")
 SERVICE_KEYS = ("feed_settle_s",)
 CLIMATOLOGY_KEYS = ("file",)
 ROOT_KEYS = ("site", "telescope", "band", "instrument", "safety", "defaults", "planning", "service", "climatology")
@@ -445,6 +454,12 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
         replan_seeing_change_arcsec=pt.num("replan_seeing_change_arcsec", 0, 10, 0.2),
         replan_pwv_change_mm=pt.num("replan_pwv_change_mm", 0, 100, 1.0),
         heartbeat_min=pt.num("heartbeat_min", 1, 1440, 30.0),
+        priority_ratio=pt.num("priority_ratio", 1, 10, 2.0),
+        lookahead_nights=_whole(pt, "lookahead_nights", 1, 366, 60),
+        urgency_max=pt.num("urgency_max", 1, 100, 4.0),
+        balance_max=pt.num("balance_max", 1, 10, 2.0),
+        allow_overfill=pt.flag("allow_overfill", False),
+        opportunity_step_min=_whole(pt, "opportunity_step_min", 1, 60, 10),
         min_forecast_share=pt.num("min_forecast_share", 0, 1, 0.5),
     )
 
@@ -453,6 +468,13 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
     climatology = _climatology(root._take("climatology", None, False))
     return ObservatoryConfig(site, telescope, bands, tuple(instruments), safety, defaults, planning, path,
                              service, climatology)
+
+
+def _whole(t: _Table, k: str, lo: int, hi: int, default: int) -> int:
+    v = t.num(k, lo, hi, default)
+    if v != int(v):
+        raise ConfigError(t.key(k), f"must be a whole number from {lo} to {hi}")
+    return int(v)
 
 
 def _climatology(raw: Any) -> ClimatologyRef | None:

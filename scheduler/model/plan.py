@@ -40,6 +40,12 @@ class PlanEntry:
     band: str = ""
     instrument: str = ""
     fixed: bool = False  # kept from the previous plan (in progress or inside the freeze horizon)
+    # Factors of ``value`` (docs/solver.md): program tier, urgency and the remaining
+    # opportunities it came from (nights, tonight included), the program's balance factor.
+    tier: int = 2
+    urgency: float = 1.0
+    opportunities_left: int | None = None
+    balance: float = 1.0
     ra_deg: float | None = None  # ICRS position at the start (a moving target's position then)
     dec_deg: float | None = None
     strehl: float | None = None  # predicted AO Strehl ratio at the start, where AO is modelled
@@ -101,6 +107,10 @@ class StoredEntry:
     moon_sep_deg: float | None
     value: float
     fixed: bool
+    tier: int = 2
+    urgency: float = 1.0
+    opportunities_left: int | None = None
+    balance: float = 1.0
     ra_deg: float | None = None  # position at the start (moving targets: theirs then); None in older plans
     dec_deg: float | None = None
     strehl: float | None = None  # predicted AO Strehl ratio at the start

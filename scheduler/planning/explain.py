@@ -13,12 +13,13 @@ Two answers for a request in the queue that the plan does not hold:
   priority that would give it is shown. This is the local trade only: the solver weighs the
   whole night at once (and stops at its gap), so the figure is a guide, not a promise.
 
-Value of one execution (solve/objective.py): weight x priority/5 x exposure_h x merit.
+Value of one execution (solve/objective.py): within its tier, weight x priority weight x
+exposure_h x merit x urgency x balance; ``value_breakdown`` lays those factors out for one
+execution (a scheduled entry, or the best start of a displaced request).
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Callable, Sequence
@@ -32,7 +33,7 @@ from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import iso, parse_time, utc
 from scheduler.sky.ephemeris import SkyGrid
-from scheduler.solve.objective import science_base_value
+from scheduler.solve.objective import science_base_value, value_factors
 
 MAX_PRIORITY = 10
 
@@ -61,9 +62,11 @@ class WhyNot:
 
 
 def why_not(config: ObservatoryConfig, spec: RequestSpec, sky: SkyGrid, cond: ConditionsGrid,
-            planned_from: datetime, entries: Sequence[dict[str, Any]], weights: dict[str, float],
-            fmt_t: Callable[[float], str]) -> WhyNot:
-    """Why ``spec`` (row 0 of ``sky``) is not among ``entries``, the plan's from ``planned_from``."""
+            planned_from: datetime, entries: Sequence[dict[str, Any]], weights,
+            fmt_t: Callable[[float], str], later_opportunities: int = 0) -> WhyNot:
+    """Why ``spec`` (row 0 of ``sky``) is not among ``entries``, the plan's from ``planned_from``.
+    weights: the programs (ProgramState) or plain weights; later_opportunities: its
+    opportunities after tonight (constraints/opportunities.py), for its urgency."""
     feas = evaluate([spec], np.array([0]), sky, cond, config)
     now_step = sky.night.step_of(planned_from)
     duration = int(feas.duration_steps[0])
@@ -71,8 +74,38 @@ def why_not(config: ObservatoryConfig, spec: RequestSpec, sky: SkyGrid, cond: Co
     if starts.size == 0:
         return WhyNot(now_step, duration, unobservable(spec, config, sky, cond, feas, now_step, fmt_t), None)
     merit = np.asarray(feas.merit[0], dtype=np.float64)
-    trade = displacement(spec, weights, merit, starts, sky.night.times_unix, duration * sky.night.step_s, entries)
+    trade = displacement(spec, weights, merit, starts, sky.night.times_unix, duration * sky.night.step_s, entries,
+                         config=config, opportunities_left=1 + int(later_opportunities))
     return WhyNot(now_step, duration, None, trade)
+
+
+def value_breakdown(config: ObservatoryConfig, spec: RequestSpec, weights, merit: float, *,
+                    opportunities_left: int | None = None, tier: int | None = None, urgency: float | None = None,
+                    balance: float | None = None, value: float | None = None) -> dict[str, Any]:
+    """The factors of one execution's value (docs/solver.md) and their product. Factors a stored
+    entry carries (tier, urgency, balance, opportunities, value) are taken as given; the others
+    are computed from the request, its program and the configuration. With a stored value the
+    merit shown is the one credited (value over the other factors: the lowest merit of the
+    start's 10-minute bucket, solve/objective.merit_buckets) and ``merit_at_start`` the merit
+    at the start itself."""
+    f = value_factors(config, [spec], weights, None if opportunities_left is None else [opportunities_left]).row(0)
+    if tier is not None:
+        f["tier"] = int(tier)
+    if urgency is not None:
+        f["urgency"] = float(urgency)
+    if balance is not None:
+        f["balance"] = float(balance)
+    if opportunities_left is None:
+        f["opportunities_left"] = None
+    f["priority"] = spec.priority
+    f["priority_ratio"] = config.planning.priority_ratio
+    f["merit_at_start"] = float(merit)
+    others = f["program_weight"] * f["priority_weight"] * f["exposure_h"] * f["urgency"] * f["balance"]
+    if value is not None and others > 0:
+        f["merit"], f["value"] = float(value) / others, float(value)
+    else:
+        f["merit"], f["value"] = float(merit), others * float(merit)
+    return f
 
 
 def _entry_spans(entries: Sequence[dict[str, Any]]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -84,23 +117,26 @@ def _entry_spans(entries: Sequence[dict[str, Any]]) -> tuple[np.ndarray, np.ndar
     return e0, e1, ev
 
 
-def displacement(spec: RequestSpec, weights: dict[str, float], merit: np.ndarray, starts: np.ndarray,
-                 times: np.ndarray, duration_s: float, entries: Sequence[dict[str, Any]]) -> Displacement:
+def displacement(spec: RequestSpec, weights, merit: np.ndarray, starts: np.ndarray,
+                 times: np.ndarray, duration_s: float, entries: Sequence[dict[str, Any]], *,
+                 config: ObservatoryConfig | None = None, opportunities_left: int | None = None) -> Displacement:
     """The local trade at each feasible start (see the module docstring). ``merit`` over the grid."""
     e0, e1, ev = _entry_spans(entries)
     s0 = times[starts]
     s1 = s0 + duration_s
     overlap = (e0[None, :] < s1[:, None]) & (e1[None, :] > s0[:, None])  # [starts, entries]
     cost = overlap.astype(np.float64) @ ev if len(entries) else np.zeros(starts.size)
-    base = float(science_base_value(spec, weights))
+    base = float(science_base_value(spec, weights, config, opportunities_left))
     own = base * merit[starts]
     best = int(np.argmax(own - cost))
     need = float(cost[best])
     merit_b = float(merit[starts[best]])
     need_prio = None
     if base > 0 and merit_b > 0:
-        p = math.floor(spec.priority * need / (base * merit_b)) + 1
-        need_prio = p if p <= MAX_PRIORITY else None
+        # the priority weight is ratio ** (p - 5): the lowest p whose value beats the need
+        ratio = (config.planning.priority_ratio if config is not None else 2.0)
+        per_weight = base / ratio ** (spec.priority - 5) * merit_b
+        need_prio = next((p for p in range(1, MAX_PRIORITY + 1) if per_weight * ratio ** (p - 5) > need), None)
     return Displacement(
         starts=starts, windows=start_runs(starts, times),
         blockers=sorted(np.flatnonzero(overlap.any(axis=0)).tolist(), key=lambda i: e0[i]),

@@ -20,7 +20,7 @@ import math
 import time
 from dataclasses import dataclass, field, replace
 from datetime import datetime
-from typing import Callable, Sequence
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -37,7 +37,9 @@ from scheduler.solve.checker import check_plan, true_transition_s
 from scheduler.solve.cpsat import SolveOutcome, solve_problem
 from scheduler.solve.greedy import DispatchTables, dispatch_tables, greedy_plan
 from scheduler.solve.heuristics import insertion_plan, randomized_dispatch, ruin_and_recreate
-from scheduler.solve.objective import VALUE_SCALE, objective_of, plan_value
+from scheduler.constraints.opportunities import SHARED_CACHE, OpportunityCache, count_opportunities
+from scheduler.solve.factors import ProgramState, TierSolve, lexicographic, tier_order
+from scheduler.solve.objective import VALUE_SCALE, objective_of, plan_value, value_factors
 from scheduler.solve.problem import Placement, Problem, build_problem, check_model_feasible
 from scheduler.solve.transitions import slew_s as _slew_s
 
@@ -64,6 +66,10 @@ class BuildOptions:
     progress: called with a short line at each stage and each CP-SAT solution.
     k_best_arcs, bucket_steps: model size (candidate predecessors per execution; merit
       bucket width in grid steps, 1 = exact).
+    opportunities: each request's opportunities after tonight (request id -> nights), from
+      constraints/opportunities.py; tonight counts when the request has a start on tonight's
+      grid. Not given: counted here through ``opportunity_cache`` (default: the process-wide
+      cache, so a long-lived process computes each request and night once).
     """
 
     now: datetime | None = None
@@ -77,6 +83,8 @@ class BuildOptions:
     progress: Callable[[str], None] | None = None
     k_best_arcs: int = 10
     bucket_steps: int = 10
+    opportunities: Mapping[int, int] | None = None
+    opportunity_cache: OpportunityCache | None = None
 
     def __post_init__(self):
         if self.effort is not None:
@@ -94,7 +102,7 @@ class _Build:
     budget: WorkBudget
     gap_tolerance: float
     now_step: int
-    timings: dict = field(default_factory=lambda: dict.fromkeys(("sky", "feasibility", "model", "solve", "check"), 0.0))
+    timings: dict = field(default_factory=lambda: dict.fromkeys(("sky", "feasibility", "value", "model", "solve", "check"), 0.0))
     cpsat_budget: CpSatBudget | None = None
 
     @classmethod
@@ -167,12 +175,15 @@ class Choice:
     message: str = ""
 
 
-def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_weights: dict[str, float],
+def build_plan(config: ObservatoryConfig, requests: list[RequestSpec],
+               program_weights: Mapping[str, float | ProgramState] | None,
                night: Night, cond: ConditionsGrid, *, sky=None, options: BuildOptions | None = None,
                feasibility=None, static=None) -> PlanResult:
     """Build a checked night plan.
 
     sky: a SkyGrid holding every request's target, or a SkyCache, or None (computed here).
+    program_weights: the programs (ProgramState: tier, weight, allocated and charged hours) or
+      plain weights (tier 2, no allocation).
     options: BuildOptions (now, previous plan, time limit or effort, seed, ...).
     feasibility / static: precomputed Feasibility (rows = the active requests in order) or the
       feasibility static layer, to reuse on a re-plan.
@@ -183,6 +194,9 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
         return PlanResult((), (), "EMPTY", 0.0, 0.0, 0.0, 0.0, 0.0, False, run.timings, (), now_step=run.now_step,
                           message="no active requests")
     prep = prepare_problem(run, reqs, program_weights, cond, sky, feasibility, static)
+    tiers = tier_order(prep.problem.exec_tiers())
+    if len(tiers) > 1:
+        return solve_by_tiers(run, prep, tiers)
     t0 = time.perf_counter()  # searches and bounds are optimisation: counted in "solve"
     pool, first_bound = search_for_plans(run, prep)
     bounds = bound_objective(run, prep, pool, first_bound)
@@ -192,7 +206,93 @@ def build_plan(config: ObservatoryConfig, requests: list[RequestSpec], program_w
     outcome = optimise_with_cpsat(run, prep, pool, bounds)
     run.timings["solve"] = search_s + (outcome.runtime_s if outcome else 0.0)
     choice = choose_plan(prep, pool, bounds, outcome)
-    return check_and_finalise(run, prep, pool, bounds, outcome, choice, search_s)
+    result = check_and_finalise(run, prep, pool, bounds, outcome, choice, search_s)
+    one = [{"tier": t, "executions": len(prep.problem.execs), "value": float(choice.objective),
+            "bound": float(choice.bound), "status": choice.status} for t in tiers]
+    return replace(result, stats={**result.stats, "tiers": one, "gap_tier": tiers[0] if tiers and choice.gap else None})
+
+
+def _tier_values(problem: Problem, plan: Sequence[Placement]) -> dict[int, int]:
+    """Integer value (stability bonus included) of each tier's executions in a plan."""
+    tiers = problem.exec_tiers()
+    out: dict[int, int] = {}
+    for p in plan:
+        t = int(tiers[p.exec_index])
+        out[t] = out.get(t, 0) + plan_value(problem, [p])
+    return out
+
+
+def solve_by_tiers(run: _Build, prep: Prepared, tiers: list[int]) -> PlanResult:
+    """Strict tiers (docs/solver.md): one step per tier, most important first. Step k
+    maximises tier k's value over the executions of tiers <= k, every higher tier held at
+    least at the value it reached; lower tiers do not enter (they cannot change a higher
+    tier's optimum). The first step is the whole single-objective build on the top tier
+    alone (searches, bounds, CP-SAT); later steps start from the previous step's plan with
+    the dispatch filling around it (it meets the floors) and let CP-SAT improve it. Each step
+    keeps full integer precision and its own proven bound; the plan's gap is the first tier
+    not proven optimal (factors.lexicographic)."""
+    P = prep.problem
+    et = P.exec_tiers()
+    work = {t: int(np.count_nonzero(et == t)) for t in tiers}
+    plan: list[Placement] = []
+    floors: dict[int, int] = {}
+    steps: list[TierSolve] = []
+    step_stats: list[dict] = []
+    first = None  # (pool, bounds) of the top tier's build, for the statistics and the fallback
+    outcome = None
+    t_search = time.perf_counter()
+    search_s = 0.0
+    for i, k in enumerate(tiers):
+        t0 = time.perf_counter()
+        sel = np.flatnonzero(et <= k)
+        sub = replace(P, execs=[P.execs[j] for j in sel])
+        index_in_sub = {int(j): n for n, j in enumerate(sel)}
+        tables = dispatch_tables(sub)
+        share = work[k] / max(1, sum(work[t] for t in tiers[i:]))
+        if i == 0:
+            g = greedy_plan(sub, tables=tables)
+            sp = replace(prep, problem=sub, tables=tables, greedy=g, greedy_value=plan_value(sub, g))
+            s0 = time.perf_counter()
+            pool, first_bound = search_for_plans(run, sp)
+            bounds = bound_objective(run, sp, pool, first_bound)
+            lag = bounds.lagrangian
+            pool.consider("price-guided insertion", insertion_plan(sub, lag.order, lag.preferred, tables))
+            search_s += time.perf_counter() - s0
+            outcome = optimise_with_cpsat(run, sp, pool, bounds, share=share)
+            choice = choose_plan(sp, pool, bounds, outcome)
+            first = (pool, bounds)
+            sub_plan, value, bound, status = choice.plan, choice.objective, choice.bound, choice.status
+        else:
+            kept = [Placement(index_in_sub[p.exec_index], p.start) for p in plan]
+            hint = greedy_plan(sub, keep=kept, tables=tables)
+            if check_model_feasible(sub, hint):  # the dispatch could not hold them: keep the plan as it is
+                hint = kept
+            sp = replace(prep, problem=sub, tables=tables, greedy=hint, greedy_value=plan_value(sub, hint))
+            pool = PlanPool(sub, hint, f"tier {tiers[i - 1]} plan + dispatch")
+            outcome = optimise_with_cpsat(run, sp, pool, None, share=share, objective_tier=k, floors=dict(floors))
+            hint_k = _tier_values(sub, hint).get(k, 0) / VALUE_SCALE
+            if outcome is not None and outcome.status in ("OPTIMAL", "FEASIBLE") and outcome.objective >= hint_k - 1e-9:
+                sub_plan, value, bound, status = outcome.placements, outcome.objective, outcome.bound, outcome.status
+            else:
+                sub_plan, value, status = hint, hint_k, "GREEDY"
+                bound = max(outcome.bound, value) if outcome is not None and np.isfinite(outcome.bound) else value
+        plan = [Placement(int(sel[p.exec_index]), p.start) for p in sub_plan]
+        # every tier reached so far is held from now on (a tier may have gained on the way)
+        floors = {t: v for t, v in _tier_values(P, plan).items() if t <= k}
+        steps.append(TierSolve(k, float(value), float(bound), status))
+        step_stats.append({"tier": k, "executions": work[k], "value": float(value), "bound": float(bound),
+                           "status": status, "seconds": round(time.perf_counter() - t0, 3)})
+    objective, bound, gap, gap_tier = lexicographic(steps)
+    run.timings["solve"] = time.perf_counter() - t_search
+    used_greedy = steps[-1].status == "GREEDY"
+    status = "GREEDY" if used_greedy else ("OPTIMAL" if gap == 0.0 else "FEASIBLE")
+    message = "" if gap_tier is None else f"tier {gap_tier} not proven optimal"
+    choice = Choice(plan, status, objective, bound, gap, used_greedy, message)
+    pool, bounds = first
+    fallback = PlanPool(P, prep.greedy, "greedy")  # the checker's fallback: the whole queue's dispatch
+    fallback.randomized_runs, fallback.ruin_recreate_iterations = pool.randomized_runs, pool.ruin_recreate_iterations
+    result = check_and_finalise(run, prep, fallback, bounds, outcome, choice, search_s)
+    return replace(result, stats={**result.stats, "tiers": step_stats, "gap_tier": gap_tier})
 
 
 def active_requests(requests: Sequence[RequestSpec]) -> list[RequestSpec]:
@@ -211,7 +311,7 @@ def active_requests(requests: Sequence[RequestSpec]) -> list[RequestSpec]:
     return out
 
 
-def prepare_problem(run: _Build, reqs: list[RequestSpec], program_weights: dict[str, float], cond: ConditionsGrid,
+def prepare_problem(run: _Build, reqs: list[RequestSpec], program_weights, cond: ConditionsGrid,
                     sky, feasibility, static) -> Prepared:
     """Stage 1: sky grid, feasibility, the Problem, and the greedy dispatch (baseline and floor)."""
     config, night, opts = run.config, run.night, run.options
@@ -228,6 +328,11 @@ def prepare_problem(run: _Build, reqs: list[RequestSpec], program_weights: dict[
     run.timings["feasibility"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
+    run.say("value")
+    factors = request_value_factors(run, reqs, program_weights, feasibility)
+    run.timings["value"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
     run.say("model")
     step = int(night.step_s)
     prev = entries_on_grid(opts.previous_entries, night) if opts.previous_entries else []
@@ -235,12 +340,25 @@ def prepare_problem(run: _Build, reqs: list[RequestSpec], program_weights: dict[
     problem = build_problem(
         config, reqs, program_weights, feasibility, sky_grid.alt_deg[rows], sky_grid.az_deg[rows], step_s=step,
         now_step=run.now_step, previous=prev, freeze_steps=int(math.ceil(freeze_min * 60 / step)),
-        bucket_steps=opts.bucket_steps)
+        bucket_steps=opts.bucket_steps, factors=factors)
     tables = dispatch_tables(problem)
     greedy = greedy_plan(problem, tables=tables)
     run.timings["model"] = time.perf_counter() - t0
     return Prepared(reqs, sky_grid, rows, feasibility, cond, prev, problem, tables, greedy,
                     plan_value(problem, greedy))
+
+
+def request_value_factors(run: _Build, reqs: list[RequestSpec], programs, feasibility):
+    """Every request's value factors but merit: its remaining opportunities (tonight from the
+    planning grid, the later nights from the multi-night count), urgency, tier, balance."""
+    config, opts = run.config, run.options
+    if opts.opportunities is not None:
+        later = np.array([int(opts.opportunities.get(int(r.id), 0)) for r in reqs], dtype=np.int64)
+    else:
+        cache = opts.opportunity_cache if opts.opportunity_cache is not None else SHARED_CACHE
+        later = count_opportunities(config, reqs, run.night.date, cache=cache).future()
+    tonight = np.asarray(feasibility.start_ok)[:, run.now_step:].any(axis=1)
+    return value_factors(config, reqs, programs, tonight.astype(np.int64) + later)
 
 
 def search_for_plans(run: _Build, prep: Prepared) -> tuple[PlanPool, LagrangianResult]:
@@ -286,20 +404,28 @@ def bound_objective(run: _Build, prep: Prepared, pool: PlanPool, first: Lagrangi
     return Bounds(lag, seq, seq_its, upper)
 
 
-def optimise_with_cpsat(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> SolveOutcome | None:
+def optimise_with_cpsat(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds | None, *, share: float = 1.0,
+                        objective_tier: int | None = None, floors: dict[int, int] | None = None) -> SolveOutcome | None:
     """Stage 4: CP-SAT on the whole model, hinted with the best plan so far and capped by the
-    bound. None when there is nothing to optimise."""
-    run.say(f"greedy objective {prep.greedy_value / VALUE_SCALE:.3f}; solving")
+    bound. None when there is nothing to optimise. share < 1: this solve takes that share of
+    CP-SAT's time (one step of the strict-tier solve; deterministic work is not shared, each
+    step does the effort's amount); objective_tier / floors: that step (cpsat.build_model)."""
+    run.say(f"greedy objective {prep.greedy_value / VALUE_SCALE:.3f}; solving"
+            + (f" tier {objective_tier}" if objective_tier is not None else ""))
     if not prep.problem.execs:
         return None
-    run.cpsat_budget = limits = run.budget.cpsat()
+    limits = run.budget.cpsat()
+    if share < 1.0 and limits.time_limit_s is not None:
+        limits = replace(limits, time_limit_s=max(0.5, share * limits.time_limit_s))
+    run.cpsat_budget = limits
     opts = run.options
     model_s = [0.0]
     outcome = solve_problem(
         prep.problem, time_limit_s=limits.time_limit_s, deterministic_time_s=limits.deterministic_time_s,
         gap_tolerance=run.gap_tolerance, hint=pool.plan, k_best=opts.k_best_arcs,
-        upper_bound=max(bounds.upper, pool.value), num_workers=opts.num_workers, seed=opts.seed,
-        progress=opts.progress, model_timer=lambda s: model_s.__setitem__(0, s))
+        upper_bound=max(bounds.upper, pool.value) if bounds is not None else None, num_workers=opts.num_workers,
+        seed=opts.seed, progress=opts.progress, model_timer=lambda s: model_s.__setitem__(0, s),
+        objective_tier=objective_tier, floors=floors)
     run.timings["model"] += model_s[0]
     return outcome
 
@@ -471,7 +597,7 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
             transmission=float(feas.transmission[r, s]), merit=float(feas.merit[r, s]),
             moon_sep_deg=float(sky.moon_sep_deg[row, s]), value=ex.coef_at(s) / VALUE_SCALE,
             program=spec.program, target=spec.target, band=spec.band, instrument=inst.name,
-            fixed=ex.fixed_start is not None,
+            fixed=ex.fixed_start is not None, **_entry_factors(problem, ex.req),
             **_entry_physics(sky, row, s, feas, r),
         )
         if prev is not None:
@@ -483,6 +609,14 @@ def _entries(problem: Problem, plan: Sequence[Placement], feas, sky: SkyGrid, sk
         out.append(entry)
         prev = (entry, spec, row)
     return out
+
+
+def _entry_factors(problem: Problem, req: int) -> dict:
+    f = problem.factors
+    if f is None:
+        return {}
+    return {"tier": int(f.tier[req]), "urgency": float(f.urgency[req]),
+            "opportunities_left": int(f.opportunities_left[req]), "balance": float(f.balance[req])}
 
 
 def _entry_physics(sky: SkyGrid, row: int, s: int, feas, r: int) -> dict:

@@ -29,7 +29,7 @@ class PlanInputs:
     """A consistent snapshot of what a plan is built from (read in one transaction)."""
 
     specs: list[RequestSpec]
-    weights: dict[str, float]
+    weights: dict  # program code -> ProgramState (tier, weight, allocated and charged hours)
     reports: tuple[Report, ...]  # the conditions reports that can speak for the night (merge.py picks per time)
     previous: list[PlanEntry]
     previous_version: int | None
@@ -80,6 +80,10 @@ class Planner:
     def __init__(self, config: ObservatoryConfig, sky_cache: SkyCache | None = None):
         self.config = config
         self.sky_cache = sky_cache or SkyCache()
+        from scheduler.constraints.opportunities import OpportunityCache
+
+        self.opportunity_cache = OpportunityCache()  # per request and night, for this process
+        self._opportunities_loaded: date | None = None  # the night whose stored verdicts were read
 
     # ---------------------------------------------------------------- pure-ish helpers
 
@@ -118,22 +122,44 @@ class Planner:
         night = self.night(night_date)
         with db.session() as s:
             specs = store.active_specs(s)
-            weights = store.program_weights(s)
+            weights = store.program_states(s)
             reports = reports_for_night(s, night)
             prev = plans.active_plan(s, night_date)
             previous = plans.entries_as_planned(prev)
             return PlanInputs(specs, weights, reports, previous, prev.id if prev else None)
 
+    def opportunities(self, db: Database | None, night_date: date, specs: list[RequestSpec],
+                      progress: Callable[[str], None] | None = None) -> dict[int, int]:
+        """Each request's opportunities after tonight (constraints/opportunities.py), from the
+        planner's cache: only new or changed requests and a new night are computed. With a
+        database the cache is also kept in its ``opportunity`` table, so a command-line build
+        reuses what an earlier one (or the service) computed."""
+        from scheduler.constraints.opportunities import config_key, count_opportunities
+
+        cache = self.opportunity_cache
+        last = night_date + timedelta(days=self.config.planning.lookahead_nights - 1)
+        if db is not None and self._opportunities_loaded != night_date:
+            with db.session() as s:
+                cache.load(store.load_opportunities(s, config_key(self.config), night_date, last))
+            cache.forget_before(night_date)
+            self._opportunities_loaded = night_date
+        opp = count_opportunities(self.config, specs, night_date, cache=cache, progress=progress)
+        new = cache.take_new()
+        if db is not None and new:
+            db.retrying(lambda s: store.save_opportunities(s, new, before=night_date))
+        return {int(sp.id): int(n) for sp, n in zip(specs, opp.future()) if sp.id is not None}
+
     def build(self, inputs: PlanInputs, night: Night, *, now: datetime | None = None,
               time_limit_s: float | None = None, progress: Callable[[str], None] | None = None,
-              use_previous: bool = True) -> tuple[PlanResult, ConditionsGrid]:
+              use_previous: bool = True, opportunities: dict[int, int] | None = None) -> tuple[PlanResult, ConditionsGrid]:
         from scheduler.planning.pipeline import BuildOptions, build_plan
 
         cond = self.night_conditions(night, inputs.reports)
         result = build_plan(
             self.config, inputs.specs, inputs.weights, night, cond, sky=self.sky_cache,
             options=BuildOptions(now=now, previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
-                                 time_limit_s=time_limit_s, progress=progress),
+                                 time_limit_s=time_limit_s, progress=progress, opportunities=opportunities,
+                                 opportunity_cache=self.opportunity_cache),
         )
         return result, cond
 
@@ -149,8 +175,9 @@ class Planner:
         night = self.night(night_date)
         inputs = self.read_inputs(db, night_date)
         in_night = now is not None and night.start <= now < night.end
+        opportunities = self.opportunities(db, night_date, inputs.specs, progress)
         result, cond = self.build(inputs, night, now=now if in_night else None,
-                                  time_limit_s=time_limit_s, progress=progress)
+                                  time_limit_s=time_limit_s, progress=progress, opportunities=opportunities)
         planned_from = now if in_night else night.start
         share, warning = self.coverage(night, inputs.reports, planned_from)
         if result.violations:  # the checker refused it: never stored

@@ -52,7 +52,8 @@ ENTRY_FIELDS = (
     "setup_s", "airmass_start", "airmass_end", "predicted_fwhm_arcsec", "predicted_pwv_mm", "transmission",
     "merit",
     "execution", "program", "instrument", "exposure_s", "transition_s", "moon_sep_deg", "value", "fixed",
-    "start_local", "end_local", "strehl", "surface_efficiency", "body",
+    "start_local", "end_local", "strehl", "surface_efficiency", "body", "tier", "urgency", "opportunities_left",
+    "balance",
 )
 
 
@@ -117,6 +118,10 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
             "body": r.body if r else None,
             "start_local": _local(e.start, tz),
             "end_local": _local(e.end, tz),
+            "tier": int(e.tier),
+            "urgency": _r(e.urgency, 4),
+            "opportunities_left": e.opportunities_left,
+            "balance": _r(e.balance, 4),
         })
 
     unscheduled = []

@@ -22,7 +22,7 @@ from scheduler.constraints.explain import Unobservable
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import CLOSED_STATUSES, RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso, parse_time, utc
-from scheduler.planning.explain import Displacement, WhyNot, why_not
+from scheduler.planning.explain import Displacement, WhyNot, value_breakdown, why_not
 from scheduler.sky.ephemeris import SkyGrid
 from scheduler.sky.night import Night
 
@@ -45,12 +45,25 @@ def _t(s: str) -> datetime:
     return parse_time(s, "time")
 
 
+def value_line(f: dict[str, Any]) -> str:
+    """One execution's value broken into its factors (planning.explain.value_breakdown)."""
+    n = f.get("opportunities_left")
+    left = "unknown" if n is None else f"{n} night{'s' if n != 1 else ''} left, tonight included"
+    return (f"value {f['value']:.3f} = tier {f['tier']} | program weight {f['program_weight']:g} x priority weight "
+            f"{f['priority_weight']:.3g} (priority {f['priority']}, ratio {f['priority_ratio']:g}) x exposure "
+            f"{f['exposure_h']:.3f} h x merit {f['merit']:.3f} x urgency {f['urgency']:.3f} ({left}) x balance "
+            f"{f['balance']:.3f}")
+
+
 def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: SkyGrid, cond: ConditionsGrid,
-            doc: dict[str, Any], weights: dict[str, float], solver_reason: str | None = None) -> dict[str, Any]:
+            doc: dict[str, Any], weights, solver_reason: str | None = None,
+            later_opportunities: int | None = None) -> dict[str, Any]:
     """Why request ``spec`` is (not) in the plan ``doc`` (report.export.plan_document).
 
     ``sky`` holds this request's target alone (row 0) on the plan's night; ``cond`` the plan's
-    conditions on the same grid.
+    conditions on the same grid. weights: the programs (ProgramState) or plain weights;
+    later_opportunities: the request's opportunities after the plan's night (for a displaced
+    request's urgency; a scheduled entry carries its own).
     """
     fmt_t = time_formatter(config.site.timezone)
     out: dict[str, Any] = {
@@ -62,28 +75,39 @@ def explain(config: ObservatoryConfig, spec: RequestSpec, night: Night, sky: Sky
     mine = [e for e in doc["entries"] if e["request_id"] == spec.id]
     if mine:
         out.update(state="scheduled", entries=mine)
-        out["explanation"] = _scheduled_lines(head, spec, doc, mine, solver_reason, fmt_t)
+        factors = [value_breakdown(config, spec, weights, e["merit"], opportunities_left=e.get("opportunities_left"),
+                                   tier=e.get("tier"), urgency=e.get("urgency"), balance=e.get("balance"),
+                                   value=e.get("value"))
+                   for e in mine]
+        out["factors"] = factors
+        out["explanation"] = _scheduled_lines(head, spec, doc, mine, solver_reason, fmt_t, factors)
         return out
     if spec.status in CLOSED_STATUSES:
         out["state"] = "not_in_queue"
         out["explanation"] = [f"{head} is {spec.status}: it is not in the queue, so no plan schedules it."]
         return out
-    w = why_not(config, spec, sky, cond, _t(doc["plan"]["planned_from"]), doc["entries"], weights, fmt_t)
+    later = 0 if later_opportunities is None else int(later_opportunities)
+    w = why_not(config, spec, sky, cond, _t(doc["plan"]["planned_from"]), doc["entries"], weights, fmt_t, later)
     out["duration_s"] = w.duration_steps * night.step_s
     if w.unobservable is not None:
         _never_feasible(out, head, doc, w, w.unobservable, night, fmt_t)
     else:
+        f = value_breakdown(config, spec, weights, w.displaced.merit_at_best,
+                            opportunities_left=None if later_opportunities is None else 1 + later)
+        out["factors"] = [f]
         _displaced(out, head, doc, spec, w, w.displaced, night, fmt_t)
+        out["explanation"].insert(1, "  at its best start: " + value_line(f))
     return out
 
 
 def _scheduled_lines(head: str, spec: RequestSpec, doc: dict[str, Any], mine: list[dict[str, Any]],
-                     solver_reason: str | None, fmt_t) -> list[str]:
+                     solver_reason: str | None, fmt_t, factors: list[dict[str, Any]]) -> list[str]:
     lines = [f"{head} is scheduled in plan version {doc['plan']['version']}:"]
-    for e in mine:
+    for e, f in zip(mine, factors):
         lines.append(f"  execution {e['execution'] + 1}: {fmt_t(_t(e['start']))} to {fmt_t(_t(e['end']))}, "
                      f"airmass {e['airmass_start']:.2f}->{e['airmass_end']:.2f}, FWHM "
                      f"{e['predicted_fwhm_arcsec']:.2f}\", PWV {e['predicted_pwv_mm']:.1f} mm, merit {e['merit']:.2f}")
+        lines.append(f"    {value_line(f)}")
     owed = spec.remaining_repeats
     if owed > len(mine) and spec.status != RequestStatus.DONE:
         lines.append(f"  {owed - len(mine)} more execution(s) owed do not fit tonight"
@@ -132,8 +156,7 @@ def _displaced(out: dict[str, Any], head: str, doc: dict[str, Any], spec: Reques
         need = d.value_needed
         names = ", ".join(f"#{ent[i]['request_id']}" for i in d.at_best)
         lines.append(f"  best chance at {fmt_t(best_t)}: it would push out {names} (value {need:.3f}); "
-                     f"it has {d.own_value:.3f} (weight x priority {spec.priority}/5 x {spec.exposure_s / 3600:.2f} h x "
-                     f"merit {d.merit_at_best:.2f}), so it needs a value above {need:.3f} to win")
+                     f"it has {d.own_value:.3f}, so it needs a value above {need:.3f} to win")
         lines.append("  " + (f"priority {d.priority_needed} would be enough there" if d.priority_needed else
                              "even priority 10 would not be enough there") +
                      " (local estimate; the solver weighs the whole night)")

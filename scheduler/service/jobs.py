@@ -267,7 +267,8 @@ class Jobs:
         if new_specs:
             remaining = [specs[e.request_id] for e in entries if e.start > now and e.request_id in specs
                          and rows[e.request_id].status in ACTIVE_STATUSES]
-            found = outranking_requests(cfg, night, cache, new_specs, remaining, store.program_weights(s), cond, now)
+            found = outranking_requests(cfg, night, cache, new_specs, remaining, store.program_states(s), cond, now,
+                                        opportunity_cache=self.planner.opportunity_cache)
             reasons += found[:MAX_LISTED]
         return reasons
 

@@ -10,7 +10,7 @@ become the new plan version's reason. Material changes:
   new conditions (named in the constraint catalog's words, with the numbers for seeing, PWV
   and cloud);
 - a new request, feasible tonight after now, that outranks the least valuable entry still to
-  come (science value: program weight x priority x exposure), or any new target of
+  come (tier first, then the value before merit: objective.value_factors), or any new target of
   opportunity, or any new feasible request when nothing is left in the plan;
 - a recorded outcome, or a planned request that left the queue (withdrawn, expired, done).
 """
@@ -31,7 +31,8 @@ from scheduler.constraints.feasibility import Feasibility, evaluate, static_laye
 from scheduler.model.request import RequestSpec
 from scheduler.sky.ephemeris import SkyCache, sky_for
 from scheduler.sky.night import Night
-from scheduler.solve.objective import science_base_value
+from scheduler.constraints.opportunities import SHARED_CACHE, count_opportunities
+from scheduler.solve.objective import value_factors
 
 
 @dataclass(frozen=True)
@@ -91,24 +92,34 @@ def entry_failures(config: ObservatoryConfig, night: Night, sky_cache: SkyCache,
 
 
 def outranking_requests(config: ObservatoryConfig, night: Night, sky_cache: SkyCache, new: Sequence[RequestSpec],
-                        remaining: Sequence[RequestSpec], weights: dict[str, float], cond: ConditionsGrid,
-                        now: datetime) -> list[str]:
-    """New requests worth a re-plan (see module doc)."""
+                        remaining: Sequence[RequestSpec], weights, cond: ConditionsGrid,
+                        now: datetime, opportunity_cache=None) -> list[str]:
+    """New requests worth a re-plan (see module doc). weights: the programs (ProgramState) or
+    plain weights; opportunity_cache: the planner's (default: the process-wide one)."""
     i0 = night.step_of(now)
     if not new or i0 >= night.n_times:
         return []
     feas = feasibility_for(config, night, sky_cache, list(new), cond)
-    floor = min((science_base_value(s, weights) for s in remaining), default=None)
+    # The planner's value (objective.value_factors): tier first, then the value before merit,
+    # with urgency from the same opportunities count (tonight counted: all of these can start).
+    both = list(remaining) + list(new)
+    cache = opportunity_cache if opportunity_cache is not None else SHARED_CACHE
+    later = count_opportunities(config, both, night.date, cache=cache).future()
+    f = value_factors(config, both, weights, 1 + later)
+    key = [(-int(t), float(b)) for t, b in zip(f.tier, f.base)]
+    floor = min(key[:len(remaining)], default=None)
     out = []
     for r, spec in enumerate(new):
         if spec.remaining_repeats <= 0 or not feas.start_ok[r, i0:].any():
             continue
-        value = science_base_value(spec, weights)
+        tier, value = key[len(remaining) + r]
         label = f"new request {spec.id} ({spec.target}, priority {spec.priority})"
         if spec.too:
             out.append(f"{label}: target of opportunity")
         elif floor is None:
             out.append(f"{label}: feasible tonight and nothing else is planned")
-        elif value > floor + 1e-12:
-            out.append(f"{label} outranks the plan (value {value:.3g} > {floor:.3g})")
+        elif tier > floor[0]:
+            out.append(f"{label} outranks the plan (tier {-tier} above the plan's lowest, tier {-floor[0]})")
+        elif tier == floor[0] and value > floor[1] + 1e-12:
+            out.append(f"{label} outranks the plan (value {value:.3g} > {floor[1]:.3g})")
     return out

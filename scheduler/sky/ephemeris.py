@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import threading
 from collections import OrderedDict
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Sequence
 
 import numpy as np
@@ -296,6 +296,62 @@ def _grid(night: Night, frame: _NightFrame, ra, dec, rows: _TargetRows, moving_r
         sun_alt_deg=frame.sun_alt_deg, sun_sep_deg=rows.sun_sep,
         moon_alt_deg=frame.moon_alt_deg, moon_illum=frame.moon_illum,
         moon_phase_angle_deg=frame.moon_phase_angle_deg, moon_sep_deg=rows.moon_sep, **extra,
+    )
+
+
+_ERA_RATE = 2.0 * np.pi * 1.00273781191135448 / 86400.0  # Earth rotation angle, rad per (UT1) second
+
+
+def _rz(theta: np.ndarray) -> np.ndarray:
+    """ERFA's R3: rotation of the frame about z by theta, [n, 3, 3]."""
+    c, s = np.cos(theta), np.sin(theta)
+    out = np.zeros(theta.shape + (3, 3))
+    out[..., 0, 0], out[..., 0, 1], out[..., 1, 0], out[..., 1, 1], out[..., 2, 2] = c, s, -s, c, 1.0
+    return out
+
+
+def night_frame(site: Site, night: Night, support_s: float | None = None) -> _NightFrame:
+    """The per-time part of a sky grid (Earth rotation, Sun, Moon), shared by every target.
+
+    ``night.times_unix`` need not be one evening: the opportunities count passes the coarse
+    instants of many nights at once (targets are then taken to CIRS at the middle of the span).
+
+    support_s: compute astropy's frame only every ``support_s`` seconds and derive each time
+    from its nearest support time: the CIRS -> AltAz rotation turns about the celestial
+    intermediate pole by the Earth rotation angle elapsed (exact but for polar motion and
+    UT1 - UTC drifting by milliseconds over weeks); the Sun's and Moon's topocentric CIRS
+    directions are interpolated linearly between the two support times around it (over two
+    hours the Moon's path and its diurnal parallax bend by < 0.05 deg). For coarse counts over
+    many nights, where astropy's per-time Moon is the cost.
+    """
+    if support_s is None:
+        return _night_frame(site, night)
+    t = np.asarray(night.times_unix, dtype=np.float64)
+    sup = np.unique(np.concatenate([np.floor(t / support_s), np.floor(t / support_s) + 1.0])) * support_s
+    sup_night = Night(date=night.date, sunset=night.sunset, sunrise=night.sunrise, civil_dusk=None, civil_dawn=None,
+                      nautical_dusk=None, nautical_dawn=None, astronomical_dusk=None, astronomical_dawn=None,
+                      step_s=night.step_s, times_unix=sup)
+    f = _night_frame(site, sup_night)
+    rot_t = np.transpose(f.rot, (0, 2, 1))  # AltAz -> CIRS
+    sun_c = np.einsum("nij,nj->ni", rot_t, f.sun_vec)
+    moon_c = np.einsum("nij,nj->ni", rot_t, f.moon_vec)
+    i1 = np.clip(np.searchsorted(sup, t, side="right"), 1, sup.size - 1)
+    i0 = i1 - 1
+    w = ((t - sup[i0]) / (sup[i1] - sup[i0]))[:, None]
+    near = np.where(w[:, 0] < 0.5, i0, i1)
+    rot = f.rot[near] @ _rz(_ERA_RATE * (t - sup[near]))
+
+    def lerp(a):
+        return a[i0] * (1.0 - w) + a[i1] * w
+
+    sun_vec = np.einsum("nij,nj->ni", rot, _unit(lerp(sun_c)))
+    moon_vec = np.einsum("nij,nj->ni", rot, _unit(lerp(moon_c)))
+    phase = lerp(f.moon_phase_angle_deg[:, None])[:, 0]
+    return replace(
+        f, t_mid_unix=float(0.5 * (t[0] + t[-1])), rot=rot,
+        sun_alt_deg=np.degrees(np.arcsin(np.clip(sun_vec[:, 2], -1.0, 1.0))), sun_vec=sun_vec,
+        moon_alt_deg=np.degrees(np.arcsin(np.clip(moon_vec[:, 2], -1.0, 1.0))), moon_vec=moon_vec,
+        moon_illum=0.5 * (1.0 + np.cos(np.radians(phase))), moon_phase_angle_deg=phase,
     )
 
 

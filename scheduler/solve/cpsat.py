@@ -108,11 +108,15 @@ def candidate_arcs(problem: Problem, k_best: int, forced: Sequence[tuple[int, in
 
 
 def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
-                upper_bound: int | None = None) -> tuple[cp_model.CpModel, ModelVars]:
+                upper_bound: int | None = None, objective_tier: int | None = None,
+                floors: dict[int, int] | None = None) -> tuple[cp_model.CpModel, ModelVars]:
     """The whole CP-SAT model. Pure: reads the Problem's arrays, no I/O.
 
     upper_bound: a proven bound on the objective (bounds.py); stated as a constraint it cuts no
     solution and lets the gap-based stop work from the first second.
+    objective_tier / floors (strict tiers, pipeline.solve_by_tiers): maximise the value of the
+    executions of that program tier only, holding each tier t in ``floors`` at a value of at
+    least floors[t] (integer units, stability bonus included, as in the objective).
     """
     P = problem
     model = cp_model.CpModel()
@@ -136,7 +140,7 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
             runs = model.new_constant(1)
             starts_at = model.new_constant(int(ex.fixed_start))
             slots.append(model.new_interval_var(starts_at, ex.duration, starts_at + ex.duration, f"in_progress_{name}"))
-            objective_terms.append(int(ex.bucket_coef[0]) * runs)
+            objective_terms.append((j, int(ex.bucket_coef[0]) * runs))
             present.append(runs)
             start.append(starts_at)
             transition_before.append(model.new_constant(0))
@@ -166,16 +170,16 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
         literals = []
         if ex.fixed_start is not None:
             b = int(np.searchsorted(lo, ex.fixed_start, side="right")) - 1
-            objective_terms.append(int(coef[b]) * runs)
+            objective_terms.append((j, int(coef[b]) * runs))
         elif len(lo) == 1:
-            objective_terms.append(int(coef[0]) * runs)
+            objective_terms.append((j, int(coef[0]) * runs))
         else:
             for b in range(len(lo)):
                 in_bucket = model.new_bool_var(f"starts_in_bucket_{name}_{b}")
                 model.add(starts_at >= int(lo[b])).only_enforce_if(in_bucket)
                 model.add(starts_at <= int(hi[b])).only_enforce_if(in_bucket)
                 literals.append((in_bucket, b))
-                objective_terms.append(int(coef[b]) * in_bucket)
+                objective_terms.append((j, int(coef[b]) * in_bucket))
             model.add(sum(y for y, _ in literals) == runs)
         bucket_literals.append(literals)
 
@@ -227,12 +231,19 @@ def build_model(problem: Problem, arcs: Sequence[tuple[int, int]],
         model.add_implication(keeps, present[j])
         model.add(start[j] >= ex.prev_start - P.stability_window).only_enforce_if(keeps)
         model.add(start[j] <= ex.prev_start + P.stability_window).only_enforce_if(keeps)
-        objective_terms.append(bonus * keeps)
+        objective_terms.append((j, bonus * keeps))
         keep[j] = keeps
 
+    if objective_tier is None:
+        objective = [x for _, x in objective_terms]
+    else:
+        tiers = P.exec_tiers()
+        objective = [x for j, x in objective_terms if tiers[j] == objective_tier]
+        for t, floor in (floors or {}).items():
+            model.add(sum(x for j, x in objective_terms if tiers[j] == t) >= int(floor))
     if upper_bound is not None:
-        model.add(sum(objective_terms) <= int(upper_bound))
-    model.maximize(sum(objective_terms))
+        model.add(sum(objective) <= int(upper_bound))
+    model.maximize(sum(objective))
     return model, ModelVars(present, start, transition_before, bucket_literals, follows, after_gap, keep, gap_start,
                             tmin)
 
@@ -330,12 +341,17 @@ def solve_problem(problem: Problem, *, time_limit_s: float | None = 10.0, determ
                   gap_tolerance: float = 0.01, hint: Sequence[Placement] | None = None,
                   upper_bound: int | None = None, k_best: int = 10, num_workers: int | None = None,
                   seed: int = 0, progress: Callable[[str], None] | None = None,
-                  model_timer: Callable[[float], None] | None = None) -> SolveOutcome:
+                  model_timer: Callable[[float], None] | None = None, objective_tier: int | None = None,
+                  floors: dict[int, int] | None = None) -> SolveOutcome:
     """Build, hint and solve the model. Stops at the time limit, the deterministic-time limit or
-    the relative gap tolerance, whichever comes first (set_parameters)."""
+    the relative gap tolerance, whichever comes first (set_parameters).
+
+    objective_tier / floors: one step of the strict-tier solve (build_model); the outcome's
+    objective, bound and gap are then that tier's."""
     t0 = time.perf_counter()
     arcs = candidate_arcs(problem, k_best, hint_pairs(problem, hint) if hint else ())
-    model, v = build_model(problem, arcs, upper_bound)
+    model, v = (build_model(problem, arcs, upper_bound) if objective_tier is None
+                else build_model(problem, arcs, upper_bound, objective_tier, floors))
     if hint:
         add_hint(model, v, problem, hint)
     n_buckets = sum(max(1, len(b)) for b in v.buckets)
@@ -353,7 +369,11 @@ def solve_problem(problem: Problem, *, time_limit_s: float | None = 10.0, determ
     plan = [Placement(j, int(solver.value(v.start[j]))) for j in range(len(problem.execs))
             if solver.value(v.present[j])]
     plan.sort(key=lambda p: p.start)
-    sci, stab = objective_of(problem, plan)
+    if objective_tier is None:
+        sci, stab = objective_of(problem, plan)
+    else:
+        tiers = problem.exec_tiers()
+        sci, stab = objective_of(problem, [p for p in plan if tiers[p.exec_index] == objective_tier])
     # A solution may leave a keeps_previous_start literal false although the start is inside the
     # window (nothing forces it true): the plan then earns more than the model says. Never less.
     assert sci + stab >= solver.objective_value - 0.5, "plan value below the model objective"

@@ -2,26 +2,31 @@
 (program weight, priority, exposure, merit buckets), of the stability bonus a re-plan pays for
 keeping an entry near its previous start, and of the integer scale CP-SAT works in.
 
-Science value of one execution started at grid step s (docs/solver.md):
+Science value of one execution started at grid step s (docs/solver.md), within its program's
+tier (tiers are strict: pipeline.solve_by_tiers):
 
-    value = program_weight * (priority / 5) * (exposure_s / 3600) * merit(s)
+    value = program_weight * priority_ratio**(priority - 5) * (exposure_s / 3600) * merit(s)
+            * urgency * balance
 
-read on merit buckets (the bucket's lowest merit counts for every start in it), as the integer
+the factors being solve/factors.py's pure functions (value_factors composes them), read on
+merit buckets (the bucket's lowest merit counts for every start in it), as the integer
 coefficient round(VALUE_SCALE * value), at least 1. On a re-plan an execution that starts
 within ``stability_window`` steps of its previous start earns a further
 round(stability_weight * its value at the previous start).
 
 Every search, bound and the CP-SAT model read values from here, so they all optimise the same
-number. Pure: imports only the ground floor (the Problem is read through its attributes).
+number. Pure: imports the ground floor and solve/factors.py (the Problem is read through its attributes).
 """
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Sequence
+from typing import TYPE_CHECKING, Mapping, Sequence
 
 import numpy as np
 
+from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
+from scheduler.solve.factors import ProgramState, RequestFactors, as_programs, request_factors
 from scheduler.model.timegrid import consecutive_runs
 
 if TYPE_CHECKING:  # annotations only: problem.py imports this module
@@ -32,10 +37,28 @@ STABILITY_WEIGHT = 0.2  # bonus for staying, as a share of the execution's value
 STABILITY_WINDOW_STEPS = 2  # "stays": starts within this many grid steps of its previous start
 
 
-def science_base_value(spec: RequestSpec, program_weights: dict[str, float]) -> float:
-    """The value of one execution before merit: weight x priority/5 x exposure hours."""
-    w = float(program_weights.get(spec.program, 1.0))
-    return w * (spec.priority / 5.0) * (spec.exposure_s / 3600.0)
+def value_factors(config: ObservatoryConfig, specs: Sequence[RequestSpec],
+                  programs: Mapping[str, float | ProgramState] | None,
+                  opportunities_left: Sequence[int] | None = None) -> RequestFactors:
+    """Every factor of every request's value but merit (solve/factors.py), with the config's
+    planning knobs. opportunities_left: nights left, tonight included (docs/solver.md); None
+    counts every request as having the whole lookahead (urgency near 1, for callers without a
+    count, such as synthetic-sky tests)."""
+    p = config.planning
+    n_left = [p.lookahead_nights] * len(specs) if opportunities_left is None else opportunities_left
+    return request_factors(specs, as_programs(programs), n_left, priority_ratio=p.priority_ratio,
+                           urgency_max=p.urgency_max, balance_max=p.balance_max, allow_overfill=p.allow_overfill)
+
+
+def science_base_value(spec: RequestSpec, programs: Mapping[str, float | ProgramState] | None,
+                       config: ObservatoryConfig | None = None, opportunities_left: int | None = None) -> float:
+    """The value of one execution before merit: weight x priority weight x exposure hours x
+    urgency x balance (value_factors for one request; the starter planning knobs without a config)."""
+    if config is None:
+        from scheduler.model.config import starter_config
+        config = starter_config()
+    n = None if opportunities_left is None else [opportunities_left]
+    return float(value_factors(config, [spec], programs, n).base[0])
 
 
 def value_coef(base: float, merit: float) -> int:

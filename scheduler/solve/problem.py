@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import NamedTuple, Sequence
+from typing import Mapping, NamedTuple, Sequence
 
 import numpy as np
 
@@ -19,8 +19,9 @@ from scheduler.constraints.catalog import STEP_CONSTRAINTS
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.plan import PlanEntry
-from scheduler.solve.objective import (STABILITY_WEIGHT, STABILITY_WINDOW_STEPS, merit_buckets, science_base_value,
-                                      stability_coef, value_coef)
+from scheduler.solve.factors import DEFAULT_TIER, ProgramState, RequestFactors, as_programs
+from scheduler.solve.objective import (STABILITY_WEIGHT, STABILITY_WINDOW_STEPS, merit_buckets, stability_coef,
+                                      value_coef, value_factors)
 from scheduler.solve.transitions import pair_transition_steps
 
 
@@ -57,7 +58,7 @@ class Problem:
     requests: list[RequestSpec]  # only those in the model
     request_ids: np.ndarray  # [n_req]
     feas_rows: np.ndarray  # [n_req] row in the Feasibility
-    base_value: np.ndarray  # [n_req] weight * priority/5 * exposure_h (before merit)
+    base_value: np.ndarray  # [n_req] weight x priority weight x exposure_h x urgency x balance (before merit)
     instruments: list[str]
     bands: list[str]
     spacing_steps: np.ndarray  # [n_req] min start-to-start spacing between executions
@@ -69,6 +70,18 @@ class Problem:
     stability_window: int  # steps: an execution "stays" if it starts within this of its old start
     unscheduled: dict[int, str]  # request_id -> reason, for requests that are not in the model
     dropped_fixed: list[tuple[int, str]] = field(default_factory=list)
+    factors: RequestFactors | None = None  # [n_req] rows: tier, urgency, opportunities, balance, ...
+
+    @property
+    def tier(self) -> np.ndarray:
+        """[n_req] program tier of each request (1 = most important)."""
+        if self.factors is None:
+            return np.full(len(self.requests), DEFAULT_TIER, dtype=np.int64)
+        return self.factors.tier
+
+    def exec_tiers(self) -> np.ndarray:
+        return self.tier[np.array([ex.req for ex in self.execs], dtype=np.int64)] if self.execs \
+            else np.zeros(0, dtype=np.int64)
 
     def exec_T(self, a: int, b: int) -> int:
         return int(self.T[self.execs[a].req, self.execs[b].req])
@@ -127,12 +140,19 @@ class _ExecutionPlan(NamedTuple):
     prev_start: int | None
 
 
-def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], program_weights: dict[str, float],
+def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec],
+                  program_weights: Mapping[str, float | ProgramState] | None,
                   feas, alt: np.ndarray, az: np.ndarray, *, step_s: int, now_step: int = 0,
                   previous: Sequence[PlanEntry] | None = None, freeze_steps: int = 0,
                   stability_weight: float = STABILITY_WEIGHT, stability_window: int = STABILITY_WINDOW_STEPS,
-                  bucket_steps: int = 10, transition_bucket_steps: int = 15) -> Problem:
+                  bucket_steps: int = 10, transition_bucket_steps: int = 15,
+                  factors: RequestFactors | None = None) -> Problem:
     """Build the Problem. ``feas`` rows follow ``requests``; alt/az are [n_req, n_t] per request.
+
+    program_weights: programs (ProgramState: tier, weight, hours) or plain weights. factors:
+    the requests' value factors (objective.value_factors, rows follow ``requests``); computed
+    here without an opportunities count when not given. A request whose program is past its
+    allocation (balance 0) does not enter the model.
 
     previous: entries of the previous plan. One that started before now and ends after it is
     kept exactly (in progress) if its remaining steps are still feasible; one starting within
@@ -140,6 +160,9 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
     guide the solution (stability bonus, hint).
     """
     n_t = feas.ok.shape[1]
+    if factors is None:
+        factors = value_factors(config, requests, program_weights)
+    programs = as_programs(program_weights)
     prev_by_req = _previous_by_request(previous, now_step)
     keep: list[int] = []
     plans: list[list[_ExecutionPlan]] = []
@@ -149,6 +172,11 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
         rid = int(feas.request_ids[r]) if spec.id is None else int(spec.id)
         prevs = prev_by_req.get(rid, [])
         if spec.remaining_repeats <= 0 and not prevs:
+            continue
+        if factors.balance[r] <= 0:
+            p = programs.get(spec.program)
+            hours = f" ({p.hours_charged:.1f} of {p.hours_allocated:.1f} h charged)" if p else ""
+            unscheduled[rid] = f"program {spec.program} past its allocation{hours}"
             continue
         setup_s = config.instrument_for(spec.band, spec.instrument).setup_s
         lst, interrupted = _request_executions(spec, r, feas, prevs, setup_s=setup_s, step_s=step_s,
@@ -165,7 +193,8 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
     reqs = [requests[r] for r in keep]
     rows = np.array(keep, dtype=np.int64)
     insts = [config.instrument_for(s.band, s.instrument).name for s in reqs]
-    base = np.array([science_base_value(s, program_weights) for s in reqs], dtype=np.float64)
+    kept_factors = factors.take(rows)
+    base = kept_factors.base
     execs = _executions(plans, rows, feas.merit, base, now_step, n_t, bucket_steps)
     start_ok, end_ok = _start_and_end_masks(execs, len(reqs), n_t)
     alt_m, az_m = (alt[rows], az[rows]) if reqs else (alt[:0], az[:0])
@@ -181,6 +210,7 @@ def build_problem(config: ObservatoryConfig, requests: Sequence[RequestSpec], pr
         T=T, tmax=tmax, execs=execs, mean_az=_mean_azimuths(az_m, start_ok),
         stability_weight=stability_weight if previous else 0.0,
         stability_window=stability_window, unscheduled=unscheduled, dropped_fixed=dropped_fixed,
+        factors=kept_factors,
     )
 
 
