@@ -16,6 +16,7 @@ import json
 import shlex
 import tempfile
 import time
+from datetime import datetime, timezone
 from pathlib import Path
 
 import click
@@ -45,6 +46,16 @@ def _out_dir(out: str | None) -> Path:
                                 "new folder")
     p.mkdir(parents=True, exist_ok=True)
     return p
+
+
+def past_flag(requests_csv: Path, now: datetime) -> list[str]:
+    """["--allow-past"] once ``now`` has passed a not_after of the scenario (its night is fixed,
+    the demo plans it as if the afternoon before), else nothing."""
+    from scheduler.model.timegrid import parse_time
+
+    with open(requests_csv, encoding="utf-8", newline="") as f:
+        ends = [parse_time(r["not_after"], "not_after") for r in csv.DictReader(f) if r.get("not_after")]
+    return ["--allow-past"] if ends and min(ends) <= now else []
 
 
 def run_demo(out: str | None, time_limit: float, cli: click.Group) -> dict:
@@ -81,8 +92,11 @@ def run_demo(out: str | None, time_limit: float, cli: click.Group) -> dict:
         for row in csv.DictReader(f):
             run("program", "add", row["code"], "--pi", row["pi"], "--hours", row["hours"], "--weight", row["weight"],
                 show=f"program add {row['code']} --pi {row['pi']!r} --hours {row['hours']} --weight {row['weight']}")
-    run("request", "import", str(data / scen["requests"]),
-        show=f"request import {rel(data / scen['requests'])}")
+    past = past_flag(data / scen["requests"], datetime.now(timezone.utc))
+    if past:
+        click.echo("(the scenario's night is past and its time windows have ended: the import takes --allow-past)")
+    run("request", "import", str(data / scen["requests"]), *past,
+        show=f"request import {rel(data / scen['requests'])}{' ' + past[0] if past else ''}")
     run("conditions", "load", str(data / scen["forecast"]), "--source", scen["forecast_source"],
         show=f"conditions load {rel(data / scen['forecast'])} --source {scen['forecast_source']!r}")
     run("almanac", "--night", night)
@@ -111,8 +125,6 @@ def run_demo(out: str | None, time_limit: float, cli: click.Group) -> dict:
         if rid is not None:
             run("plan", "why", str(rid))
     if at is not None:
-        from datetime import datetime, timezone
-
         from scheduler.model.timegrid import iso
 
         run("next", "--at", iso(datetime.fromtimestamp(at, tz=timezone.utc)))

@@ -409,7 +409,30 @@ json_value_st = st.one_of(st.none(), st.booleans(), st.integers(-10 ** 500, 10 *
                           st.floats(allow_nan=False), text_st, st.just({"x": 1}), st.just([1, 2]))
 
 
-def _import_file(data, folder: Path) -> tuple[Path, list[dict], bool]:
+# Whole-file shapes every import must refuse (model.request.parse_import_text): a column twice,
+# a key twice, JSON nested past what the parser follows, integers too long to read or to be a
+# number, a cell over the limit, entries that are not objects.
+_ROW = '{"program": "STAR-1", "target": "a", "ra": 10, "dec": -30, "band": "V", "exposure_s": %s}'
+IMPORT_REFUSED = [
+    "[" * 100_000 + "]" * 100_000,
+    "[" + _ROW % ("1" * 5000) + "]",
+    "[" + _ROW % ("9" * 400) + "]",
+    "[" + _ROW.replace('"target": "a"', '"target": "a", "target": "b"') % "300" + "]",
+    "[" + _ROW % "300" + ', "row"]',
+    '{"requests": []}',
+    "program,target,ra,dec,band,exposure_s\nSTAR-1," + "x" * 140_000 + ",10,-30,V,300\n",
+    "program,target,ra,dec,band,exposure_s\nSTAR-1,a,10,-30,V,300,7\n",
+]
+
+
+def _import_file(data, folder: Path) -> tuple[Path, list[dict], bool, bool]:
+    """(file, rows, JSON?, must be refused whole)."""
+    shape = data.draw(st.sampled_from(["csv", "csv", "csv", "json", "json", "json", "refused", "twice"]))
+    if shape == "refused":
+        text = data.draw(st.sampled_from(IMPORT_REFUSED))
+        f = folder / ("in.json" if text.startswith(("[", "{")) else "in.csv")
+        f.write_text(text, encoding="utf-8")
+        return f, [], f.suffix == ".json", True
     base = {"program": "STAR-1", "target": "Invented 1", "ra": "10", "dec": "-30", "band": "V", "exposure_s": "300"}
     rows = []
     for i in range(data.draw(st.integers(1, 4))):
@@ -417,19 +440,27 @@ def _import_file(data, folder: Path) -> tuple[Path, list[dict], bool]:
         for k in data.draw(st.lists(st.sampled_from(sorted(IMPORT_FIELDS)), max_size=3, unique=True)):
             row[k] = data.draw(IMPORT_FIELDS[k])
         rows.append(row)
-    as_json = data.draw(st.booleans())
+    as_json = shape == "json" or (shape == "twice" and data.draw(st.booleans()))
     if as_json:
         for row in rows:
             for k in data.draw(st.lists(st.sampled_from(sorted(row)), max_size=2, unique=True)):
                 row[k] = data.draw(json_value_st)
+        objs = [json.dumps(r, ensure_ascii=True) for r in rows]
+        if shape == "twice":  # one key twice in the last object
+            key = data.draw(st.sampled_from(sorted(rows[-1])))
+            objs[-1] = "{" + json.dumps(key) + ": " + json.dumps(base.get(key, "1")) + ", " + objs[-1][1:]
+        text = "[" + ", ".join(objs) + "]"
         f = folder / "in.json"
-        f.write_text(json.dumps(rows, ensure_ascii=True), encoding="utf-8")
+        f.write_text(text, encoding="utf-8")
     else:
         cols = list(dict.fromkeys(k for r in rows for k in r))
+        table = [cols] + [[r.get(c, "") for c in cols] for r in rows]
+        if shape == "twice":  # a column twice: the second copy holds the same values
+            k = data.draw(st.integers(0, len(cols) - 1))
+            table = [line + [line[k]] for line in table]
         f = folder / "in.csv"
-        f.write_text(_csv_text([cols] + [[r.get(c, "") for c in cols] for r in rows]), encoding="utf-8",
-                     errors="surrogatepass")
-    return f, rows, as_json
+        f.write_text(_csv_text(table), encoding="utf-8", errors="surrogatepass")
+    return f, rows, as_json, shape == "twice"
 
 
 @pytest.mark.slow
@@ -437,11 +468,13 @@ def _import_file(data, folder: Path) -> tuple[Path, list[dict], bool]:
 @given(data=st.data())
 def test_slow_request_import_files(data, _initialised_template, tmp_path_factory):
     q = _queue(tmp_path_factory, _initialised_template, "import")
-    f, rows, _as_json = _import_file(data, q.folder)
+    f, rows, _as_json, must_refuse = _import_file(data, q.folder)
     before, last = q.counts(), q.max_request_id()
     code, out, err = run_in_process(q.base + ["request", "import", str(f)])
     check_outcome("request import", code, out, err)
     after = q.counts()
+    if must_refuse:
+        assert code == 2, (f.read_text(encoding="utf-8", errors="replace")[:300], out)
     if code == 0:
         assert after[0] == before[0] + len(rows)  # all rows or none
         specs = q.requests_since(last)
@@ -586,7 +619,7 @@ def test_slow_real_subprocess_sample(data, _initialised_template, tmp_path_facto
         # a NUL cannot be passed to a real process; surrogates reach it as the bytes they stand for
         args = ["request", "add"] + [x.replace("\x00", "") for kv in opts.items() for x in kv]
     elif kind == "import":
-        f, _rows, _j = _import_file(data, q.folder)
+        f, _rows, _j, _refuse = _import_file(data, q.folder)
         args = ["request", "import", str(f)]
     else:
         f = q.folder / "c.csv"

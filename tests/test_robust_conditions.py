@@ -124,3 +124,15 @@ def test_json_report_wrong_types_name_field_and_row():
     with pytest.raises(InputError) as e:
         parse_conditions(text)
     assert (e.value.field, e.value.row) == ("dome", 2)
+
+
+def test_the_merge_keeps_the_coherence_time():
+    """Adaptive optics reads tau0 from the conditions: a merged grid carries it like one report's."""
+    samples = tuple(Sample(time=NIGHT0 + timedelta(hours=h), pwv_mm=1.0, coherence_time_ms=2.0 + h)
+                    for h in range(4))
+    rep = Report(5, NIGHT0 - timedelta(hours=2), samples)
+    alone = conditions_on_grid(samples, GRID, CFG.defaults, 5)
+    merged = conditions_from_reports([rep], GRID, CFG.defaults)
+    assert np.array_equal(alone.coherence_time_ms, merged.coherence_time_ms, equal_nan=True)
+    assert merged.coherence_time_ms[6] == pytest.approx(3.0)  # 00:00, between 2 ms and 4 ms
+    assert np.isnan(merged.coherence_time_ms[-1])  # after the last sample: unknown, no default

@@ -91,6 +91,27 @@ def _stored_as_is(workdir, target: str, ra: float = 10.0) -> str:
         db.dispose()
 
 
+def _stored_as_is_sql(workdir, what: str, text: str) -> None:
+    """A conditions report with ``text`` as its source, or the plan's reason set to ``text``,
+    written straight to the SQLite file (what input checks refuse now, stored earlier)."""
+    import sqlite3
+
+    con = sqlite3.connect(workdir / "nightplan.sqlite")
+    try:
+        if what == "conditions":
+            con.execute("INSERT INTO conditions_report (issued_at, received_at, source, n_samples) "
+                        "VALUES ('2026-12-16 12:00:00', '2026-12-16 12:00:00', ?, 2)", (text,))
+            rid = con.execute("SELECT max(id) FROM conditions_report").fetchone()[0]
+            for t, seeing in (("2026-12-16 22:00:00", 0.8), ("2026-12-16 23:00:00", 0.9)):
+                con.execute("INSERT INTO conditions_sample (report_id, time, seeing_arcsec, pwv_mm) VALUES (?, ?, ?, 2.0)",
+                            (rid, t, seeing))
+        else:
+            con.execute("UPDATE plan SET reason = ?", (text,))
+        con.commit()
+    finally:
+        con.close()
+
+
 def test_control_characters_in_stored_text_are_shown_escaped(workdir):
     # input checks refuse such targets now; a database filled earlier may still hold them
     target = "x\x9b31my\u202ez\x7f"
@@ -104,9 +125,8 @@ def test_control_characters_in_stored_text_are_shown_escaped(workdir):
     (workdir / "c.csv").write_text("time,seeing_arcsec,pwv_mm\n2026-12-16T22:00:00Z,0.8,2.0\n"
                                    "2026-12-16T23:00:00Z,0.9,2.1\n", encoding="utf-8")
     source = "[/] feed \x1b]0;owned\x07 \u202eecruos"
-    proc = run_cli("conditions", "load", "c.csv", "--source", source, cwd=workdir)
-    _no_raw(proc)
-    assert "[/] feed \\x1b]0;owned\\x07 \\u202eecruos" in proc.stdout
+    assert run_cli("conditions", "load", "c.csv", "--source", source, cwd=workdir).returncode == 2  # refused now
+    _stored_as_is_sql(workdir, "conditions", source)  # a database filled before the check
     proc = run_cli("conditions", "show", cwd=workdir)
     _no_raw(proc)
     assert "[/] feed \\x1b]0;owned\\x07" in proc.stdout
@@ -123,10 +143,12 @@ def test_plan_with_markup_and_controls_in_its_reason_and_names(workdir):
                 "--dec", "-30", "--band", "V", "--exposure", "600", cwd=workdir, check=True)
     _stored_as_is(workdir, "C\u202eD", ra=110.0)  # refused at input now; stored earlier
     reason = "[/] re-plan \x1b[31m after \x9b wind"
-    proc = run_cli("plan", "build", "--night", "2026-12-16", "--time-limit", "1", "--now", "2026-12-16T18:00:00Z",
-                   "--reason", reason, cwd=workdir)
+    build = ("plan", "build", "--night", "2026-12-16", "--time-limit", "1", "--now", "2026-12-16T18:00:00Z", "--reason")
+    assert run_cli(*build, reason, cwd=workdir).returncode == 2  # controls in a reason are refused now
+    proc = run_cli(*build, "[/] re-plan [bold]after wind", cwd=workdir)
     _no_raw(proc)
-    assert "plan version 1 stored" in proc.stdout and "[/] re-plan \\x1b[31m after \\x9b wind" in proc.stdout
+    assert "plan version 1 stored" in proc.stdout and "[/] re-plan [bold]after wind" in proc.stdout
+    _stored_as_is_sql(workdir, "plan", reason)  # a plan stored before the check
     for args in (("plan", "show", "--unscheduled"), ("plan", "list")):
         proc = run_cli(*args, cwd=workdir)
         _no_raw(proc)

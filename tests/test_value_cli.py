@@ -34,7 +34,7 @@ def queue(workdir):
     (workdir / "requests.csv").write_text(REQUESTS, encoding="utf-8")
     run_cli("request", "import", "requests.csv", cwd=workdir, check=True)
     ids = {r["target"]: r["id"] for r in cli_json("request", "list", cwd=workdir)}
-    out = run_cli("record", str(ids["SPENT-DONE"]), "--result", "done", cwd=workdir, check=True).stdout
+    out = run_cli("record", str(ids["SPENT-DONE"]), "--result", "done", "--unplanned", cwd=workdir, check=True).stdout
     assert "1.00 h charged to program SPENT" in out  # no plan entry: the request's exposure
     return workdir, ids
 

@@ -15,7 +15,7 @@ import click
 
 from scheduler.model.config import ObservatoryConfig, load_config
 from scheduler.model.errors import InputError
-from scheduler.model.timegrid import parse_time
+from scheduler.model.timegrid import parse_date, parse_time
 from scheduler.report.safe_text import clean
 
 CONFIG_FILE = "observatory.toml"
@@ -60,13 +60,19 @@ def warn(msg: str) -> None:
     click.echo(f"nightplan: warning: {clean(msg)}", err=True)
 
 
-def console():
+def console(min_width: int = 100):
+    """A rich console as wide as the terminal (COLUMNS, else the terminal's width; 140 when the
+    output is not a terminal), at least ``min_width`` and at most 200 columns. A table that fits
+    any width itself (`plan show`) asks for a small ``min_width``."""
     from rich.console import Console
 
-    return Console(highlight=False, soft_wrap=False, width=max(100, min(200, _term_width())))
+    return Console(highlight=False, soft_wrap=False, width=max(min_width, min(200, _term_width())))
 
 
 def _term_width() -> int:
+    cols = os.environ.get("COLUMNS", "")
+    if cols.isdigit() and int(cols) > 0:
+        return int(cols)
     try:
         return os.get_terminal_size().columns
     except OSError:
@@ -74,10 +80,8 @@ def _term_width() -> int:
 
 
 def parse_night(text: str) -> date:
-    try:
-        return date.fromisoformat(text)
-    except ValueError:
-        raise InputError("night", f"{text!r} is not a date YYYY-MM-DD (the local evening the night begins)") from None
+    """A --night option: a date YYYY-MM-DD within the years the ephemerides are trusted for."""
+    return parse_date(text, "night")
 
 
 def now_or(text: str | None, field: str) -> datetime:

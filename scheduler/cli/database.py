@@ -109,6 +109,39 @@ def db_copy(c: Ctx, to_url: str) -> None:
     click.echo(f"copied {total} rows to {dst.url}: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
 
 
+@db_group.command("check")
+@click.option("--quick", is_flag=True, help="SQLite: PRAGMA quick_check (page structure only, faster) instead of the "
+                                           "full PRAGMA integrity_check")
+@pass_ctx
+def db_check(c: Ctx, quick: bool) -> None:
+    """Check the database for damage (exit 1 if any is found).
+
+    SQLite: PRAGMA integrity_check, or quick_check with --quick (the service runs the quick
+    check when it starts and refuses a damaged file). PostgreSQL offers clients no whole-database
+    check: the server must answer a catalog query and every nightplan table must read end to end;
+    page-level checks are the server's own (data checksums, the amcheck extension).
+    """
+    from scheduler.db.session import open_db
+    from scheduler.report.safe_text import clean
+
+    db = open_db(c.db_url, create_file=False)
+    if db.path is not None and not db.path.exists():
+        raise InputError("db", f"{db.path} does not exist; run `nightplan init` first or pass --db URL")
+    where = str(db.path.resolve()) if db.path is not None else db.url
+    what, problems = db.check_integrity(quick=quick)
+    if not problems:
+        click.echo(f"database: {where}: {what}: ok")
+        return
+    click.echo(f"database: {where}: {what}: DAMAGED, {len(problems)} problem{'s' if len(problems) > 1 else ''}")
+    for line in problems[:20]:
+        click.echo(f"  {clean(line)}")
+    if len(problems) > 20:
+        click.echo(f"  ... and {len(problems) - 20} more")
+    click.echo("Stop the service and every writer, keep a copy of the damaged file, and restore the latest backup "
+               "(SQLite's `.recover` command can salvage rows from a copy).")
+    raise SystemExit(1)
+
+
 def register(cli: click.Group) -> None:
     cli.add_command(init)
     cli.add_command(db_group)

@@ -74,5 +74,12 @@ def main(argv: list[str] | None = None) -> None:
 
         kind = "database" if isinstance(e, SQLAlchemyError) else type(e).__name__
         first = str(e).strip().splitlines()[0] if str(e).strip() else repr(e)
-        click.echo(f"nightplan: error: {kind}: {clean(first[:300])} (set NIGHTPLAN_DEBUG=1 for the trace)", err=True)
+        hint = ""
+        if kind == "database" and ("malformed" in first or "not a database" in first):
+            hint = "; `nightplan db check` lists the damage"
+        elif kind == "database" and "readonly database" in first:
+            hint = ("; the database is open read-only: with ?mode=ro SQLite needs the -wal and -shm files beside "
+                    "the database (?immutable=1 does not), and writing needs a file and folder this user can write")
+        click.echo(f"nightplan: error: {kind}: {clean(first[:300])}{hint} (set NIGHTPLAN_DEBUG=1 for the trace)",
+                   err=True)
         sys.exit(1)

@@ -13,7 +13,11 @@ from scheduler.cli.common import Ctx, console, echo_json, now_or, parse_night, p
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import OutcomeResult, RequestStatus
 from scheduler.model.timegrid import iso
+from scheduler.model.untrusted import check_text
 from scheduler.report.safe_text import cell, clean
+
+MAX_REASON = 2000  # characters of a plan's or an order's reason
+MIN_TABLE_WIDTH = 30  # `plan show` fits its table to the terminal down to this width
 
 
 # --------------------------------------------------------------------------- helpers
@@ -80,9 +84,7 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
 
     if time_limit is not None and not (0.1 <= time_limit <= 3600):
         raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 3600 seconds")
-    reason = (reason or "").strip()
-    if not reason or len(reason) > 2000:
-        raise InputError("reason", "must be 1 to 2000 characters")
+    reason = check_text(reason, "reason", max_len=MAX_REASON)
     now = now_or(now_text, "now")
     config = c.config()
     db = c.db()
@@ -118,6 +120,8 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
         for v in r.violations[1:5]:
             click.echo(f"  {v}", err=True)
         sys.exit(1)
+    if built.conditions_warning and has_conditions:  # with none stored, the warning above said it
+        warn(built.conditions_warning)
     doc, _, _ = load_document(c, built.version)
     sm, p = doc["summary"], doc["plan"]
     out = console()
@@ -154,7 +158,7 @@ def plan_show(c: Ctx, version: int | None, show_unscheduled: bool, as_json: bool
     if as_json:
         echo_json(doc)
         return
-    print_plan(console(), doc, unscheduled=show_unscheduled)
+    print_plan(console(min_width=MIN_TABLE_WIDTH), doc, unscheduled=show_unscheduled)
 
 
 @plan.command("list")
@@ -240,14 +244,6 @@ def plan_check(c: Ctx, version: int | None) -> None:
     click.echo(f"plan {v}: every entry passes the checker")
 
 
-def _plan_samples(c: Ctx, doc) -> list:
-    """The conditions samples a plan was built on (empty: defaults were assumed)."""
-    from scheduler.report.chart import plan_samples
-
-    with c.db().session() as s:
-        return plan_samples(s, doc["plan"]["conditions"]["report_id"])
-
-
 @plan.command("why")
 @click.argument("request_id", type=int)
 @click.option("--version", type=int, help="plan version (default: the newest active plan)")
@@ -256,8 +252,8 @@ def _plan_samples(c: Ctx, doc) -> list:
 def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> None:
     """Why request ID is in the plan, or which constraint or which entries keep it out."""
 
-    from scheduler.conditions.grid import conditions_on_grid
-    from scheduler.db import store
+    from scheduler.db import plans, store
+    from scheduler.planning.planner import Planner, stored_plan_reports
     from scheduler.report.why import explain
     from scheduler.sky.ephemeris import sky_for
 
@@ -265,12 +261,13 @@ def plan_why(c: Ctx, request_id: int, version: int | None, as_json: bool) -> Non
         spec = store.to_spec(store.get_request(s, request_id))
         weights = store.program_states(s)
     doc, night, config = load_document(c, version)
+    with c.db().session() as s:  # the conditions the plan was built on: every report it used
+        reports = stored_plan_reports(s, plans.get_plan(s, doc["plan"]["version"]))
     solver_reason = next((u["reason"] for u in doc["unscheduled"] if u["request_id"] == request_id), None)
     from scheduler.constraints.opportunities import count_opportunities
     later = int(count_opportunities(config, [spec], night.date).future()[0])
     sky = sky_for(config.site, night, [spec])[0]
-    cond = conditions_on_grid(_plan_samples(c, doc), night.times_unix, config.defaults,
-                              doc["plan"]["conditions"]["report_id"])
+    cond = Planner(config).night_conditions(night, reports)
     res = explain(config, spec, night, sky, cond, doc, weights, solver_reason, later)
     if as_json:
         echo_json(res)
@@ -320,6 +317,13 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
         click.echo("NOW   the plan is finished for this night")
     elif res["state"] == "empty":
         click.echo("NOW   the plan has no entries")
+    elif not res["night_started"]:
+        first = res["upcoming"][0]
+        mins = int(round(res["minutes_to_night"]))
+        click.echo(f"NOW   the night has not begun: it starts at {hm(res['night_start'])} UTC "
+                   f"({hm(res['night_start_local'])} local), in {mins // 60} h {mins % 60:02d} min; the first entry, "
+                   f"#{first['request_id']} {clean(first['target'])}, starts at {hm(first['start'])} UTC "
+                   f"({hm(first['start_local'])} local)")
     else:
         first = res["upcoming"][0]
         click.echo(f"NOW   nothing in progress: move to #{first['request_id']} {clean(first['target'])}, which starts "
@@ -337,10 +341,14 @@ def next_cmd(c: Ctx, at_text: str | None, as_json: bool) -> None:
 @click.option("--charge", type=click.Choice(["none", "program"]),
               help="who pays the time: program (default for done and partial: the time as planned, or the "
                    "exposure achieved) or none (default for failed: the telescope's or the weather's fault)")
+@click.option("--unplanned", is_flag=True, help="the request is in no active plan (observed outside the plan): "
+                                                "record it anyway")
 @pass_ctx
 def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: str | None,
-           charge: str | None) -> None:
-    """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back."""
+           charge: str | None, unplanned: bool) -> None:
+    """Record what was observed: done leaves the queue, partial keeps the rest, failed goes back.
+
+    The request must be in an active plan (a mistyped id is refused) unless --unplanned."""
     from scheduler.db import plans, store
 
     if result == OutcomeResult.PARTIAL and exposure is None:
@@ -357,6 +365,9 @@ def record(c: Ctx, request_id: int, result: str, exposure: float | None, note: s
             started = [e for e in mine if e.start <= now]
             entry_id = (started[-1] if started else mine[0]).id
         out = store.record_outcome(s, request_id, result, exposure, note, entry_id, charge)
+        if not mine and not unplanned:  # after the outcome's own checks; the transaction rolls back
+            raise InputError("id", f"request {request_id} is in no active plan, so no outcome is expected for it "
+                                   "(a mistyped id?); if it was observed outside the plan, add --unplanned")
         row = store.get_request(s, request_id)
         return (out.id, row.status, row.completed_repeats, row.repeats, row.partial_exposure_s, row.exposure_s,
                 out.charged_h, row.program.code)

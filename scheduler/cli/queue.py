@@ -2,9 +2,6 @@
 
 from __future__ import annotations
 
-import csv
-import io
-import json
 from pathlib import Path
 from typing import Any
 
@@ -39,11 +36,11 @@ def program() -> None:
 @program.command("add")
 @click.argument("code")
 @click.option("--pi", required=True, help="principal investigator")
-@click.option("--hours", type=float, default=0.0, show_default=True, help="allocated hours (0 to 10000; 0: no allocation)")
-@click.option("--weight", type=float, default=1.0, show_default=True, help="rank weight in the objective (0 to 100]")
+@click.option("--hours", default="0", show_default=True, help="allocated hours (0 to 10000; 0: no allocation)")
+@click.option("--weight", default="1", show_default=True, help="rank weight in the objective (0 to 100]")
 @click.option("--tier", type=int, default=2, show_default=True, help="tier, 1 (highest) to 9: tiers are strict")
 @pass_ctx
-def program_add(c: Ctx, code: str, pi: str, hours: float, weight: float, tier: int) -> None:
+def program_add(c: Ctx, code: str, pi: str, hours: str, weight: str, tier: int) -> None:
     """Create a program CODE."""
     from scheduler.db import store
 
@@ -110,14 +107,40 @@ def request() -> None:
     """Observation requests: add, import, list, show, withdraw."""
 
 
+MAX_WARNED = 5  # never-observable requests named one by one; beyond that, a summary
+
+
 def _visibility_warnings(config: ObservatoryConfig, specs) -> None:
+    """Warn about requests that can never be observed from the site: each one while they are
+    few, then a summary by cause (a 20,000-row import must not print thousands of lines)."""
     from scheduler.model.request import never_observable_reason
 
+    found = []
     for i, spec in enumerate(specs):
         why = never_observable_reason(spec, config)
         if why:
-            label = f"request {spec.id}" if spec.id else f"row {i + 1}"
-            warn(f"{label} ({spec.target}): never observable from {config.site.name}: {why}")
+            found.append((f"request {spec.id}" if spec.id else f"row {i + 1}", spec, why))
+    for label, spec, why in found[:MAX_WARNED]:
+        warn(f"{label} ({spec.target}): never observable from {config.site.name}: {why}")
+    rest = found[MAX_WARNED:]
+    if rest:
+        causes: dict[str, int] = {}
+        for _label, _spec, why in rest:
+            cause = "culminate below the telescope's altitude limit" if why.startswith("it culminates") else \
+                "never reach their max_airmass" if why.startswith("its best airmass") else "for other reasons"
+            causes[cause] = causes.get(cause, 0) + 1
+        ids = [sp.id for _l, sp, _w in rest if sp.id is not None]
+        span = f"ids {min(ids)} to {max(ids)}: " if ids else ""
+        warn(f"{len(found)} of {len(specs)} requests are never observable from {config.site.name}: the "
+             f"{MAX_WARNED} above and {len(rest)} more ({span}"
+             + ", ".join(f"{n} {cause}" for cause, n in causes.items())
+             + "); `nightplan request show ID` shows one")
+
+
+def _allow_past_option(f):
+    return click.option("--allow-past", is_flag=True,
+                        help="accept a not_after that has already passed (e.g. recording last night's requests); "
+                             "otherwise such a request is refused, as it could never run")(f)
 
 
 @request.command("add")
@@ -152,8 +175,9 @@ def _visibility_warnings(config: ObservatoryConfig, specs) -> None:
 @click.option("--repeats", help="number of executions, default 1")
 @click.option("--min-spacing", help="minimum time between executions, seconds")
 @click.option("--too", is_flag=True, help="target of opportunity")
+@_allow_past_option
 @pass_ctx
-def request_add(c: Ctx, **opts: Any) -> None:
+def request_add(c: Ctx, allow_past: bool, **opts: Any) -> None:
     """Submit one request; prints its id.
 
     --max-seeing is the site seeing at 500 nm at zenith, as the conditions report it;
@@ -177,7 +201,7 @@ def request_add(c: Ctx, **opts: Any) -> None:
     now = utcnow()
 
     def work(s):
-        spec = validate_request(raw, config, store.program_codes(s), now=now)
+        spec = validate_request(raw, config, store.program_codes(s), now=now, allow_past=allow_past)
         return spec, store.add_requests(s, [spec])[0]
 
     spec, rid = db.retrying(work)
@@ -185,40 +209,28 @@ def request_add(c: Ctx, **opts: Any) -> None:
     click.echo(rid)
 
 
-def read_table_file(path: str, *, what: str) -> tuple[list[tuple[int, dict[str, Any]]], str]:
-    """(row number, row) of a CSV (header row) or JSON list file, with a size limit; and the format.
+def read_import_file(path: str) -> list[tuple[int, dict[str, Any]]]:
+    """(row number, raw fields) of a request import file, with a size limit.
 
-    Row numbers are what a user finds in the file: for CSV the line (the header is line 1), for
-    JSON the position in the list (from 1), as in conditions files.
+    Parsed by model.request.parse_import_text, the one home of the file checks (a CSV column
+    twice, duplicate JSON keys, deep or huge-number JSON, oversized cells: refused naming the
+    column and row). Row numbers are what a user finds in the file: for CSV the line (the
+    header is line 1), for JSON the position in the list (from 1).
     """
+    from scheduler.model.request import parse_import_text
+    from scheduler.model.untrusted import safe_name
     from scheduler.textfile import read_text_file
 
     p = Path(path)
     text = read_text_file(p, MAX_IMPORT_BYTES)
-    stripped = text.lstrip()
-    if p.suffix.lower() == ".json" or stripped.startswith(("[", "{")):
-        try:
-            data = json.loads(text)
-        except json.JSONDecodeError as e:
-            raise InputError("file", f"{path} is not valid JSON: {e.msg} at line {e.lineno}") from None
-        if not isinstance(data, list) or not all(isinstance(r, dict) for r in data):
-            raise InputError("file", f"{path}: JSON must be a list of objects, one per {what[:-1]}")
-        return list(enumerate(data, start=1)), "json"
-    reader = csv.DictReader(io.StringIO(text))
-    if not reader.fieldnames:
-        raise InputError("file", f"{path} is empty; expected a CSV header row")
-    rows = []
-    for row in reader:
-        if None in row:
-            raise InputError("columns", "more values than header columns", row=reader.line_num, source=path)
-        rows.append((reader.line_num, {k.strip(): (v.strip() if isinstance(v, str) else v) for k, v in row.items()}))
-    return rows, "csv"
+    return parse_import_text(text, safe_name(path, 200), json_format=True if p.suffix.lower() == ".json" else None)
 
 
 @request.command("import")
 @click.argument("file", type=click.Path(dir_okay=False))
+@_allow_past_option
 @pass_ctx
-def request_import(c: Ctx, file: str) -> None:
+def request_import(c: Ctx, file: str, allow_past: bool) -> None:
     """Import requests from CSV (header row) or a JSON list; all rows or none.
 
     Columns: program,target,ra,dec,band,exposure_s,resolution_arcsec,max_seeing_arcsec,
@@ -231,20 +243,22 @@ def request_import(c: Ctx, file: str) -> None:
     from scheduler.db import store
     from scheduler.model.request import EPHEMERIS_KEY, validate_request
     from scheduler.model.timegrid import utcnow
+    from scheduler.model.untrusted import check_text, safe_name
 
-    rows, _fmt = read_table_file(file, what="requests")
+    shown_file = safe_name(file, 200)
+    rows = read_import_file(file)
+    if not rows:
+        raise InputError("file", f"{shown_file} holds no requests")
+    if len(rows) > MAX_IMPORT_ROWS:
+        raise InputError("file", f"{shown_file} has {len(rows)} rows; at most {MAX_IMPORT_ROWS} per import")
     base = Path(file).resolve().parent
     for i, raw in rows:
-        name = raw.get("ephemeris_file")
-        if name not in (None, ""):
+        if raw.get("ephemeris_file") not in (None, ""):
             try:
-                raw[EPHEMERIS_KEY] = read_ephemeris(base / str(name), str(name))
+                name = check_text(raw["ephemeris_file"], "ephemeris_file", max_len=1000)
+                raw[EPHEMERIS_KEY] = read_ephemeris(base / name, name)
             except InputError as e:
-                raise InputError(e.field, e.message, row=i, source=file) from None
-    if not rows:
-        raise InputError("file", f"{file} holds no requests")
-    if len(rows) > MAX_IMPORT_ROWS:
-        raise InputError("file", f"{file} has {len(rows)} rows; at most {MAX_IMPORT_ROWS} per import")
+                raise InputError(e.field, e.message, row=i, source=shown_file) from None
     config = c.config()
     db = c.db()
     now = utcnow()
@@ -254,9 +268,9 @@ def request_import(c: Ctx, file: str) -> None:
         specs = []
         for i, raw in rows:
             try:
-                specs.append(validate_request(raw, config, codes, now=now))
+                specs.append(validate_request(raw, config, codes, now=now, allow_past=allow_past))
             except InputError as e:
-                raise InputError(e.field, e.message, row=i, source=file) from None
+                raise InputError(e.field, e.message, row=i, source=shown_file) from None
         return specs, store.add_requests(s, specs)
 
     specs, ids = db.retrying(work)

@@ -11,9 +11,11 @@ import click
 
 from scheduler.cli.common import Ctx, echo_json, pass_ctx
 from scheduler.model.errors import InputError
+from scheduler.model.untrusted import check_text
 from scheduler.report.safe_text import clean
 
 POLL_RANGE = (0.2, 600.0)
+DAMAGED_EXIT = 3  # `serve` refused a damaged database
 
 
 def _use_db(c: Ctx, db_url: str | None) -> None:
@@ -65,9 +67,9 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
     licensed operators decide.
     """
     from scheduler.service.clock import Clock
-    from scheduler.service.daemon import Service
+    from scheduler.service.daemon import DatabaseDamaged, Service
     from scheduler.service.lock import STALE_AFTER_S, LockHeld
-    from scheduler.service.log import setup_logging
+    from scheduler.service.log import create_log_file, setup_logging
 
     _use_db(c, db_url)
     lo, hi = POLL_RANGE
@@ -85,7 +87,7 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
     db = c.db()
     if log_file:
         try:
-            Path(log_file).open("a", encoding="utf-8").close()
+            create_log_file(log_file)  # owner-only (0600), like the database
         except OSError as e:
             raise InputError("log-file", f"{log_file}: cannot append ({e.strerror})") from None
     page = _web_thread(db, config, clock, web, once, web_host, web_port, web_token_file)
@@ -97,7 +99,16 @@ def serve(c: Ctx, db_url: str | None, watch: str | None, poll_s: float, log_file
         raise InputError("service", f"another nightplan service already runs on {db.url} ({e.info.describe()}); "
                                     f"stop it first (a dead one is taken over after {STALE_AFTER_S:g} s "
                                     f"without heartbeat)") from None
+    except DatabaseDamaged as e:
+        click.echo(f"nightplan: error: db: {db.url} is damaged ({e.what}: {clean(e.problems[0])}"
+                   f"{f' and {len(e.problems) - 1} more' if len(e.problems) > 1 else ''}); the service does not run "
+                   "on a damaged database: `nightplan db check` lists the damage; restore the latest backup",
+                   err=True)
+        sys.exit(DAMAGED_EXIT)  # its own status: restarting will not help (systemd: RestartPreventExitStatus)
     if code:
+        if once:
+            where = f"the log ({log_file})" if log_file else "the log above"
+            click.echo(f"nightplan: error: serve --once: a job or re-plan failed; see {where}", err=True)
         sys.exit(code)
 
 
@@ -136,6 +147,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
     from scheduler.service.lock import read_lock
 
     _use_db(c, db_url)
+    reason = check_text(reason, "reason", max_len=2000)  # shown by `status` and `plan show`
     if not (1.0 <= timeout_s <= 86400):
         raise InputError("timeout", f"{timeout_s:g} is out of range; allowed 1 to 86400 seconds")
     clock = Clock.from_option(clock_text)
@@ -209,6 +221,8 @@ def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
                    f"built {plan_d['created_at']} from {plan_d['planned_from']}, {plan_d['entries']} entries, "
                    f"{plan_d['solver_status']}")
         click.echo(f"reason:     {clean(plan_d['reason'])}")
+        if plan_d.get("conditions_warning"):
+            click.echo(f"warning:    {clean(plan_d['conditions_warning'])}")
     else:
         click.echo("plan:       none yet")
     if rep_d:

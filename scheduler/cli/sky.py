@@ -30,7 +30,10 @@ def conditions_load(c: Ctx, file: str, source: str | None, fmt: str | None) -> N
     """
     from scheduler.conditions.files import read_conditions_file
     from scheduler.db import store
+    from scheduler.model.untrusted import check_text
 
+    if source is not None:  # shown by `status` and `conditions show`: no terminal controls
+        source = check_text(source, "source", max_len=200)
     p = Path(file)
     report = read_conditions_file(p, fmt)
     src = source or report.source or p.name

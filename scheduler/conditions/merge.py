@@ -26,7 +26,8 @@ from scheduler.conditions.grid import ConditionsGrid, conditions_on_grid
 from scheduler.conditions.ingest import Sample
 from scheduler.model.config import ConditionDefaults
 
-_FIELDS = ("seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome_open", "covered")
+_FIELDS = ("seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pct", "dome_open", "covered",
+           "coherence_time_ms")
 
 
 @dataclass(frozen=True)
@@ -94,7 +95,7 @@ def conditions_from_reports(reports: Sequence[Report], times_unix: np.ndarray,
         seeing_arcsec=out["seeing_arcsec"], pwv_mm=out["pwv_mm"], cloud_mag=out["cloud_mag"],
         wind_ms=out["wind_ms"], humidity_pct=out["humidity_pct"], dome_open=out["dome_open"].astype(bool),
         covered=out["covered"].astype(bool), report_id=ids[0] if ids else None, times_unix=t.copy(),
-        report_ids=ids,
+        coherence_time_ms=out["coherence_time_ms"], report_ids=ids,
     )
 
 

@@ -6,24 +6,23 @@ command or a service job is exactly one transaction (all or nothing).
 
 from __future__ import annotations
 
-import re
 from datetime import date, datetime
 from typing import Any, Iterable
 
 from sqlalchemy import delete, func, select
-from sqlalchemy.orm import Session, contains_eager
+from sqlalchemy.orm import Session, contains_eager, selectinload
 
 from scheduler.model.charging import charged_hours, completion, resolve_charge
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.program import DEFAULT_TIER, ProgramState
-from scheduler.model.request import ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus
+from scheduler.model.request import (
+    ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus, validate_program,
+)
 from scheduler.model.timegrid import iso
 from scheduler.sky.bodies import parse_ephemeris_csv
 from scheduler.db.models import (
     ConditionsReport, ConditionsSample, Opportunity, Outcome, PlanEntry, Program, Request, utcnow,
 )
-
-PROGRAM_CODE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 
 # request columns copied 1:1 between RequestSpec and the Request row
 _SPEC_FIELDS = (
@@ -40,17 +39,12 @@ _SPEC_FIELDS = (
 MAX_TIER = 9
 
 
-def add_program(s: Session, code: str, pi: str, hours: float = 0.0, weight: float = 1.0,
+def add_program(s: Session, code: str, pi: str, hours: float | str = 0.0, weight: float | str = 1.0,
                 tier: int = DEFAULT_TIER) -> Program:
-    if not PROGRAM_CODE.match(code or ""):
-        raise InputError("code", f"{code!r}: 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit")
-    pi = (pi or "").strip()
-    if not pi or len(pi) > 200 or any(ord(c) < 32 for c in pi):
-        raise InputError("pi", "must be 1 to 200 printable characters")
-    if not (0 <= hours <= 10000):
-        raise InputError("hours", f"{hours} is out of range; allowed 0 to 10000")
-    if not (0 < weight <= 100):
-        raise InputError("weight", f"{weight} is out of range; allowed greater than 0 and at most 100")
+    """A new program; code, PI, hours and weight are checked by the one rule
+    (model.request.validate_program), whatever the caller: the CLI passes --hours/--weight as
+    typed, so '1_0' is refused there too."""
+    code, pi, hours, weight = validate_program(code, pi, hours, weight)
     if isinstance(tier, bool) or not isinstance(tier, int) or not (1 <= tier <= MAX_TIER):
         raise InputError("tier", f"{tier!r} is out of range; allowed a whole number from 1 (highest) to {MAX_TIER}")
     if s.scalar(select(Program).where(Program.code == code)) is not None:
@@ -313,6 +307,29 @@ def store_conditions(s: Session, samples: list, source: str, issued_at: datetime
 
 def latest_conditions(s: Session) -> ConditionsReport | None:
     return s.scalar(select(ConditionsReport).order_by(ConditionsReport.id.desc()).limit(1))
+
+
+def conditions_reports_for(s: Session, start: datetime, end: datetime) -> list[ConditionsReport]:
+    """The reports that can speak for the span [start, end], with their samples: every report
+    whose samples reach into it, and the one(s) that ended last before it (what a report said
+    last, such as the dome state, holds after it; conditions/merge.py decides per time)."""
+    spans = s.execute(select(ConditionsSample.report_id, func.min(ConditionsSample.time),
+                             func.max(ConditionsSample.time))
+                      .where(ConditionsSample.time <= end).group_by(ConditionsSample.report_id)).all()
+    ids = {rid for rid, _first, last in spans if last >= start}
+    ended = [last for _rid, _first, last in spans if last < start]
+    if ended:
+        ids |= {rid for rid, _first, last in spans if last == max(ended)}
+    return conditions_reports(s, ids)
+
+
+def conditions_reports(s: Session, ids) -> list[ConditionsReport]:
+    """These reports with their samples (those that still exist), by id."""
+    ids = list(ids)
+    if not ids:
+        return []
+    return list(s.scalars(select(ConditionsReport).where(ConditionsReport.id.in_(ids))
+                          .options(selectinload(ConditionsReport.samples)).order_by(ConditionsReport.id)))
 
 
 # --------------------------------------------------------------------------- opportunities cache

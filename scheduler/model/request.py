@@ -541,6 +541,8 @@ def parse_import_text(text: str, source: str, *, json_format: bool | None = None
         if len(cells) > len(names):
             raise InputError("columns", f"{len(cells)} values but the header has {len(names)} columns",
                              row=line, source=source)
-        row = {n: (cells[k].strip() if k < len(cells) else None) for k, n in enumerate(names)}
+        # trim spaces and line ends only: str.strip() would also drop controls such as U+0085 and
+        # read a cell holding one as empty, where JSON giving the same value is refused
+        row = {n: (cells[k].strip(" \t\r\n") if k < len(cells) else None) for k, n in enumerate(names)}
         rows.append((line, row))
     return rows

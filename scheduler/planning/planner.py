@@ -14,10 +14,12 @@ from typing import Callable
 
 from scheduler.conditions.grid import ConditionsGrid, conditions_on_grid
 from scheduler.conditions.ingest import Sample
+from scheduler.conditions.merge import Report, conditions_from_reports, coverage_warning, forecast_share
 from scheduler.model.config import ObservatoryConfig, site_dict, telescope_dict
 from scheduler.db import plans, store
 from scheduler.db.session import Database
 from scheduler.model.request import OutcomeResult, RequestSpec
+from scheduler.model.timegrid import as_utc
 from scheduler.sky.ephemeris import SkyCache, sky_for
 from scheduler.sky.night import Night, night_date_for, night_for
 from scheduler.model.plan import PlanEntry, PlanResult
@@ -29,8 +31,7 @@ class PlanInputs:
 
     specs: list[RequestSpec]
     weights: dict  # program code -> ProgramState (tier, weight, allocated and charged hours)
-    samples: list[Sample]
-    report_id: int | None
+    reports: tuple[Report, ...]  # the conditions reports that can speak for the night (merge.py picks per time)
     previous: list[PlanEntry]
     previous_version: int | None
 
@@ -42,12 +43,38 @@ class BuiltPlan:
     night: Night
     planned_from: datetime
     conditions: ConditionsGrid
+    forecast_share: float = 0.0  # share of the night (from planned_from) inside some report's span
+    conditions_warning: str | None = None  # merge.coverage_warning: below planning.min_forecast_share
 
 
 def sample_of(row) -> Sample:
     return Sample(time=row.time, seeing_arcsec=row.seeing_arcsec, pwv_mm=row.pwv_mm, cloud_mag=row.cloud_mag,
                   wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open,
                   coherence_time_ms=row.coherence_time_ms)
+
+
+def report_of(row) -> Report:
+    """A stored conditions report as conditions/merge.py takes it."""
+    return Report(row.id, as_utc(row.issued_at), tuple(sample_of(x) for x in row.samples))
+
+
+def reports_for_night(s, night: Night) -> tuple[Report, ...]:
+    """The stored reports that can speak for the night (in an open session)."""
+    return tuple(report_of(r) for r in store.conditions_reports_for(s, night.start, night.end))
+
+
+def plan_report_ids(plan) -> tuple[int, ...]:
+    """The conditions reports a stored plan was built on, newest first (before the summary
+    listed them, a plan named only its one report)."""
+    ids = (plan.summary or {}).get("conditions_report_ids")
+    if ids is None:
+        return (plan.conditions_report_id,) if plan.conditions_report_id is not None else ()
+    return tuple(int(i) for i in ids)
+
+
+def stored_plan_reports(s, plan) -> tuple[Report, ...]:
+    """The reports a stored plan was built on (in an open session); merged they give its conditions."""
+    return tuple(report_of(r) for r in store.conditions_reports(s, plan_report_ids(plan)))
 
 
 class Planner:
@@ -75,19 +102,32 @@ class Planner:
         return d
 
     def conditions(self, night: Night, samples: list[Sample], report_id: int | None) -> ConditionsGrid:
+        """One report's samples on the night's grid."""
         return conditions_on_grid(samples, night.times_unix, self.config.defaults, report_id)
+
+    def night_conditions(self, night: Night, reports: tuple[Report, ...]) -> ConditionsGrid:
+        """Several reports on the night's grid: for each time the newest report covering it."""
+        return conditions_from_reports(reports, night.times_unix, self.config.defaults)
+
+    def coverage(self, night: Night, reports: tuple[Report, ...], planned_from: datetime) -> tuple[float, str | None]:
+        """(share of the night still to plan that some report covers, the warning when that is
+        below planning.min_forecast_share)."""
+        k = night.step_of(planned_from)
+        share = forecast_share(reports, night.times_unix[k:])
+        label = str(night.date) if k == 0 else f"{night.date} from {planned_from.strftime('%H:%M')} UTC"
+        return share, coverage_warning(share, self.config.planning.min_forecast_share, label)
 
     # ---------------------------------------------------------------- storage edges
 
     def read_inputs(self, db: Database, night_date: date) -> PlanInputs:
+        night = self.night(night_date)
         with db.session() as s:
             specs = store.active_specs(s)
             weights = store.program_states(s)
-            rep = store.latest_conditions(s)
-            samples = [sample_of(r) for r in rep.samples] if rep is not None else []
+            reports = reports_for_night(s, night)
             prev = plans.active_plan(s, night_date)
             previous = plans.entries_as_planned(prev)
-            return PlanInputs(specs, weights, samples, rep.id if rep else None, previous, prev.id if prev else None)
+            return PlanInputs(specs, weights, reports, previous, prev.id if prev else None)
 
     def opportunities(self, db: Database | None, night_date: date, specs: list[RequestSpec],
                       progress: Callable[[str], None] | None = None) -> dict[int, int]:
@@ -116,7 +156,7 @@ class Planner:
               started: float | None = None) -> tuple[PlanResult, ConditionsGrid]:
         from scheduler.planning.pipeline import BuildOptions, build_plan
 
-        cond = self.conditions(night, inputs.samples, inputs.report_id)
+        cond = self.night_conditions(night, inputs.reports)
         result = build_plan(
             self.config, inputs.specs, inputs.weights, night, cond, sky=self.sky_cache,
             options=BuildOptions(now=now, previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
@@ -145,26 +185,29 @@ class Planner:
                                   time_limit_s=time_limit_s, progress=progress, opportunities=opportunities,
                                   started=started)
         planned_from = now if in_night else night.start
+        share, warning = self.coverage(night, inputs.reports, planned_from)
         if result.violations:  # the checker refused it: never stored
-            return BuiltPlan(None, result, night, planned_from, cond)
+            return BuiltPlan(None, result, night, planned_from, cond, share, warning)
         spec_by_id = {sp.id: sp for sp in inputs.specs}
 
         def write(s):
             return plans.store_plan(
                 s, result, night=night_date, reason=reason, planned_from=planned_from, specs=spec_by_id,
-                conditions_report_id=inputs.report_id,
+                conditions_report_id=cond.report_id,
                 extra_summary={"conditions_covered_fraction": float(cond.covered.mean()) if cond.covered.size else 0.0,
-                               "queue_size": len(inputs.specs),
+                               "conditions_report_ids": list(cond.report_ids), "forecast_share": share,
+                               "conditions_warning": warning, "queue_size": len(inputs.specs),
                                "site": site_dict(self.config), "telescope": telescope_dict(self.config)},
             ).id
 
         version = db.retrying(write)
-        return BuiltPlan(version, result, night, planned_from, cond)
+        return BuiltPlan(version, result, night, planned_from, cond, share, warning)
 
 
 def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | None = None,
                        planner: Planner | None = None) -> tuple[int, list[str]]:
-    """Re-run the independent checker on a stored plan, against the conditions report it used.
+    """Re-run the independent checker on a stored plan, against every conditions report it used
+    (merged again as when it was built).
 
     Returns (version, violations). Used by `nightplan plan check` and the crash-safety tests.
     Requests are checked as they were when the plan was made (later outcomes are undone).
@@ -191,13 +234,8 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
                 specs[o.request_id] = sp.with_(completed_repeats=max(sp.completed_repeats - 1, 0), partial_exposure_s=0.0)
             elif o.result == OutcomeResult.PARTIAL and o.exposure_s:
                 specs[o.request_id] = sp.with_(partial_exposure_s=max(sp.partial_exposure_s - o.exposure_s, 0.0))
-        samples: list[Sample] = []
-        if plan.conditions_report_id is not None:
-            from scheduler.db.models import ConditionsReport
-
-            rep = s.get(ConditionsReport, plan.conditions_report_id)
-            samples = [sample_of(r) for r in rep.samples]
-        night_date, planned_from, report_id = plan.night, plan.planned_from, plan.conditions_report_id
+        reports = stored_plan_reports(s, plan)
+        night_date, planned_from = plan.night, plan.planned_from
     night = planner.night(night_date)
     entries = entries_on_grid(stored, night)
     if len(entries) != len(stored):
@@ -205,6 +243,6 @@ def verify_stored_plan(db: Database, config: ObservatoryConfig, version: int | N
     spec_list = list(specs.values())
     sky, rows = sky_for(config.site, night, spec_list, planner.sky_cache)
     row_by_id = {sp.id: int(r) for sp, r in zip(spec_list, rows)}
-    cond = planner.conditions(night, samples, report_id)
+    cond = planner.night_conditions(night, reports)
     now_step = night.step_of(planned_from)
     return version, check_plan(entries, specs, row_by_id, sky, cond, config, now_step=now_step)

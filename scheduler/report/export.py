@@ -32,7 +32,7 @@ import csv
 import io
 import json
 import os
-import tempfile
+import secrets
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -148,6 +148,12 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
         "issued_at": iso(report.issued_at) if report else None,
         "covered_fraction": _r(cover, 3),
         "note": None if report else "no conditions report: the configuration's conservative defaults were assumed",
+        # every report the plan used, newest first (per time the newest covering it), the share of
+        # the night they cover and the warning when below planning.min_forecast_share
+        "report_ids": summary.get("conditions_report_ids",
+                                  [plan.conditions_report_id] if plan.conditions_report_id is not None else []),
+        "forecast_share": _r(summary.get("forecast_share"), 3),
+        "warning": summary.get("conditions_warning"),
     }
     return {
         "format": "nightplan-plan/1",
@@ -201,11 +207,16 @@ def to_csv(doc: dict[str, Any]) -> str:
 
 
 def write_atomic(path: str | Path, data: bytes | str) -> Path:
-    """Write via a temporary file in the same folder and rename: readers never see half a file."""
+    """Write via a temporary file in the same folder and rename: readers never see half a file.
+
+    The file gets the mode any new file of the user gets (0666 less the umask): exports and
+    charts are for other observers to read, unlike the database and the service log (0600).
+    """
     p = Path(path)
     p.parent.mkdir(parents=True, exist_ok=True)
     raw = data.encode("utf-8") if isinstance(data, str) else data
-    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=p.parent)
+    tmp = str(p.parent / f".{p.name}.{secrets.token_hex(8)}.tmp")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)  # the kernel applies the umask (mkstemp: 0600)
     try:
         with os.fdopen(fd, "wb") as f:
             f.write(raw)

@@ -16,7 +16,9 @@ def what_next(doc: dict[str, Any], at: datetime, n_after: int = 2) -> dict[str, 
     """From a plan document: the entry in progress at ``at`` (or None), and the next ``n_after``.
 
     With nothing in progress, ``upcoming[0]`` is the entry to move to now (the telescope slews
-    and sets up during the gap before it) and ``until`` is when it starts.
+    and sets up during the gap before it) and ``until`` is when it starts. Before the night has
+    begun (``night_started`` false) there is nothing to move to yet: ``minutes_to_night`` says
+    how long until it does.
     """
     entries = sorted(doc["entries"], key=lambda e: e["start"])
     current = next((e for e in entries if _t(e["start"]) <= at < _t(e["end"])), None)
@@ -30,6 +32,12 @@ def what_next(doc: dict[str, Any], at: datetime, n_after: int = 2) -> dict[str, 
         "minutes_left": round((_t(current["end"]) - at).total_seconds() / 60.0, 1) if current else None,
         "upcoming": after[:n_after],
         "caution": doc["caution"],
+        # before the night has begun (an afternoon look) the answer is when it begins, not a target
+        "night_start": doc["night"]["start"],
+        "night_start_local": doc["night"]["start_local"],
+        "night_started": at >= _t(doc["night"]["start"]),
+        "minutes_to_night": None if at >= _t(doc["night"]["start"]) else
+        round((_t(doc["night"]["start"]) - at).total_seconds() / 60.0, 1),
     }
     if current is None:
         if not entries:

@@ -34,6 +34,10 @@ def status_document(db: Database) -> dict[str, Any]:
             "created_at": iso(plan.created_at), "planned_from": iso(plan.planned_from),
             "solver_status": plan.solver_status, "entries": len(plan.entries),
             "conditions_report": plan.conditions_report_id,
+            # share of the night the conditions reports covered when it was built, and the warning
+            # (conditions/merge.py) when that was below planning.min_forecast_share
+            "forecast_share": (plan.summary or {}).get("forecast_share"),
+            "conditions_warning": (plan.summary or {}).get("conditions_warning"),
         }
         rep = store.latest_conditions(s)
         rep_d = None if rep is None else {

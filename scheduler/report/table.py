@@ -56,30 +56,116 @@ def summary_lines(doc: dict[str, Any]) -> list[str]:
         lines.append(f"  conditions: {c['note']}")
     else:
         cov = c["covered_fraction"]
-        lines.append(f"  conditions assumed: report {c['report_id']} from {c['source']}, issued {c['issued_at']}; "
-                     f"covers {_pct(cov)} of the night" + ("" if cov is None or cov >= 0.999 else
-                                                            " (defaults elsewhere)"))
+        older = [str(i) for i in c.get("report_ids") or [] if i != c["report_id"]]
+        lines.append(f"  conditions assumed: report {c['report_id']} from {c['source']}, issued {c['issued_at']}"
+                     + (f" (and, where it is silent, report{'s' if len(older) > 1 else ''} {', '.join(older)})"
+                        if older else "")
+                     + f"; covers {_pct(cov)} of the night" + ("" if cov is None or cov >= 0.999 else
+                                                              " (defaults elsewhere)"))
+    if c.get("warning"):
+        lines.append(f"  warning: {c['warning']}")
     return lines
 
 
-def entry_table(doc: dict[str, Any]) -> Table:
+# Columns of the entry table in the order shown. Ids and start times always show; at a
+# narrower width the others go first in DROP_ORDER, then the end times, and the target wraps.
+_COLUMNS = (("utc", "UTC", "left"), ("local", "local", "left"), ("id", "id", "right"), ("target", "target", "left"),
+            ("prog", "prog", "left"), ("band", "band", "left"), ("exp", "exp s", "right"),
+            ("airmass", "airmass", "right"), ("fwhm", "FWHM\"", "right"), ("pwv", "PWV mm", "right"),
+            ("trans", "trans", "right"), ("moon", "moon°", "right"), ("merit", "merit", "right"))
+DROP_ORDER = ("merit", "moon", "trans", "pwv", "fwhm", "airmass", "prog", "exp", "local", "band")
+_TARGET_MIN = 8  # the target column wraps down to this width before end times are dropped
+
+
+def _crosses_midnight(start: str | None, end: str | None) -> bool:
+    a, b = _t(start), _t(end)
+    return a is not None and b is not None and a.date() != b.date()
+
+
+def _times(start: str | None, end: str | None, dated: bool, with_end: bool) -> str:
+    t = _t(start)
+    day = f"{t.strftime('%m-%d')} " if dated and t is not None else ""
+    return day + hm(start) + (f"-{hm(end)}" if with_end else "")
+
+
+def _table_width(widths: list[int]) -> int:
+    # cell widths, one space of padding inside each separator (none at the outer edges: pad_edge
+    # False) and the separators themselves, the two edges included
+    n = len(widths)
+    return sum(widths) + 2 * n - 2 + n + 1
+
+
+def entry_table(doc: dict[str, Any], width: int | None = None) -> Table:
+    """The plan's entries as a table, fitted to ``width`` columns when given.
+
+    Ids and start times always show. When the night crosses midnight the times carry the date
+    (MM-DD). To fit, columns are left out in DROP_ORDER, then the end times; the target wraps.
+    The caption names what was left out.
+    """
+    from rich.cells import cell_len
+
     tz = doc["site"]["timezone"]
+    n = doc["night"]
+    dated_utc = _crosses_midnight(n["start"], n["end"])
+    dated_local = _crosses_midnight(n["start_local"], n["end_local"])
+
+    def cells(with_end: bool) -> dict[str, list[str]]:
+        out: dict[str, list[str]] = {k: [] for k, _h, _j in _COLUMNS}
+        for e in doc["entries"]:
+            out["utc"].append(_times(e["start"], e["end"], dated_utc, with_end))
+            out["local"].append(_times(e["start_local"], e["end_local"], dated_local, with_end))
+            out["id"].append(f"{e['request_id']}{'*' if e.get('fixed') else ''}")
+            out["target"].append(clean(e["target"] or "?"))
+            out["prog"].append(clean(e["program"] or "?"))
+            out["band"].append(clean(e["band"] or "?"))
+            out["exp"].append(_f(e["exposure_s"], "{:.0f}"))
+            out["airmass"].append(f"{e['airmass_start']:.2f}-{e['airmass_end']:.2f}"
+                                  if e["airmass_start"] is not None else "-")
+            out["fwhm"].append(_f(e["predicted_fwhm_arcsec"], "{:.2f}"))
+            out["pwv"].append(_f(e["predicted_pwv_mm"], "{:.1f}"))
+            out["trans"].append(_f(e["transmission"], "{:.2f}"))
+            out["moon"].append(_f(e["moon_sep_deg"], "{:.0f}"))
+            out["merit"].append(_f(e["merit"], "{:.2f}"))
+        return out
+
+    def widths(data: dict[str, list[str]], keys: list[str]) -> list[int]:
+        got = []
+        for k, head, _j in _COLUMNS:
+            if k in keys:
+                w = max([cell_len(head)] + [cell_len(x) for x in data[k]])
+                got.append(min(w, _TARGET_MIN) if k == "target" else w)
+        return got
+
+    with_end = True
+    data = cells(with_end)
+    keys = [k for k, _h, _j in _COLUMNS]
+    dropped: list[str] = []
+    if width is not None:
+        for k in DROP_ORDER:
+            if _table_width(widths(data, keys)) <= width:
+                break
+            keys.remove(k)
+            dropped.append(k)
+        if _table_width(widths(data, keys)) > width:
+            with_end = False
+            data = cells(with_end)
     t = SafeTable(title=None, show_lines=False, header_style="bold", pad_edge=False)
-    for name, just in (("UTC", "left"), ("local", "left"), ("id", "right"), ("target", "left"), ("prog", "left"),
-                       ("band", "left"), ("exp s", "right"), ("airmass", "right"), ("FWHM\"", "right"),
-                       ("PWV mm", "right"), ("trans", "right"), ("moon°", "right"), ("merit", "right")):
-        t.add_column(name, justify=just, no_wrap=True)
-    for e in doc["entries"]:
-        am = f"{e['airmass_start']:.2f}-{e['airmass_end']:.2f}" if e["airmass_start"] is not None else "-"
-        mark = "*" if e.get("fixed") else ""
-        t.add_row(
-            f"{hm(e['start'])}-{hm(e['end'])}", f"{hm(e['start_local'])}-{hm(e['end_local'])}",
-            f"{e['request_id']}{mark}", e["target"] or "?", e["program"] or "?", e["band"] or "?",
-            _f(e["exposure_s"], "{:.0f}"), am, _f(e["predicted_fwhm_arcsec"], "{:.2f}"),
-            _f(e["predicted_pwv_mm"], "{:.1f}"), _f(e["transmission"], "{:.2f}"), _f(e["moon_sep_deg"], "{:.0f}"),
-            _f(e["merit"], "{:.2f}"),
-        )
-    t.caption = f"times: UTC and local ({tz}); * = kept from the previous plan (in progress or frozen)"
+    for k, head, just in _COLUMNS:
+        if k in keys:
+            if k == "target":  # wraps when space is short; everything else stays whole
+                t.add_column(head, justify=just, overflow="fold", min_width=min(_TARGET_MIN, cell_len(head) + 2))
+            else:
+                t.add_column(head, justify=just, no_wrap=True)
+    for i in range(len(doc["entries"])):
+        t.add_row(*(data[k][i] for k in keys))
+    caption = f"times: UTC and local ({tz})" if "local" in keys else "times: UTC"
+    if dated_utc or (dated_local and "local" in keys):
+        caption += ", dated MM-DD as the night crosses midnight"
+    caption += "; * = kept from the previous plan (in progress or frozen)"
+    if dropped or not with_end:
+        names = [h for k, h, _j in _COLUMNS if k in dropped] + ([] if with_end else ["end times"])
+        caption += f"; left out at this width: {', '.join(names)} (`plan show --json` has every field)"
+    t.caption = caption
     return t
 
 
@@ -87,7 +173,7 @@ def print_plan(console: Console, doc: dict[str, Any], *, unscheduled: bool = Fal
     for line in summary_lines(doc):
         console.print(Text(clean(line)))
     console.print(Text(doc["caution"], style="yellow"))
-    console.print(entry_table(doc))
+    console.print(entry_table(doc, width=console.width))
     if unscheduled and doc["unscheduled"]:
         t = SafeTable("id", "target", "prog", "band", "why not", title="unscheduled", header_style="bold")
         for u in doc["unscheduled"]:

@@ -33,6 +33,15 @@ from scheduler.service.log import EventLog
 MAINTENANCE_S = 60.0
 
 
+class DatabaseDamaged(Exception):
+    """The start-up integrity check found damage: the service refuses to run on the file."""
+
+    def __init__(self, what: str, problems: list[str]):
+        super().__init__(problems[0])
+        self.what = what
+        self.problems = problems
+
+
 class Service:
     def __init__(self, db: Database, config: ObservatoryConfig, *, log: EventLog, clock: Clock,
                  watch: Path | None = None, poll_s: float = 2.0, time_limit_s: float | None = None, web=None):
@@ -53,20 +62,24 @@ class Service:
 
     # ------------------------------------------------------------------ job wrapper
 
-    def _guard(self, name: str, fn: Callable[[], object]) -> Callable[[], None]:
-        """A job that never raises: a failure is one log line and the service keeps running."""
-        def run() -> None:
+    def _guard(self, name: str, fn: Callable[[], object]) -> Callable[[], bool]:
+        """A job that never raises: a failure is one log line and the service keeps running.
+        The wrapped job returns False when it failed."""
+        def run() -> bool:
             if self._stop.is_set():
-                return
+                return True
             try:
                 fn()
             except LockLost as e:
                 self.log.error("lock_lost", error=str(e))
                 self.exit_code = 1
                 self._stop.set()
+                return False
             except Exception as e:  # noqa: BLE001 - keep the service alive
                 first = (str(e).strip().splitlines() or [repr(e)])[0][:500]
                 self.log.error("job_failed", job=name, error=f"{type(e).__name__}: {first}")
+                return False
+            return True
         return run
 
     def _after_feed(self) -> None:
@@ -75,6 +88,15 @@ class Service:
             self._scheduler.modify_job("validity", next_run_time=datetime.now(timezone.utc))
 
     # ------------------------------------------------------------------ run
+
+    def check_database(self) -> None:
+        """The quick integrity check at start: a damaged database is refused, never served
+        (a write into a damaged file can spread the damage)."""
+        what, problems = self.db.check_integrity(quick=True)
+        if problems:
+            self.log.error("database_damaged", db=self.db.url, check=what, problems=len(problems), first=problems[0])
+            raise DatabaseDamaged(what, problems)
+        self.log.info("database_checked", check=what, result="ok")
 
     def start_lock(self) -> None:
         """Take the database lock (raises LockHeld if a live service has it)."""
@@ -89,23 +111,34 @@ class Service:
                       heartbeat_min=self.config.planning.heartbeat_min)
 
     def run_once(self) -> int:
-        """--once: every job one time, in order, then release the lock."""
+        """--once: every job one time, in order, then release the lock.
+
+        Exit status 1 when a job failed or a re-plan stored nothing (disk full, a damaged file,
+        the checker refusing the plan): cron and monitoring see it, not only the log.
+        """
+        self.check_database()
         self.start_lock()
         self._started("once")
+        failed_jobs: list[str] = []
         try:
             for name, fn in (("expire", self.jobs.expire), ("feed", self.jobs.ingest_folder),
                              ("orders", self.jobs.take_orders), ("validity", self.jobs.check_validity),
                              ("heartbeat", self.jobs.heartbeat)):
-                self._guard(name, fn)()
+                if not self._guard(name, fn)():
+                    failed_jobs.append(name)
         finally:
             self.lock.release()
-            self.log.info("service_stopped", mode="once")
+            if failed_jobs or self.jobs.failed_replans:
+                self.exit_code = self.exit_code or 1
+            self.log.info("service_stopped", mode="once", exit_code=self.exit_code,
+                          failed_jobs=",".join(failed_jobs) or None, failed_replans=self.jobs.failed_replans)
         return self.exit_code
 
     def run_forever(self) -> int:
         from apscheduler.executors.pool import ThreadPoolExecutor
         from apscheduler.schedulers.background import BackgroundScheduler
 
+        self.check_database()
         self.start_lock()
         previous = {sig: signal.signal(sig, self._on_signal) for sig in (signal.SIGTERM, signal.SIGINT)}
         sched = BackgroundScheduler(

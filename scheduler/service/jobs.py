@@ -21,7 +21,7 @@ from scheduler.db import plans, store
 from scheduler.db.models import ConditionsReport, Outcome, Plan, Request, utcnow
 from scheduler.db.session import Database
 from scheduler.model.errors import InputError
-from scheduler.planning.planner import Planner, sample_of
+from scheduler.planning.planner import Planner, plan_report_ids, reports_for_night, stored_plan_reports
 from scheduler.planning.replan import carry_out_orders, orders_reason, replan, take_pending_orders
 from scheduler.model.request import ACTIVE_STATUSES
 from scheduler.service.clock import Clock
@@ -55,6 +55,7 @@ class Jobs:
         self._unmovable: set[str] = set()
         self._auto_paused_until = 0.0
         self._settle = SettleWatch(config.service.feed_settle_s)  # feed files seen, until they settle
+        self.failed_replans = 0  # re-plans that stored nothing (`serve --once` exits non-zero after one)
 
     # ------------------------------------------------------------------ helpers
 
@@ -81,6 +82,10 @@ class Jobs:
                           planned_from=built.planned_from, entries=len(r.entries), status=r.solver_status,
                           objective=r.objective, gap=r.gap, seconds=secs, added=len(diff.get("added", [])),
                           dropped=len(diff.get("dropped", [])), moved=len(diff.get("moved", [])), reason=reason)
+            if built.conditions_warning:
+                self.log.warning("forecast_coverage_low", version=built.version, night=night,
+                                 share=round(built.forecast_share, 3),
+                                 min_share=self.config.planning.min_forecast_share, warning=built.conditions_warning)
         self._checked_key = None  # look again at the new plan
         return built
 
@@ -93,6 +98,7 @@ class Jobs:
             self.log.error("replan_failed", trigger=trigger, error=f"{type(e).__name__}: {e}")
             ok = False
         if not ok:
+            self.failed_replans += 1
             self._auto_paused_until = time.monotonic() + RETRY_AFTER_FAILURE_S
 
     # ------------------------------------------------------------------ conditions feed
@@ -185,6 +191,8 @@ class Jobs:
         result, version = carry_out_orders(self.db, [o[0] for o in orders],
                                            lambda: self.replan(orders_reason(orders), trigger="order"))
         (self.log.info if version is not None else self.log.error)("order_done", orders=ids, result=result)
+        if version is None:
+            self.failed_replans += 1
         return len(orders)
 
     # ------------------------------------------------------------------ validity
@@ -229,16 +237,16 @@ class Jobs:
         rows = {r.id: r for r in s.scalars(select(Request).where(Request.id.in_({e.request_id for e in entries})))}
         specs = {rid: store.to_spec(r) for rid, r in rows.items()}
 
-        latest = store.latest_conditions(s)
-        latest_samples = [sample_of(x) for x in latest.samples] if latest is not None else []
-        cond = self.planner.conditions(night, latest_samples, latest.id if latest else None)
-        if latest is not None and latest.id != plan.conditions_report_id:
-            old_rep = s.get(ConditionsReport, plan.conditions_report_id) if plan.conditions_report_id else None
-            old = self.planner.conditions(night, [sample_of(x) for x in old_rep.samples] if old_rep else [],
-                                          plan.conditions_report_id)
+        # the night's conditions as a build now would see them (merge.py: the newest report covering
+        # each time), against those the plan was built on; a report for another night changes nothing
+        cond = self.planner.night_conditions(night, reports_for_night(s, night))
+        if cond.report_ids != plan_report_ids(plan):
+            old = self.planner.night_conditions(night, stored_plan_reports(s, plan))
             changes = conditions_changes(cfg, night, old, cond, now)
             if changes:
-                reasons.append(f"conditions report {latest.id} ({latest.source}): " + "; ".join(changes))
+                newest = s.get(ConditionsReport, cond.report_id) if cond.report_id is not None else None
+                label = f"conditions report {newest.id} ({newest.source})" if newest is not None else "conditions"
+                reasons.append(f"{label}: " + "; ".join(changes))
             reasons += entry_failures(cfg, night, cache, entries, specs, cond, now)
 
         outcomes = list(s.scalars(select(Outcome).where(Outcome.recorded_at > plan.created_at).order_by(Outcome.id)))

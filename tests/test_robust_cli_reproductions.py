@@ -1,9 +1,10 @@
-"""Defects whose fix is ready in the core but not yet called by the command line.
+"""The issue's reproductions that needed the command line wired to the core's checks.
 
-Each test states the behaviour the command must have, through the real CLI on a real SQLite
-file, and is marked xfail(strict=True) until the command calls the check named in its reason:
-when the wiring lands the test passes, strict xfail turns that into a failure, and the marker
-must then be removed. None of them may be left marked once the command-line work is done.
+Each test states the behaviour a command must have, through the real CLI on a real SQLite
+file: request import through model.request.parse_import_text, program add through
+validate_program, --source and --reason through model.untrusted.check_text, --night through
+model.timegrid.parse_date, --allow-past, and the 0600 service log (service.log.create_log_file).
+More cases of each are in tests/test_robust_cli.py.
 """
 
 from __future__ import annotations
@@ -25,11 +26,9 @@ def _refused(proc, field: str) -> None:
     assert "\x1b" not in proc.stderr + proc.stdout
 
 
-IMPORT_WIRING = "request import still parses its file in cli/main.py; call model.request.parse_import_text"
 GOOD = "STAR-1,Invented 1,10,-20,V,100"
 
 
-@pytest.mark.xfail(strict=True, reason=IMPORT_WIRING)
 @pytest.mark.parametrize("name, text, field", [
     ("twice.csv", f"program,target,ra,dec,band,exposure_s,ra\n{GOOD},200\n", "ra"),
     ("deep.json", "[" * 100_000 + "]" * 100_000, "file"),
@@ -46,8 +45,6 @@ def test_request_import_file_shapes(workdir, name, text, field):
     assert cli_json("request", "list", cwd=workdir) == []
 
 
-@pytest.mark.xfail(strict=True, reason="program add: db/store.add_program should call model.request.validate_program "
-                                       "and the CLI take --hours/--weight as text")
 @pytest.mark.parametrize("args, field", [
     (["NL\n", "--pi", "Dr. X"], "code"),
     (["P2", "--pi", "Dr. \u202eX"], "pi"),
@@ -60,25 +57,20 @@ def test_program_add_refuses(workdir, args, field):
     assert [p["code"] for p in cli_json("program", "list", cwd=workdir)] == ["STAR-1"]
 
 
-@pytest.mark.xfail(strict=True, reason="conditions load --source: the CLI should pass it through model.untrusted.check_text")
 def test_conditions_source_with_escapes_is_refused(workdir):
     f = workdir / "c.csv"
     f.write_text("time,pwv_mm\n2026-12-16T23:00:00Z,1\n", encoding="utf-8")
     _refused(run_cli("conditions", "load", str(f), "--source", "met\x1b]0;owned\x07", cwd=workdir), "source")
 
 
-@pytest.mark.xfail(strict=True, reason="plan build/replan --reason: the CLI should pass it through model.untrusted.check_text")
 def test_replan_reason_with_escapes_is_refused(workdir):
     _refused(run_cli("replan", "--reason", "storm\x1b[2J", cwd=workdir), "reason")
 
 
-@pytest.mark.xfail(strict=True, reason="almanac/plan --night: the CLI should use model.timegrid.parse_date")
 def test_night_at_the_end_of_the_calendar_is_refused(workdir):
     _refused(run_cli("almanac", "--night", "9999-12-31", cwd=workdir), "night")
 
 
-@pytest.mark.xfail(strict=True, reason="request add/import: the CLI should pass now= and an --allow-past flag "
-                                       "to validate_request")
 def test_not_after_in_the_past_needs_allow_past(workdir):
     args = ["request", "add", "--program", "STAR-1", "--target", "a", "--ra", "10", "--dec", "-20", "--band", "V",
             "--exposure", "100", "--not-after", "2020-01-01T00:00:00Z"]
@@ -86,8 +78,6 @@ def test_not_after_in_the_past_needs_allow_past(workdir):
     assert run_cli(*args, "--allow-past", cwd=workdir).returncode == 0
 
 
-@pytest.mark.xfail(strict=True, reason="serve --log-file: the CLI pre-creates the file with the umask's mode; "
-                                       "call service.log.create_log_file instead")
 def test_serve_log_file_is_private(workdir):
     old = os.umask(0o022)
     try:
