@@ -57,7 +57,7 @@ def test_add_body_and_ephemeris_and_refusals(workdir):
         (["--ephemeris", "missing.csv"], "ephemeris_file: missing.csv:"),
         (["--body", "moon"], "body: 'moon': the Moon"),
         (["--body", "mars", "--ra", "10", "--dec", "5"], "give one of ra/dec, body or ephemeris_file"),
-        (["--ra", "10", "--dec", "5", "--guide-star-sep", "900"], "guide_star_sep_arcsec: 900 is out of range"),
+        (["--ra", "10", "--dec", "5", "--guide-star-sep", "900"], "guide_star_sep_arcsec: '900' is out of range"),
         (["--ephemeris", "comet.csv", "--not-after", "2026-12-20T00:00:00Z"], "the table ends at row 24"),
     ):
         proc = run_cli("request", "add", *BASE, "--target", "x", *extra, cwd=workdir)
