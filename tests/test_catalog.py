@@ -23,7 +23,7 @@ import pytest
 from scheduler.constraints import catalog
 from scheduler.constraints.catalog import BY_NAME, CATALOG, STEP_BITS, Constraint, Reason
 from scheduler.constraints.feasibility import evaluate
-from scheduler.constraints.windows import binding_constraint
+from scheduler.constraints.explain import binding
 from scheduler.model.plan import PlanEntry
 from scheduler.planning.explain import why_not
 from scheduler.report.why import explain, time_formatter
@@ -202,7 +202,7 @@ def test_entry_is_evaluated_explained_and_checked(name):
             assert _why(bit, spec, cd, 0, N_T) == c.breach(spec, cd, 0, N_T)
         else:
             assert f.ok[0].all()
-        assert binding_constraint(f.reasons[0])["description"] == c.wording
+        assert binding(f.reasons[0], d, 0)["constraints"] == [name]
         # explained: `plan why` names it as binding, in the catalog's wording, with its own detail
         w = why_not(config, spec, sk, cd, T0, [], {"P1": 1.0}, FMT)
         assert w.displaced is None and w.unobservable.binding == [name]

@@ -31,7 +31,7 @@ def planned(tmp_path_factory, _initialised_template):
 @pytest.fixture(scope="module")
 def inputs(planned):
     """(doc, night, config, samples, sky) of the plan, read once."""
-    from scheduler.db import plans
+    from scheduler.db import plans, store
     from scheduler.report.export import plan_document
     from scheduler.sky.night import compute_night
 
@@ -41,7 +41,7 @@ def inputs(planned):
         plan = plans.get_plan(s)
         night = compute_night(config.site, plan.night, config.planning.step_s)
         doc = plan_document(plans.stored_plan(s, plan), config, night)
-        samples = chart.plan_samples(s, doc["plan"]["conditions"]["report_id"])
+        samples = store.report_samples(s, doc["plan"]["conditions"]["report_id"])
     db.dispose()
     keys = list(dict.fromkeys((e["ra_deg"], e["dec_deg"]) for e in doc["entries"]))
     return doc, night, config, samples, keys

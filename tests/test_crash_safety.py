@@ -104,9 +104,16 @@ def test_sigkill_during_replans_loses_nothing(queue):
             if proc.poll() is not None:
                 raise AssertionError(f"service died by itself:\n{_log(folder)[-3000:]}")
             taken = _log(folder).count("order_taken")
+            started = _log(folder).count("replan_start")
             db.retrying(lambda s: plans.add_order(s, f"crash test order {k}", "crash-test"))
             _wait(lambda: _log(folder).count("order_taken") > taken, proc, folder, "the order to be taken")
-            time.sleep(rng.uniform(0.0, 5.0))  # a build in a fresh process takes about 3 s: most kills land inside one
+            if k % 2 == 0:
+                # every other kill is aimed: once the build has begun, within a fraction of the solver's
+                # 1.5 s budget, so that kills inside a build do not depend on how fast this machine is
+                _wait(lambda: _log(folder).count("replan_start") > started, proc, folder, "the build to begin")
+                time.sleep(rng.uniform(0.0, 0.3))
+            else:
+                time.sleep(rng.uniform(0.0, 5.0))  # anywhere: during the build, the store, or idle after it
             log_now = _log(folder)
             if log_now.rfind("replan_start") > max(log_now.rfind("plan_stored"), log_now.rfind("replan_failed")):
                 kills_during_build += 1

@@ -9,9 +9,10 @@ import numpy as np
 import pytest
 
 from scheduler.conditions.grid import ConditionsGrid
+from scheduler.constraints.catalog import names
 from scheduler.model.config import starter_config
 from scheduler.constraints.feasibility import (
-    TRANSMISSION_FLOOR, Reason, evaluate, reason_names, start_windows, static_layer,
+    TRANSMISSION_FLOOR, Reason, evaluate, start_windows, static_layer,
 )
 from scheduler.model.request import RequestSpec
 from scheduler.sky.airmass import kasten_young_1989
@@ -175,8 +176,8 @@ def test_seeing_cloud_and_closure():
     dome = np.array([True, True, True, True, True, False])
     f = run([req(max_seeing_arcsec=0.8, max_cloud_mag=0.5)], sky([60.0] * n_t),
             cond(n_t, seeing=seeing, cloud=cloud, wind=wind, humidity=hum, dome=dome))
-    assert [reason_names(b) for b in why(f, 0)] == [[], ["SEEING"], ["CLOUD"], ["CLOSURE"], ["CLOSURE"], ["CLOSURE"]]
-    assert all("NIGHT_END" in reason_names(b) for b in f.reasons[0])  # 8-step duration, 6-step grid
+    assert [names(b) for b in why(f, 0)] == [[], ["SEEING"], ["CLOUD"], ["CLOSURE"], ["CLOSURE"], ["CLOSURE"]]
+    assert all("NIGHT_END" in names(b) for b in f.reasons[0])  # 8-step duration, 6-step grid
     np.testing.assert_array_equal(f.ok[0], [True, False, False, False, False, False])
 
 

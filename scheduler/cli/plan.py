@@ -214,15 +214,15 @@ def plan_export(c: Ctx, fmt: str, output: str | None, version: int | None) -> No
 def plan_chart(c: Ctx, output: str, version: int | None, style: str, at_text: str | None) -> None:
     """Altitude against time of the planned targets, the timeline, twilight, the Moon, seeing and PWV."""
     from scheduler.db import store
-    from scheduler.report.chart import chart_format, measured_samples, plan_samples, render_chart
+    from scheduler.report.chart import chart_format, render_chart
     from scheduler.report.export import write_atomic
 
     fmt = chart_format(output)
     at = now_or(at_text, "at")
     doc, night, config = load_document(c, version)
     with c.db().session() as s:
-        samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
-        measured = measured_samples(s, night)
+        samples = store.report_samples(s, doc["plan"]["conditions"]["report_id"])
+        measured = store.measured_samples(s, night.start, night.end)
         tracks = store.ephemeris_tables(s, {e["request_id"] for e in doc["entries"]})
     data = render_chart(doc, night, config, samples, now=at, style=style, fmt=fmt, measured=measured, tracks=tracks)
     path = write_atomic(output, data)

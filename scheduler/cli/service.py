@@ -199,7 +199,7 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
 def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
     """Is the service alive (since when, pid, last heartbeat), the active plan, the last
     conditions report, pending re-plan orders."""
-    from scheduler.report.status import status_document
+    from scheduler.service.status import status_document
 
     _use_db(c, db_url)
     data = status_document(c.db())

@@ -88,11 +88,6 @@ SEEING_WASTE_WEIGHT = 0.5
 WATER_WASTE_WEIGHT = 0.25
 
 
-def reason_names(bits: int) -> list[str]:
-    """Names of the Reason bits set in ``bits`` (for `plan why` and reports)."""
-    return catalog.names(bits)
-
-
 @dataclass(frozen=True)
 class _Group:
     """Requests sharing a band and an instrument: one physics call each."""

@@ -1,10 +1,7 @@
 """When can a request be observed tonight, and if never, which constraint binds. Pure.
 
-``binding_constraint`` reads one request's reason bitmask row: the binding constraint is the
-one that, if it alone were lifted, would open the most time (a constraint that is the only
-failure somewhere); when every time fails two or more constraints, it is the one failing
-most often. "Closest" is the time with the fewest failing constraints. The constraints and
-their wording are the catalog's (constraints/catalog.py).
+When a request has no window, the binding constraint and the closest time are the ones
+``plan why`` gives (constraints/explain.py is their one home), read over the whole night.
 """
 
 from __future__ import annotations
@@ -15,41 +12,14 @@ from typing import Any, Sequence
 import numpy as np
 
 from scheduler.conditions.grid import conditions_on_grid
-from scheduler.constraints.catalog import CATALOG
-from scheduler.constraints.feasibility import Feasibility, evaluate, reason_names
+from scheduler.constraints.catalog import BY_NAME, STEP_BITS, names
+from scheduler.constraints.explain import binding, fewest_failing_step
+from scheduler.constraints.feasibility import Feasibility, evaluate
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
 from scheduler.model.timegrid import iso, runs, utc
 from scheduler.sky.ephemeris import SkyGrid, sky_for
 from scheduler.sky.night import Night, night_for
-
-
-def binding_constraint(reasons_row: np.ndarray) -> dict[str, Any]:
-    """The constraint that binds for one request over the night (see module docstring)."""
-    r = np.asarray(reasons_row, dtype=np.int64)
-    if r.size == 0:
-        return {"constraint": None, "description": "the night has no grid times", "closest_index": None}
-    best, best_opened = None, 0
-    counts = {}
-    for c in CATALOG:
-        bit = int(c.reason)
-        counts[c] = int(((r & bit) != 0).sum())
-        opened = int(((r & ~bit) == 0).sum() - (r == 0).sum())
-        if opened > best_opened:
-            best, best_opened = c, opened
-    if best is None:
-        best = max(counts, key=lambda c: counts[c])
-        if counts[best] == 0:
-            return {"constraint": None, "description": "feasible", "closest_index": int(np.argmax(r == 0))}
-    n_fail = np.array([bin(int(x)).count("1") for x in r])
-    closest = int(np.argmin(n_fail))
-    return {
-        "constraint": best.name,
-        "description": best.wording,
-        "alone_opens_steps": best_opened,
-        "closest_index": closest,
-        "closest_failing": reason_names(int(r[closest])),
-    }
 
 
 def request_windows(spec: RequestSpec, feas: Feasibility, row: int, night: Night) -> dict[str, Any]:
@@ -66,12 +36,14 @@ def request_windows(spec: RequestSpec, feas: Feasibility, row: int, night: Night
             "end": iso(utc(t[b - 1] + dur * step)),  # latest end
             "best_merit": round(float(feas.merit[row, a:b].max()), 4),
         })
-    if not out["windows"]:
-        bc = binding_constraint(feas.reasons[row])
-        out["binding"] = bc["description"]
-        out["binding_constraint"] = bc["constraint"]
-        if bc.get("closest_index") is not None and t.size:
-            out["closest"] = {"time": iso(utc(t[bc["closest_index"]])), "failing": bc.get("closest_failing", [])}
+    if not out["windows"] and t.size:
+        reasons = np.asarray(feas.reasons[row], dtype=np.int64)
+        bound = binding(reasons, dur, 0)["constraints"]
+        out["binding"] = " and ".join(BY_NAME[n].wording for n in bound)
+        out["binding_constraint"] = bound[0]
+        out["binding_constraints"] = bound  # two when no single constraint alone would open a window
+        closest = fewest_failing_step(reasons, 0)
+        out["closest"] = {"time": iso(utc(t[closest])), "failing": names(int(reasons[closest]) & STEP_BITS)}
     return out
 
 

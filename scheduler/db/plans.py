@@ -255,6 +255,11 @@ def pending_orders(s: Session) -> list[ReplanOrder]:
     return list(s.scalars(select(ReplanOrder).where(ReplanOrder.done_at.is_(None)).order_by(ReplanOrder.id)))
 
 
+def last_done_order(s: Session) -> ReplanOrder | None:
+    return s.scalar(select(ReplanOrder).where(ReplanOrder.done_at.is_not(None))
+                    .order_by(ReplanOrder.done_at.desc()).limit(1))
+
+
 def finish_order(order: ReplanOrder, result: str, plan_id: int | None) -> None:
     order.done_at = utcnow()
     order.result = result[:2000]

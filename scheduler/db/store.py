@@ -12,6 +12,7 @@ from typing import Any, Iterable
 from sqlalchemy import delete, func, select
 from sqlalchemy.orm import Session, contains_eager, selectinload
 
+from scheduler.conditions.ingest import Sample
 from scheduler.model.charging import charged_hours, completion, resolve_charge
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.program import DEFAULT_TIER, ProgramState
@@ -321,6 +322,35 @@ def conditions_reports_for(s: Session, start: datetime, end: datetime) -> list[C
     if ended:
         ids |= {rid for rid, _first, last in spans if last == max(ended)}
     return conditions_reports(s, ids)
+
+
+def sample_of(row: ConditionsSample) -> Sample:
+    """A stored conditions sample as the pipeline takes it."""
+    return Sample(time=row.time, seeing_arcsec=row.seeing_arcsec, pwv_mm=row.pwv_mm, cloud_mag=row.cloud_mag,
+                  wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open,
+                  coherence_time_ms=row.coherence_time_ms)
+
+
+def report_samples(s: Session, report_id: int | None) -> list[Sample]:
+    """The samples of one report (empty for None or a report that is gone: defaults were assumed)."""
+    if report_id is None:
+        return []
+    rep = s.get(ConditionsReport, report_id)
+    return [sample_of(x) for x in rep.samples] if rep is not None else []
+
+
+def measured_samples(s: Session, start: datetime, end: datetime) -> list[Sample]:
+    """Samples in [start, end] that were already in the past when their report was issued:
+    measurements, as opposed to forecast values (the newest report wins for a time)."""
+    rows = s.execute(select(ConditionsSample, ConditionsReport.id)
+                     .join(ConditionsReport, ConditionsSample.report_id == ConditionsReport.id)
+                     .where(ConditionsSample.time >= start, ConditionsSample.time <= end,
+                            ConditionsSample.time <= ConditionsReport.issued_at)
+                     .order_by(ConditionsSample.time, ConditionsReport.id)).all()
+    by_time: dict = {}
+    for smp, _rid in rows:
+        by_time[smp.time] = sample_of(smp)
+    return [by_time[t] for t in sorted(by_time)]
 
 
 def conditions_reports(s: Session, ids) -> list[ConditionsReport]:

@@ -47,15 +47,9 @@ class BuiltPlan:
     conditions_warning: str | None = None  # merge.coverage_warning: below planning.min_forecast_share
 
 
-def sample_of(row) -> Sample:
-    return Sample(time=row.time, seeing_arcsec=row.seeing_arcsec, pwv_mm=row.pwv_mm, cloud_mag=row.cloud_mag,
-                  wind_ms=row.wind_ms, humidity_pct=row.humidity_pct, dome_open=row.dome_open,
-                  coherence_time_ms=row.coherence_time_ms)
-
-
 def report_of(row) -> Report:
     """A stored conditions report as conditions/merge.py takes it."""
-    return Report(row.id, as_utc(row.issued_at), tuple(sample_of(x) for x in row.samples))
+    return Report(row.id, as_utc(row.issued_at), tuple(store.sample_of(x) for x in row.samples))
 
 
 def reports_for_night(s, night: Night) -> tuple[Report, ...]:

@@ -196,38 +196,6 @@ def place_boxes(wanted: Sequence[tuple[float, float, float, float]], bounds: tup
     return out
 
 
-# --------------------------------------------------------------------------- reading what the chart needs
-
-def plan_samples(s, report_id: int | None) -> list:
-    """The conditions samples of the report a plan was built on (empty: defaults were assumed)."""
-    from scheduler.db.models import ConditionsReport
-    from scheduler.planning.planner import sample_of
-
-    if report_id is None:
-        return []
-    rep = s.get(ConditionsReport, report_id)
-    return [sample_of(x) for x in rep.samples] if rep is not None else []
-
-
-def measured_samples(s, night: Night) -> list:
-    """Samples inside the night that were already in the past when their report was issued:
-    measurements, as opposed to forecast values (newest report wins for a time)."""
-    from sqlalchemy import select
-
-    from scheduler.db.models import ConditionsReport, ConditionsSample
-    from scheduler.planning.planner import sample_of
-
-    rows = s.execute(select(ConditionsSample, ConditionsReport.id)
-                     .join(ConditionsReport, ConditionsSample.report_id == ConditionsReport.id)
-                     .where(ConditionsSample.time >= night.start, ConditionsSample.time <= night.end,
-                            ConditionsSample.time <= ConditionsReport.issued_at)
-                     .order_by(ConditionsSample.time, ConditionsReport.id)).all()
-    by_time: dict = {}
-    for smp, _rid in rows:
-        by_time[smp.time] = sample_of(smp)
-    return [by_time[t] for t in sorted(by_time)]
-
-
 # --------------------------------------------------------------------------- the figure
 
 class _Target:

@@ -315,7 +315,7 @@ def create_app(db, config: ObservatoryConfig, *, clock=None, token: str | None =
         return Response(to_json(doc), media_type="application/json", headers={"cache-control": "no-store"})
 
     async def api_status(request: Request):
-        from scheduler.report.status import status_document
+        from scheduler.service.status import status_document
 
         data = await run_in_threadpool(status_document, db)
         return Response(json.dumps(data, indent=2, default=str) + "\n", media_type="application/json",
@@ -323,7 +323,7 @@ def create_app(db, config: ObservatoryConfig, *, clock=None, token: str | None =
 
     def render_svg(style: str) -> bytes | None:
         from scheduler.db import store
-        from scheduler.report.chart import measured_samples, plan_samples, render_chart
+        from scheduler.report.chart import render_chart
 
         doc, night = load_plan()
         if doc is None:
@@ -333,8 +333,8 @@ def create_app(db, config: ObservatoryConfig, *, clock=None, token: str | None =
 
         def make():
             with db.session() as s:
-                samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
-                measured = measured_samples(s, night)
+                samples = store.report_samples(s, doc["plan"]["conditions"]["report_id"])
+                measured = store.measured_samples(s, night.start, night.end)
                 tracks = store.ephemeris_tables(s, {e["request_id"] for e in doc["entries"]})
             return render_chart(doc, night, config, samples, now=n, style=style, fmt="svg", measured=measured,
                                 tracks=tracks)

@@ -191,11 +191,11 @@ def change_key(s) -> dict[str, Any]:
 
 def page_view(db, config: ObservatoryConfig, night_of, almanacs: AlmanacCache, now: datetime) -> dict[str, Any]:
     """Everything the page shows at ``now`` (the service's clock when it runs a rehearsal)."""
-    from scheduler.db import plans
-    from scheduler.report.chart import entry_state, measured_samples, plan_samples
+    from scheduler.db import plans, store
+    from scheduler.report.chart import entry_state
     from scheduler.report.export import plan_document
     from scheduler.report.next import what_next
-    from scheduler.report.status import status_document
+    from scheduler.service.status import status_document
 
     status = status_document(db)
     view: dict[str, Any] = {"now": iso(now), "status": status, "doc": None, "site_name": config.site.name,
@@ -210,8 +210,8 @@ def page_view(db, config: ObservatoryConfig, night_of, almanacs: AlmanacCache, n
         doc = plan_document(plans.stored_plan(s, plan), config, night)
         outcomes = _entry_outcomes(s, plan, doc)
         versions = _versions(s, plan.night)
-        samples = plan_samples(s, doc["plan"]["conditions"]["report_id"])
-        measured = measured_samples(s, night)
+        samples = store.report_samples(s, doc["plan"]["conditions"]["report_id"])
+        measured = store.measured_samples(s, night.start, night.end)
         statuses = {}
         if doc["entries"]:
             from scheduler.db.models import Request

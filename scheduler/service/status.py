@@ -8,17 +8,13 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import select
-
+from scheduler.db import plans, store
 from scheduler.db.session import Database
 from scheduler.model.timegrid import iso
+from scheduler.service.lock import read_lock
 
 
 def status_document(db: Database) -> dict[str, Any]:
-    from scheduler.db import plans, store
-    from scheduler.db.models import ReplanOrder
-    from scheduler.service.lock import read_lock
-
     info = read_lock(db)
     if info is None:
         service = {"alive": False, "state": "stopped", "why": "no service holds this database"}
@@ -45,7 +41,6 @@ def status_document(db: Database) -> dict[str, Any]:
             "received_at": iso(rep.received_at), "samples": rep.n_samples,
         }
         pending = [plans.order_dict(o) for o in plans.pending_orders(s)]
-        last = s.scalar(select(ReplanOrder).where(ReplanOrder.done_at.is_not(None))
-                        .order_by(ReplanOrder.done_at.desc()).limit(1))
+        last = plans.last_done_order(s)
         last_d = plans.order_dict(last) if last is not None else None
     return {"service": service, "plan": plan_d, "conditions": rep_d, "pending_orders": pending, "last_order": last_d}
