@@ -13,6 +13,12 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 
+# The CLI fits its tables to COLUMNS. The test runner's workers set it (pytest-xdist sets 80), so
+# every process a test starts sees the width a user piping the output gets, unless a test asks
+# for a width itself.
+for _name in ("COLUMNS", "LINES"):
+    os.environ.pop(_name, None)
+
 
 def run_cli(*args: str, cwd: Path, env: dict | None = None, check: bool = False,
             timeout: float = 300) -> subprocess.CompletedProcess:

@@ -176,6 +176,7 @@ def _marked_doc(inputs):
     return doc, now, first["request_id"], entries
 
 
+@pytest.mark.slow
 def test_svg_marks_now_in_progress_frozen_and_ids(inputs):
     doc, now, rep_id, entries = _marked_doc(inputs)
     svg = _render(inputs, doc, now=now, fmt="svg").decode()
@@ -219,6 +220,7 @@ def test_labels_never_overlap_and_close_repeats_share_one(inputs):
     assert any("17 Dec" in t for t in tick_texts) and any("16 Dec" in t for t in tick_texts)
 
 
+@pytest.mark.slow
 def test_png_night_style_is_dark_and_day_style_light(inputs):
     import matplotlib.image as mpimg
 
@@ -238,6 +240,7 @@ def test_png_night_style_is_dark_and_day_style_light(inputs):
     assert float(np.median(lum["day"])) > 0.5
 
 
+@pytest.mark.slow
 def test_pdf_and_svg_bytes(inputs):
     pdf = _render(inputs, fmt="pdf")
     svg = _render(inputs, fmt="svg")

@@ -16,6 +16,7 @@ def _add(workdir, *extra):
     return run_cli("request", "add", *GOOD, *extra, cwd=workdir)
 
 
+@pytest.mark.slow
 def test_add_list_show_withdraw(workdir):
     proc = _add(workdir, "--max-pwv", "3", "--priority", "8", "--repeats", "2", "--resolution", "0.5")
     assert proc.returncode == 0, proc.stderr
@@ -56,6 +57,7 @@ BAD = [
 ]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("override, field", BAD)
 def test_bad_input_is_one_line_exit_2_and_nothing_written(workdir, override, field):
     args = list(GOOD)

@@ -39,6 +39,7 @@ def test_almanac_moon_illumination_against_pyephem(workdir):
     assert data["moon_illumination"] == pytest.approx(moon.moon_phase, abs=0.01)
 
 
+@pytest.mark.slow
 def test_conditions_load_show_and_refusal(workdir):
     good = workdir / "forecast.csv"
     good.write_text("time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome\n"
@@ -61,6 +62,7 @@ def test_conditions_load_show_and_refusal(workdir):
     assert cli_json("conditions", "show", cwd=workdir)["id"] == shown["id"]  # nothing new stored
 
 
+@pytest.mark.slow
 def test_request_show_night_windows_and_binding_constraint(workdir):
     # Dec +60 culminates at 90 - |(-26.6) - 60| = 3.4 deg: never above the 20 deg limit.
     low = run_cli("request", "add", "--program", "STAR-1", "--target", "north", "--ra", "0", "--dec", "60",

@@ -14,9 +14,10 @@ import sys
 import time
 from pathlib import Path
 
+import pytest
+from conftest import ROOT, cli_json
 from sqlalchemy import select
 
-from conftest import ROOT, cli_json
 from scheduler.db import plans
 from scheduler.db.models import Plan
 from scheduler.db.session import open_db
@@ -48,6 +49,7 @@ def _script(k: int, folder: Path) -> str:
     return "set -e\n" + "\n".join(lines) + "\n"
 
 
+@pytest.mark.slow
 def test_concurrent_submitters_lose_nothing(workdir):
     cfg = workdir / "observatory.toml"
     cfg.write_text(cfg.read_text().replace("time_limit_s = 10", "time_limit_s = 1"))

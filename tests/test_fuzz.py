@@ -145,6 +145,7 @@ CLI_CASES = [
 ]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("case", CLI_CASES, ids=[next(iter(c)) for c in CLI_CASES])
 def test_cli_import_fuzz_sample_is_refused_cleanly(workdir, case):
     good = _valid_base()
@@ -372,6 +373,7 @@ def check_spec_record(spec: RequestSpec) -> None:
 
 
 @pytest.mark.slow
+@pytest.mark.xdist_group("slow-fuzz")  # the figures test reads the counts the families leave in this process
 @settings(SLOW, max_examples=SLOW_CASES["request add"])
 @given(data=st.data())
 def test_slow_request_add_commands(data, _initialised_template, tmp_path_factory):
@@ -464,6 +466,7 @@ def _import_file(data, folder: Path) -> tuple[Path, list[dict], bool, bool]:
 
 
 @pytest.mark.slow
+@pytest.mark.xdist_group("slow-fuzz")  # the figures test reads the counts the families leave in this process
 @settings(SLOW, max_examples=SLOW_CASES["request import"])
 @given(data=st.data())
 def test_slow_request_import_files(data, _initialised_template, tmp_path_factory):
@@ -497,6 +500,7 @@ COND_PLAUSIBLE["dome"] = st.sampled_from(["open", "closed", " Closed ", ""])
 
 
 @pytest.mark.slow
+@pytest.mark.xdist_group("slow-fuzz")  # the figures test reads the counts the families leave in this process
 @settings(SLOW, max_examples=SLOW_CASES["conditions load"])
 @given(data=st.data())
 def test_slow_conditions_files(data, _initialised_template, tmp_path_factory):
@@ -572,6 +576,7 @@ TOML_EDITS = [
 
 
 @pytest.mark.slow
+@pytest.mark.xdist_group("slow-fuzz")  # the figures test reads the counts the families leave in this process
 @settings(SLOW, max_examples=SLOW_CASES["observatory.toml"])
 @given(data=st.data())
 def test_slow_observatory_toml_files(data, _initialised_template, tmp_path_factory):
@@ -605,6 +610,7 @@ def test_slow_observatory_toml_files(data, _initialised_template, tmp_path_facto
 
 
 @pytest.mark.slow
+@pytest.mark.xdist_group("slow-fuzz")  # the figures test reads the counts the families leave in this process
 @settings(SLOW, max_examples=SLOW_CASES["subprocess"])
 @given(data=st.data())
 def test_slow_real_subprocess_sample(data, _initialised_template, tmp_path_factory):
@@ -654,6 +660,7 @@ def _run_bytes(q: Queue, args: list[str]):
 
 
 @pytest.mark.slow
+@pytest.mark.xdist_group("slow-fuzz")  # the figures test reads the counts the families leave in this process
 def test_slow_fuzz_figures():
     """Runs after the families above (file order): they together held the contract over 10,000+ cases."""
     ran = {k: sum(v.values()) for k, v in COUNTS.items()}

@@ -226,6 +226,7 @@ def test_upgrade_over_an_unknown_status_is_refused_and_changes_nothing(empty_db)
     assert {"summary_json", "diff_json"} <= cols and not {"summary", "diff"} & cols
 
 
+@pytest.mark.slow
 def test_cli_on_a_database_upgraded_by_init(tmp_path):
     """`nightplan init` upgrades an old file; the listings and the plan document read it."""
     db = open_db(f"sqlite:///{tmp_path / 'nightplan.sqlite'}")

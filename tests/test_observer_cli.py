@@ -5,6 +5,7 @@ Same small invented queue and night as tests/test_report.py (ids follow its CSV 
 
 from __future__ import annotations
 
+import pytest
 from conftest import cli_json, run_cli
 from test_report import BEFORE, NIGHT, build, make_queue
 
@@ -15,6 +16,7 @@ def _entries(folder) -> dict[int, dict]:
     return {e["request_id"]: e for e in cli_json("plan", "show", cwd=folder)["entries"]}
 
 
+@pytest.mark.slow
 def test_record_then_build_reflects_outcomes(workdir):
     make_queue(workdir)
     build(workdir, "first")
@@ -46,6 +48,7 @@ def test_record_then_build_reflects_outcomes(workdir):
     assert again.returncode == 2 and "is done" in again.stderr
 
 
+@pytest.mark.slow
 def test_observer_errors_are_one_line_and_write_nothing(workdir):
     none = run_cli("plan", "show", cwd=workdir)
     assert none.returncode == 2 and "no plan yet" in none.stderr and "Traceback" not in none.stderr

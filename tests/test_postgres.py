@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
+import pytest
 from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
-
 from conftest import cli_json, run_cli
+
 from scheduler.db import migrate
 from scheduler.db.models import Base
 from scheduler.db.session import open_db
@@ -23,6 +24,7 @@ def test_migrations_on_postgres(pg_url):
     db.dispose()
 
 
+@pytest.mark.slow
 def test_cli_queue_on_postgres(pg_url, tmp_path):
     env = {"NIGHTPLAN_DB": pg_url}
     run_cli("init", cwd=tmp_path, env=env, check=True)
@@ -41,6 +43,7 @@ def test_cli_queue_on_postgres(pg_url, tmp_path):
     assert cli_json("request", "show", str(rows[0]["id"]), cwd=tmp_path, env=env)["status"] == "withdrawn"
 
 
+@pytest.mark.slow
 def test_copy_sqlite_queue_to_postgres(pg_url, workdir):
     """The documented move from the SQLite default to a shared PostgreSQL server."""
     csv = workdir / "r.csv"
@@ -61,6 +64,7 @@ def test_copy_sqlite_queue_to_postgres(pg_url, workdir):
     assert proc.returncode == 2 and "not empty" in proc.stderr
 
 
+@pytest.mark.slow
 def test_service_on_postgres(pg_url, workdir):
     """The real service, unchanged, on PostgreSQL: first plan, an operator order, status, SIGTERM."""
     import os

@@ -194,6 +194,7 @@ def _png_size(data: bytes) -> tuple[int, int]:
     return struct.unpack(">II", data[16:24])
 
 
+@pytest.mark.slow
 def test_chart_is_a_readable_png(planned):
     proc = run_cli("plan", "chart", "-o", "chart.png", cwd=planned, check=True)
     data = (planned / "chart.png").read_bytes()
@@ -219,6 +220,7 @@ def test_why_never_rising_target_names_altitude(planned):
     assert "highest altitude -6." in res["details"]["ALTITUDE"]
 
 
+@pytest.mark.slow
 def test_why_displaced_request_names_the_entry_that_holds_its_time(planned):
     res = cli_json("plan", "why", str(WIN_LOW), cwd=planned)
     assert res["state"] == "displaced"
@@ -265,6 +267,7 @@ def test_why_unknown_request_is_a_clean_error(planned):
     assert proc.returncode == 2 and "request 999 not found" in proc.stderr and "Traceback" not in proc.stderr
 
 
+@pytest.mark.slow
 def test_next_inside_an_entry(planned, shown):
     entries = sorted(shown["entries"], key=lambda e: e["start"])
     assert len(entries) >= 3

@@ -57,6 +57,7 @@ def _no_raw(proc) -> None:
     assert not RAW.search(proc.stdout) and not RAW.search(proc.stderr)
 
 
+@pytest.mark.slow
 def test_markup_in_a_name_breaks_no_listing(workdir):
     """The reproduction: a target named [/], then `request list` (it used to exit 1)."""
     run_cli("program", "add", "P1", "--pi", "[/] Dr. [bold]Brace", cwd=workdir, check=True)
@@ -112,6 +113,7 @@ def _stored_as_is_sql(workdir, what: str, text: str) -> None:
         con.close()
 
 
+@pytest.mark.slow
 def test_control_characters_in_stored_text_are_shown_escaped(workdir):
     # input checks refuse such targets now; a database filled earlier may still hold them
     target = "x\x9b31my\u202ez\x7f"
