@@ -40,10 +40,29 @@ def cli_json(*args: str, cwd: Path, env: dict | None = None):
     return json.loads(run_cli(*args, "--json", cwd=cwd, env=env, check=True).stdout)
 
 
+STARTER_EFFORT_LINE = "# effort = 3 "
+TEST_EFFORT_LINE = "effort = 1   "
+
+
+def wall_clock(config_path: Path) -> None:
+    """Take the tests' fixed effort out of a folder's observatory.toml: builds and re-plans there
+    are bounded by the time limits again (for the tests of the time limits)."""
+    text = config_path.read_text(encoding="utf-8")
+    assert TEST_EFFORT_LINE in text
+    config_path.write_text(text.replace(TEST_EFFORT_LINE, STARTER_EFFORT_LINE, 1), encoding="utf-8")
+
+
 @pytest.fixture(scope="session")
 def _initialised_template(tmp_path_factory) -> Path:
     folder = tmp_path_factory.mktemp("template")
     run_cli("init", cwd=folder, check=True)
+    # Every build and re-plan in the tests does a fixed amount of search (planning.effort), never
+    # "as much as fits in N seconds", so no test depends on this machine's speed or load. The
+    # tests of the time limits themselves take the line out again (WALL_CLOCK below).
+    cfg = folder / "observatory.toml"
+    text = cfg.read_text(encoding="utf-8")
+    assert STARTER_EFFORT_LINE in text
+    cfg.write_text(text.replace(STARTER_EFFORT_LINE, TEST_EFFORT_LINE, 1), encoding="utf-8")
     run_cli("program", "add", "STAR-1", "--pi", "Dr. Mira Okafor", "--hours", "12", "--weight", "2",
             cwd=folder, check=True)
     return folder

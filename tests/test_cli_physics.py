@@ -128,7 +128,7 @@ def planned(tmp_path_factory, _initialised_template):
     (folder / "forecast.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
     run_cli("request", "import", "requests.csv", cwd=folder, check=True)
     run_cli("conditions", "load", "forecast.csv", "--source", "invented forecast", cwd=folder, check=True)
-    run_cli("plan", "build", "--night", NIGHT, "--time-limit", "2", "--now", BEFORE, cwd=folder, check=True)
+    run_cli("plan", "build", "--night", NIGHT, "--now", BEFORE, cwd=folder, check=True)
     return folder
 
 

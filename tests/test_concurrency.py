@@ -51,8 +51,6 @@ def _script(k: int, folder: Path) -> str:
 
 @pytest.mark.slow
 def test_concurrent_submitters_lose_nothing(workdir):
-    cfg = workdir / "observatory.toml"
-    cfg.write_text(cfg.read_text().replace("time_limit_s = 10", "time_limit_s = 1"))
     (workdir / "forecast.csv").write_text(
         "time,seeing_arcsec,pwv_mm,cloud_mag,wind_ms,humidity_pct,dome\n"
         "2026-12-16T22:00:00Z,0.8,2.0,0,5,30,open\n2026-12-17T10:00:00Z,0.9,3.0,0,5,30,open\n")

@@ -36,6 +36,10 @@ def test_starter_site_is_labelled_as_invented():
         (("safety", "max_humidity_pct"), 120, "safety.max_humidity_pct"),
         (("telescope", "slew_rate_az_deg_s"), 0, "telescope.slew_rate_az_deg_s"),
         (("planning", "step_s"), 7.5, "planning.step_s"),
+        (("planning", "effort"), 0, "planning.effort"),
+        (("planning", "effort"), 2.5, "planning.effort"),
+        (("planning", "effort"), 1001, "planning.effort"),
+        (("planning", "seed"), -1, "planning.seed"),
     ],
 )
 def test_out_of_range_values_name_their_key(path, value, key):
@@ -44,6 +48,13 @@ def test_out_of_range_values_name_their_key(path, value, key):
     with pytest.raises(ConfigError) as err:
         parse_config(data)
     assert str(err.value).startswith(key)
+
+
+def test_effort_is_optional_and_read_when_set():
+    data = _starter()
+    assert parse_config(data).planning.effort is None  # the starter file leaves it commented out
+    data["planning"]["effort"] = 12
+    assert parse_config(data).planning.effort == 12
 
 
 def test_unknown_and_missing_keys_are_named():

@@ -75,8 +75,6 @@ def test_service_on_postgres(pg_url, workdir):
     from conftest import ROOT, wait_while_running
 
     env = {"NIGHTPLAN_DB": pg_url}
-    cfg = workdir / "observatory.toml"
-    cfg.write_text(cfg.read_text().replace("time_limit_s = 10", "time_limit_s = 1.5"))
     run_cli("init", cwd=workdir, env=env, check=True)
     run_cli("program", "add", "PG-1", "--pi", "Dr. Post Gres", cwd=workdir, env=env, check=True)
     csv = workdir / "r.csv"

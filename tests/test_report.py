@@ -64,7 +64,7 @@ def make_queue(folder) -> None:
 
 
 def build(folder, reason: str = "test build") -> str:
-    return run_cli("plan", "build", "--night", NIGHT, "--time-limit", "2", "--now", BEFORE, "--reason", reason,
+    return run_cli("plan", "build", "--night", NIGHT, "--now", BEFORE, "--reason", reason,
                    cwd=folder, check=True).stdout
 
 
@@ -247,7 +247,7 @@ def test_why_altitude_and_airmass_come_from_the_same_time(planned, tmp_path):
                   "--band", "V", "--exposure", "300", "--max-airmass", "1.3", "--not-after", "2026-12-17T07:30:00Z",
                   cwd=tmp_path, check=True).stdout
     rid = re.search(r"\d+", rid).group(0)
-    run_cli("plan", "build", "--night", NIGHT, "--time-limit", "2", "--now", "2026-12-17T02:00:00Z",
+    run_cli("plan", "build", "--night", NIGHT, "--now", "2026-12-17T02:00:00Z",
             "--reason", "mid-night re-plan", cwd=tmp_path, check=True)
     res = cli_json("plan", "why", rid, cwd=tmp_path)
     assert res["plan_version"] == 2 and res["state"] == "never_feasible" and res["binding"] == ["ALTITUDE"]

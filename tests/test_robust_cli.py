@@ -30,7 +30,7 @@ def refused(proc, field: str) -> str:
 def test_plan_build_reason_is_checked_text(workdir, reason):
     """plan build --reason goes through model.untrusted.check_text; nothing is stored."""
     refused(run_cli("plan", "build", "--night", "2026-12-16", "--now", "2026-12-16T18:00:00Z", "--reason", reason,
-                    "--time-limit", "1", cwd=workdir), "reason")
+                    cwd=workdir), "reason")
     assert cli_json("plan", "list", cwd=workdir) == []
 
 
@@ -195,7 +195,7 @@ def dry_queue(folder) -> None:
 
 
 def build_night(folder):
-    return run_cli("plan", "build", "--night", NIGHT, "--now", BEFORE, "--time-limit", "1", "--reason", "test",
+    return run_cli("plan", "build", "--night", NIGHT, "--now", BEFORE, "--reason", "test",
                    cwd=folder)
 
 

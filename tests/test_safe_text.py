@@ -145,7 +145,7 @@ def test_plan_with_markup_and_controls_in_its_reason_and_names(workdir):
                 "--dec", "-30", "--band", "V", "--exposure", "600", cwd=workdir, check=True)
     _stored_as_is(workdir, "C\u202eD", ra=110.0)  # refused at input now; stored earlier
     reason = "[/] re-plan \x1b[31m after \x9b wind"
-    build = ("plan", "build", "--night", "2026-12-16", "--time-limit", "1", "--now", "2026-12-16T18:00:00Z", "--reason")
+    build = ("plan", "build", "--night", "2026-12-16", "--now", "2026-12-16T18:00:00Z", "--reason")
     assert run_cli(*build, reason, cwd=workdir).returncode == 2  # controls in a reason are refused now
     proc = run_cli(*build, "[/] re-plan [bold]after wind", cwd=workdir)
     _no_raw(proc)

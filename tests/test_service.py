@@ -21,7 +21,7 @@ from pathlib import Path
 import pytest
 from sqlalchemy import select
 
-from conftest import ROOT, run_cli
+from conftest import ROOT, run_cli, wall_clock
 from scheduler.conditions.ingest import parse_conditions
 from scheduler.model.config import load_config
 from scheduler.db import plans, store
@@ -244,6 +244,7 @@ def test_inline_and_service_replans_share_one_time_budget(night):
     """Every re-plan from now, inline or by the service, runs within the lower of
     planning.time_limit_s and planning.replan_time_limit_s (scheduler/planning/replan.py)."""
     cfg = night / "observatory.toml"
+    wall_clock(cfg)
     text = cfg.read_text(encoding="utf-8")
     assert "replan_time_limit_s = 4 " in text
     cfg.write_text(text.replace("replan_time_limit_s = 4 ", "replan_time_limit_s = 1.5 "), encoding="utf-8")
@@ -264,6 +265,25 @@ def test_inline_and_service_replans_share_one_time_budget(night):
     finally:
         db.dispose()
     assert limits == [1.5, 1.5]  # min(time_limit_s 2, replan_time_limit_s 1.5); inline used 2 before
+
+
+def test_a_configured_effort_bounds_every_replan_instead_of_the_clock(night):
+    """planning.effort (set in the tests' configuration) replaces the time limits for re-plans,
+    inline and by the service alike; the plan records the effort and the seed."""
+    inline = run_cli("replan", "--reason", "inline effort", cwd=night, env={"NIGHTPLAN_CLOCK": CLOCK})
+    assert inline.returncode == 0, inline.stderr
+    db = open_db(str(night / "nightplan.sqlite"), create_file=False)
+    try:
+        oid = db.retrying(lambda s: plans.add_order(s, "served effort", "test").id)
+        served_once = run_cli("serve", "--once", "--clock", CLOCK, cwd=night, timeout=120)
+        assert served_once.returncode == 0, served_once.stdout + served_once.stderr
+        with db.session() as s:
+            first = s.scalar(select(Plan).where(Plan.reason == "inline effort"))
+            by_service = s.get(Plan, s.get(ReplanOrder, oid).plan_id)
+            stats = [plans.plan_summary(p)["stats"] for p in (first, by_service)]
+    finally:
+        db.dispose()
+    assert [(x["effort"], x["seed"], x["time_limit_s"]) for x in stats] == [(1, 0, None), (1, 0, None)]
 
 
 def test_kill_9_then_restart_resumes(served, night):

@@ -22,7 +22,7 @@ SPENT,SPENT-NEXT,60.0,-40.0,R,1200,,,5
 
 
 def _build(folder):
-    run_cli("plan", "build", "--night", NIGHT, "--time-limit", "3", "--now", BEFORE, cwd=folder, check=True)
+    run_cli("plan", "build", "--night", NIGHT, "--now", BEFORE, cwd=folder, check=True)
     return cli_json("plan", "show", cwd=folder)
 
 

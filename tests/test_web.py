@@ -74,7 +74,7 @@ def make_planned_folder(folder: Path, template: Path) -> Path:
     db.retrying(lambda s: store.add_requests(s, specs))
     db.retrying(lambda s: store.store_conditions(s, forecast_samples(), "page test forecast (invented)"))
     built = Planner(config).build_and_store(db, night_date=datetime.fromisoformat(NIGHT).date(),
-                                            reason="page test plan", now=CLOCK, time_limit_s=2)
+                                            reason="page test plan", now=CLOCK)
     assert built.version is not None and built.result.entries, "the test queue should give a plan with entries"
     db.dispose()
     return folder
@@ -415,8 +415,7 @@ def test_events_follow_outcomes_plans_and_conditions(folder):
             assert _next_change(lines)["conditions"] == first["conditions"] + 1
 
             Planner(config).build_and_store(db, night_date=datetime.fromisoformat(NIGHT).date(),
-                                            reason="page test re-plan", now=CLOCK + timedelta(minutes=5),
-                                            time_limit_s=1)
+                                            reason="page test re-plan", now=CLOCK + timedelta(minutes=5))
             ev = _next_change(lines)
             assert ev["plan"] == 2
             assert c.get("/api/plan").json()["plan"]["reason"] == "page test re-plan"

@@ -73,17 +73,28 @@ def plan() -> None:
 @click.option("--night", help="YYYY-MM-DD, the local evening the night begins (default: the night containing now, "
                               "or the coming night)")
 @click.option("--time-limit", type=float, help="solver time limit in seconds, 0.1 to 3600 (default: planning.time_limit_s)")
+@click.option("--effort", type=int, help="instead of a time limit, a fixed amount of search, 1 to 1000 (the same "
+                                        "plan on any machine; default: planning.effort if set)")
+@click.option("--seed", type=int, help="seed of the randomized searches, 0 to 2147483647 (default: planning.seed)")
 @click.option("--reason", default="plan build (command line)", show_default=True, help="why this plan is built (stored)")
 @click.option("--now", "now_text", metavar="ISO", help="plan as if the clock read this time, ISO-8601 UTC (default: the "
                                                       "clock); inside the night nothing new starts before it")
 @pass_ctx
-def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str, now_text: str | None) -> None:
+def plan_build(c: Ctx, night: str | None, time_limit: float | None, effort: int | None, seed: int | None,
+               reason: str, now_text: str | None) -> None:
     """Build a plan from the queue and the latest conditions, check it, store it as a new version."""
     t_start = time.perf_counter()  # planning starts here: the time limit and the reported time count from it
+    from scheduler.model.config import MAX_EFFORT
     from scheduler.planning.planner import Planner
 
     if time_limit is not None and not (0.1 <= time_limit <= 3600):
         raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 3600 seconds")
+    if effort is not None and time_limit is not None:
+        raise InputError("effort", "give either --effort or --time-limit, not both")
+    if effort is not None and not (1 <= effort <= MAX_EFFORT):
+        raise InputError("effort", f"{effort} is out of range; allowed 1 to {MAX_EFFORT}")
+    if seed is not None and not (0 <= seed <= 2 ** 31 - 1):
+        raise InputError("seed", f"{seed} is out of range; allowed 0 to 2147483647")
     reason = check_text(reason, "reason", max_len=MAX_REASON)
     now = now_or(now_text, "now")
     config = c.config()
@@ -112,7 +123,8 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
         warn("no conditions report stored: the configuration's conservative defaults are assumed all night")
     progress(f"planning the night of {night_date.isoformat()} ({n_queue} requests in the queue)")
     built = planner.build_and_store(db, night_date=night_date, reason=reason, now=now,
-                                    time_limit_s=time_limit, progress=progress, started=t_start)
+                                    time_limit_s=time_limit, progress=progress, started=t_start,
+                                    effort=effort, seed=seed)
     r = built.result
     if built.version is None:
         click.echo(f"nightplan: error: the plan checker refused the plan ({len(r.violations)} violations); "
@@ -138,6 +150,9 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, reason: str,
                             + (f" ({100 * sm['dark_fraction_used']:.1f} %)" if sm["dark_fraction_used"] is not None else "")),
         ("unscheduled", f"{sm['unscheduled']} of {sm['queue_size'] if sm['queue_size'] is not None else n_queue}"),
         ("planned from", p["planned_from"]),
+        ("search", f"effort {p['search']['effort']}, seed {p['search']['seed']}" if p["search"]["effort"]
+                   else f"time limit {p['search']['time_limit_s']:g} s, seed {p['search']['seed']}"
+                   if p["search"]["time_limit_s"] is not None else "-"),
         ("reason", p["reason"]),
     ]
     for k, v in rows:

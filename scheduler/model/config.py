@@ -114,6 +114,9 @@ class ConditionDefaults:
     dome_open: bool
 
 
+MAX_EFFORT = 1000  # the largest deterministic work budget (solve/budget.py)
+
+
 @dataclass(frozen=True)
 class Planning:
     step_s: int = 60
@@ -133,6 +136,11 @@ class Planning:
     opportunity_step_min: int = 10  # coarse grid of the opportunities count, minutes
     # warn (plan build, service log, status) when forecasts cover less than this share of the night
     min_forecast_share: float = 0.5
+    # A deterministic work budget instead of the clock for every build and re-plan (an integer
+    # from 1 to 1000, solve/budget.py): the same queue, conditions, effort and seed give the same
+    # plan on any machine. None: the time limits above apply.
+    effort: int | None = None
+    seed: int = 0  # seeds the randomized searches (and CP-SAT)
 
 
 @dataclass(frozen=True)
@@ -295,7 +303,7 @@ DEFAULTS_KEYS = ("seeing_arcsec", "pwv_mm", "cloud_mag", "wind_ms", "humidity_pc
 PLANNING_KEYS = ("step_s", "time_limit_s", "replan_time_limit_s", "gap_tolerance", "freeze_horizon_min",
                  "replan_seeing_change_arcsec", "replan_pwv_change_mm", "heartbeat_min", "min_forecast_share",
                  "priority_ratio", "lookahead_nights", "urgency_max", "balance_max", "allow_overfill",
-                 "opportunity_step_min")
+                 "opportunity_step_min", "effort", "seed")
 SERVICE_KEYS = ("feed_settle_s",)
 CLIMATOLOGY_KEYS = ("file",)
 ROOT_KEYS = ("site", "telescope", "band", "instrument", "safety", "defaults", "planning", "service", "climatology")
@@ -461,6 +469,8 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
         allow_overfill=pt.flag("allow_overfill", False),
         opportunity_step_min=_whole(pt, "opportunity_step_min", 1, 60, 10),
         min_forecast_share=pt.num("min_forecast_share", 0, 1, 0.5),
+        effort=_whole_or_none(pt, "effort", 1, MAX_EFFORT),
+        seed=_whole(pt, "seed", 0, 2 ** 31 - 1, 0),
     )
 
     sv = _Table(root._take("service", {}, False), "service", SERVICE_KEYS)
@@ -472,6 +482,15 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
 
 def _whole(t: _Table, k: str, lo: int, hi: int, default: int) -> int:
     v = t.num(k, lo, hi, default)
+    if v != int(v):
+        raise ConfigError(t.key(k), f"must be a whole number from {lo} to {hi}")
+    return int(v)
+
+
+def _whole_or_none(t: _Table, k: str, lo: int, hi: int) -> int | None:
+    v = t.num(k, lo, hi, None, required=False)
+    if v is None:
+        return None
     if v != int(v):
         raise ConfigError(t.key(k), f"must be a whole number from {lo} to {hi}")
     return int(v)

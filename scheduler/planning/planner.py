@@ -147,21 +147,30 @@ class Planner:
     def build(self, inputs: PlanInputs, night: Night, *, now: datetime | None = None,
               time_limit_s: float | None = None, progress: Callable[[str], None] | None = None,
               use_previous: bool = True, opportunities: dict[int, int] | None = None,
-              started: float | None = None) -> tuple[PlanResult, ConditionsGrid]:
+              started: float | None = None, effort: int | None = None,
+              seed: int | None = None) -> tuple[PlanResult, ConditionsGrid]:
+        """Build a plan for ``night``. The budget: ``effort`` (a deterministic work budget) if
+        given, else ``time_limit_s`` if given, else planning.effort when the configuration sets
+        one, else planning.time_limit_s. ``seed`` defaults to planning.seed."""
         from scheduler.planning.pipeline import BuildOptions, build_plan
 
+        p = self.config.planning
+        if effort is None and time_limit_s is None:
+            effort = p.effort
         cond = self.night_conditions(night, inputs.reports)
         result = build_plan(
             self.config, inputs.specs, inputs.weights, night, cond, sky=self.sky_cache,
             options=BuildOptions(now=now, previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
-                                 time_limit_s=time_limit_s, progress=progress, opportunities=opportunities,
+                                 time_limit_s=time_limit_s, effort=effort, seed=p.seed if seed is None else seed,
+                                 progress=progress, opportunities=opportunities,
                                  opportunity_cache=self.opportunity_cache, started=started),
         )
         return result, cond
 
     def build_and_store(self, db: Database, *, night_date: date | None = None, reason: str,
                         now: datetime | None = None, time_limit_s: float | None = None,
-                        progress: Callable[[str], None] | None = None, started: float | None = None) -> BuiltPlan:
+                        progress: Callable[[str], None] | None = None, started: float | None = None,
+                        effort: int | None = None, seed: int | None = None) -> BuiltPlan:
         """Build from the current queue and conditions and store a new active plan version.
 
         ``now`` inside the night makes this a re-plan from now (the entry in progress is kept,
@@ -177,7 +186,7 @@ class Planner:
         opportunities = self.opportunities(db, night_date, inputs.specs, progress)
         result, cond = self.build(inputs, night, now=now if in_night else None,
                                   time_limit_s=time_limit_s, progress=progress, opportunities=opportunities,
-                                  started=started)
+                                  started=started, effort=effort, seed=seed)
         planned_from = now if in_night else night.start
         share, warning = self.coverage(night, inputs.reports, planned_from)
         if result.violations:  # the checker refused it: never stored

@@ -9,7 +9,9 @@ Time budget, one rule for every re-plan from now: the lower of ``planning.time_l
 ``planning.replan_time_limit_s`` (:func:`replan_time_limit`; 4 s with the starter
 configuration). A re-plan answers a change in the sky or an operator waiting at the console, so
 it is held to the short limit wherever it runs. `nightplan plan build` is a build, not a
-re-plan: it takes ``planning.time_limit_s`` or its --time-limit.
+re-plan: it takes ``planning.time_limit_s`` or its --time-limit. When the configuration sets
+``planning.effort`` (a deterministic work budget), every re-plan does that much work instead
+and reads no clock.
 """
 
 from __future__ import annotations
@@ -39,7 +41,10 @@ def replan(planner: Planner, db: Database, *, now: datetime, reason: str,
     ``time_limit_s`` overrides :func:`replan_time_limit` (the service's constructor takes one,
     for tests and rehearsals).
     """
-    limit = replan_time_limit(planner.config) if time_limit_s is None else time_limit_s
+    if time_limit_s is None and planner.config.planning.effort is not None:
+        limit = None  # the build takes planning.effort
+    else:
+        limit = replan_time_limit(planner.config) if time_limit_s is None else time_limit_s
     return planner.build_and_store(db, night_date=planner.coming_night(now), reason=reason, now=now,
                                    time_limit_s=limit)
 

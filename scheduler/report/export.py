@@ -171,6 +171,9 @@ def plan_document(plan: StoredPlan, config: ObservatoryConfig, night: Night) -> 
             "runtime_s": _r(plan.runtime_s, 2), "active": bool(plan.active), "planned_from": iso(plan.planned_from),
             "previous_version": plan.previous_version, "superseded_at": iso(plan.superseded_at),
             "conditions": conditions,
+            # what bounded the search: a time limit, or a deterministic effort (then the same
+            # inputs, effort and seed give the same plan on any machine)
+            "search": {k: (summary.get("stats") or {}).get(k) for k in ("time_limit_s", "effort", "seed")},
         },
         "summary": {
             "entries": len(entries),

@@ -24,9 +24,8 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 
+from scheduler.model.config import MAX_EFFORT
 from scheduler.model.errors import InputError
-
-MAX_EFFORT = 1000
 
 # Work per unit of effort. Measured on the 500-request benchmark queue (docs/solver.md).
 RANDOMIZED_RUNS_PER_EFFORT = 40  # perturbed dispatches
