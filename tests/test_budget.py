@@ -198,10 +198,11 @@ def test_a_plan_build_computes_the_night_once(workdir):
 # --------------------------------------------------------------------------- effort and seed from the command line
 
 @pytest.mark.slow
-def test_plan_build_with_an_effort_and_a_seed_repeats_its_plan(workdir):
-    """`plan build --effort N --seed S` twice on the same queue: the same entries at the same
-    times (nothing reads the clock); the plan document says what bounded the search."""
-    import json
+def test_plan_build_with_an_effort_and_a_seed_repeats_its_plan(workdir, tmp_path_factory):
+    """`plan build --effort N --seed S` on two copies of the same queue: the same entries at the
+    same times and the same objective (nothing reads the clock); the plan document says what
+    bounded the search."""
+    import shutil
 
     from conftest import cli_json, run_cli
 
@@ -209,25 +210,24 @@ def test_plan_build_with_an_effort_and_a_seed_repeats_its_plan(workdir):
                                          (55.0, "B", 300), (70.0, "K", 1800)]):
         run_cli("request", "add", "--program", "STAR-1", "--target", f"E{i}", "--ra", str(ra), "--dec", "-30",
                 "--band", band, "--exposure", str(exp), "--priority", str(3 + i), cwd=workdir, check=True)
+    twin = tmp_path_factory.mktemp("twin")
+    for name in ("observatory.toml", "nightplan.sqlite"):
+        shutil.copy2(workdir / name, twin / name)
     docs = []
-    # three builds: the last two have the same inputs, a previous plan included (it earns the
-    # stability bonus, so the first build's objective differs)
-    for _ in range(3):
+    for folder in (workdir, twin):
         out = run_cli("plan", "build", "--night", "2026-12-05", "--now", "2026-12-05T18:00:00Z", "--effort", "2",
-                      "--seed", "7", cwd=workdir, check=True).stdout
+                      "--seed", "7", cwd=folder, check=True).stdout
         assert "effort 2, seed 7" in out, out
-        docs.append(cli_json("plan", "show", cwd=workdir))
-    a, b = ([(e["request_id"], e["start"], e["end"]) for e in d["entries"]] for d in docs[1:])
+        docs.append(cli_json("plan", "show", cwd=folder))
+    a, b = ([(e["request_id"], e["start"], e["end"]) for e in d["entries"]] for d in docs)
     assert a and a == b
-    assert docs[1]["plan"]["objective"] == docs[2]["plan"]["objective"]
-    assert docs[2]["plan"]["search"] == {"time_limit_s": None, "effort": 2, "seed": 7}
+    assert docs[0]["plan"]["objective"] == docs[1]["plan"]["objective"]
+    assert docs[1]["plan"]["search"] == {"time_limit_s": None, "effort": 2, "seed": 7}
     # a time limit from the command line takes the place of the configured effort
     run_cli("plan", "build", "--night", "2026-12-05", "--now", "2026-12-05T18:00:00Z", "--time-limit", "1",
-            cwd=workdir, check=True)
-    assert cli_json("plan", "show", cwd=workdir)["plan"]["search"] == {"time_limit_s": 1.0, "effort": None, "seed": 0}
-    for args, field in [(["--effort", "0"], "effort"), (["--effort", "1001"], "effort"),
-                        (["--effort", "2", "--time-limit", "3"], "effort"), (["--seed", "-1"], "seed")]:
+            cwd=twin, check=True)
+    assert cli_json("plan", "show", cwd=twin)["plan"]["search"] == {"time_limit_s": 1.0, "effort": None, "seed": 0}
+    for args, field in [(["--effort", "2", "--time-limit", "3"], "effort"), (["--seed", "-1"], "seed")]:
         p = run_cli("plan", "build", "--night", "2026-12-05", *args, cwd=workdir)
         assert p.returncode == 2 and p.stderr.startswith(f"nightplan: error: {field}: "), p.stderr
         assert len(p.stderr.strip().splitlines()) == 1
-    assert len(json.loads(run_cli("plan", "list", "--json", cwd=workdir, check=True).stdout)) == 4

@@ -11,9 +11,14 @@ Altitudes are true (unrefracted) altitudes of the Sun's centre; sunset/sunrise u
 from __future__ import annotations
 
 import functools
-
+import hashlib
+import json
+import math
+import os
+import tempfile
 from dataclasses import dataclass
 from datetime import date, datetime, time, timedelta, timezone
+from pathlib import Path
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -158,6 +163,15 @@ def compute_night(site: Site, night_date: date, step_s: int = 60) -> Night:
             dawn = None
         events[name] = (dusk, dawn)
 
+    return _night_from_events(night_date, int(step_s), float(sunset), float(sunrise), events)
+
+
+_EVENT_NAMES = ("civil", "nautical", "astronomical")
+
+
+def _night_from_events(night_date: date, step_s: int, sunset: float, sunrise: float,
+                       events: dict[str, tuple[float | None, float | None]]) -> Night:
+    """The Night from its Sun events (UTC unix seconds): the grid follows from sunset and sunrise."""
     start = np.ceil(sunset / 60.0) * 60.0
     n = int(np.floor((sunrise - start) / step_s))
     times = start + np.arange(max(n, 0), dtype=np.float64) * step_s
@@ -180,11 +194,110 @@ def compute_night(site: Site, night_date: date, step_s: int = 60) -> Night:
     )
 
 
+# --------------------------------------------------------------------------- nights kept on disk
+#
+# Computing a night's Sun events needs astropy and its Earth-orientation table: about a second
+# for every command that shows a stored plan (`plan show`, `plan export`, `next`), which need
+# nothing else of astropy. The events of each night are kept as a small JSON file beside the
+# IERS cache (sky/offline.py: the same private directory, NIGHTPLAN_CACHE_DIR), keyed by the
+# site, the date, the grid step and the versions of nightplan, astropy and its IERS data, so an
+# upgrade computes them afresh. A file is written atomically and carries a SHA-256 of its
+# content; a file that is missing, damaged, not the current user's or writable by others is
+# ignored and the night computed again (a wrong sunset must never reach a plan).
+
+_NIGHT_CACHE_FORMAT = "nightplan-night-1"
+
+
+def _night_cache_path(site: Site, night_date: date, step_s: int):
+    from scheduler.sky.offline import cache_dir
+
+    d = cache_dir()
+    if d is None:
+        return None
+    from importlib import metadata
+
+    from scheduler import __version__
+
+    versions = []
+    for dist in ("astropy", "astropy-iers-data"):
+        try:
+            versions.append(metadata.version(dist))
+        except metadata.PackageNotFoundError:
+            versions.append("-")
+    key = json.dumps([_NIGHT_CACHE_FORMAT, __version__, *versions, repr(site.latitude_deg), repr(site.longitude_deg),
+                      repr(site.elevation_m), site.timezone, night_date.isoformat(), int(step_s)])
+    return d / "nights" / f"{hashlib.sha256(key.encode()).hexdigest()[:32]}.json"
+
+
+def _read_night(path, night_date: date, step_s: int) -> Night | None:
+    try:
+        st = path.stat()
+        if hasattr(os, "getuid") and (st.st_uid != os.getuid() or st.st_mode & 0o022):
+            return None
+        outer = json.loads(path.read_text(encoding="utf-8"))
+        body = outer["body"]
+        if hashlib.sha256(body.encode()).hexdigest() != outer["sha256"]:
+            return None
+        ev = json.loads(body)
+        if ev["format"] != _NIGHT_CACHE_FORMAT or ev["date"] != night_date.isoformat() or ev["step_s"] != step_s:
+            return None
+
+        def num(x):
+            if x is None:
+                return None
+            if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
+                raise ValueError("not a time")
+            return float(x)
+
+        events = {k: (num(ev[k][0]), num(ev[k][1])) for k in _EVENT_NAMES}
+        return _night_from_events(night_date, step_s, num(ev["sunset"]), num(ev["sunrise"]), events)
+    except (OSError, ValueError, KeyError, TypeError, IndexError):
+        return None
+
+
+def _write_night(path, night: Night) -> None:
+    """Atomic (temporary file + rename); a failure only costs the next command the computation."""
+    def unix(x):
+        return None if x is None else x.timestamp()
+
+    body = json.dumps({
+        "format": _NIGHT_CACHE_FORMAT, "date": night.date.isoformat(), "step_s": night.step_s,
+        "sunset": unix(night.sunset), "sunrise": unix(night.sunrise),
+        "civil": [unix(night.civil_dusk), unix(night.civil_dawn)],
+        "nautical": [unix(night.nautical_dusk), unix(night.nautical_dawn)],
+        "astronomical": [unix(night.astronomical_dusk), unix(night.astronomical_dawn)],
+    })
+    try:
+        path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8") as f:
+                f.write(json.dumps({"sha256": hashlib.sha256(body.encode()).hexdigest(), "body": body}))
+            os.replace(tmp, path)
+        except BaseException:
+            Path(tmp).unlink(missing_ok=True)
+            raise
+    except OSError:
+        pass
+
+
+def kept_night(site: Site, night_date: date, step_s: int = 60) -> Night:
+    """``compute_night``, kept on disk between processes (see above)."""
+    path = _night_cache_path(site, night_date, step_s)
+    night = _read_night(path, night_date, int(step_s)) if path is not None else None
+    if night is None:
+        night = compute_night(site, night_date, step_s)
+        if path is not None:
+            _write_night(path, night)
+    return night
+
+
 @functools.lru_cache(maxsize=32)
 def night_for(site: Site, night_date: date, step_s: int = 60) -> Night:
-    """``compute_night`` remembered for the process: the one night cache (a build, the CLI, the
-    service and the demo ask for the same night many times). Callers must not modify the Night."""
-    return compute_night(site, night_date, step_s)
+    """The one night cache: remembered for the process (a build, the CLI, the service and the
+    demo ask for the same night many times) and kept on disk between processes (kept_night).
+    Callers must not modify the Night."""
+    return kept_night(site, night_date, step_s)
 
 
 def night_date_for(site: Site, when: datetime) -> date:
