@@ -155,7 +155,7 @@ def test_store_on_an_existing_cluster_then_show(queue_folder, one_worker):
     from distributed import LocalCluster
 
     before = _fingerprint(queue_folder)
-    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=":0") as cluster:
         proc = run_cli(*SEASON, "--scheduler", cluster.scheduler_address, "--store", cwd=queue_folder)
     assert proc.returncode == 0, proc.stderr
     assert cluster.scheduler_address in proc.stderr and "stored the outlook" in proc.stderr

@@ -104,7 +104,8 @@ def dask_client(scheduler: str | None, workers: int | None) -> Iterator[object]:
                                           f"{str(e).splitlines()[0][:120] if str(e) else 'no answer'}); "
                                           "allowed a running scheduler's address, tcp://host:port") from None
     else:
-        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None,
+        # ":0": the dashboard on a free port (several simulations at once never fight over one)
+        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0",
                                silence_logs=logging.ERROR, memory_limit=0)
         client = Client(cluster)
     try:
