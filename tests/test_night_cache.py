@@ -7,7 +7,6 @@ file must mean computing again, never a wrong sunset.
 
 from __future__ import annotations
 
-import hashlib
 import json
 from dataclasses import fields
 from datetime import date
@@ -17,6 +16,7 @@ import pytest
 
 from scheduler.model.config import starter_config
 from scheduler.sky import night as night_mod
+from scheduler.sky import offline
 
 SITE = starter_config().site
 DAY = date(2026, 12, 16)
@@ -56,22 +56,19 @@ def test_a_doubtful_file_is_computed_again(cache, damage):
     computed = night_mod.compute_night(SITE, DAY, 60)
     night_mod.kept_night(SITE, DAY, 60)
     path = night_mod._night_cache_path(SITE, DAY, 60)
-    text = path.read_text(encoding="utf-8")
+    raw = path.read_bytes()
+    magic = night_mod._NIGHT_MAGIC
+    body = json.loads(raw[len(magic) + 65:])
     if damage == "garbage":
-        path.write_text("not json", encoding="utf-8")
+        path.write_bytes(b"not a kept night")
     elif damage == "truncated":
-        path.write_text(text[: len(text) // 2], encoding="utf-8")
-    elif damage in ("edited sunset", "wrong date"):
-        outer = json.loads(text)
-        body = json.loads(outer["body"])
-        if damage == "edited sunset":
-            body["sunset"] -= 3 * 3600  # three hours of daylight: the checksum no longer matches
-            outer["body"] = json.dumps(body)
-        else:  # consistent checksum, but the file answers for another night
-            body["date"] = "2026-12-17"
-            outer["body"] = json.dumps(body)
-            outer["sha256"] = hashlib.sha256(outer["body"].encode()).hexdigest()
-        path.write_text(json.dumps(outer), encoding="utf-8")
+        path.write_bytes(raw[: len(raw) // 2])
+    elif damage == "edited sunset":  # three hours of daylight; the checksum no longer matches
+        body["sunset"] -= 3 * 3600
+        path.write_bytes(raw[: len(magic) + 65] + json.dumps(body).encode())
+    elif damage == "wrong date":  # a sound file, but it answers for another night
+        body["date"] = "2026-12-17"
+        offline.write_private(path, magic, json.dumps(body).encode())
     else:
         path.chmod(0o666)
     assert night_mod._read_night(path, DAY, 60) is None

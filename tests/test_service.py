@@ -240,6 +240,27 @@ def test_order_status_second_instance_and_sigterm(served, night):
     assert svc.active()["reason"] == "no service tonight"
 
 
+def _inline_then_served(night, reason: str) -> list[dict]:
+    """A re-plan run inline (no service alive), then one served by `serve --once` for an order:
+    the search statistics of the two plans they stored."""
+    inline = run_cli("replan", "--reason", f"inline {reason}", cwd=night, env={"NIGHTPLAN_CLOCK": CLOCK})
+    assert inline.returncode == 0, inline.stderr
+    assert "inline: plan version" in inline.stdout
+    db = open_db(str(night / "nightplan.sqlite"), create_file=False)
+    try:
+        oid = db.retrying(lambda s: plans.add_order(s, f"served {reason}", "test").id)
+        served_once = run_cli("serve", "--once", "--clock", CLOCK, cwd=night, timeout=120)
+        assert served_once.returncode == 0, served_once.stdout + served_once.stderr
+        with db.session() as s:
+            first = s.scalar(select(Plan).where(Plan.reason == f"inline {reason}"))
+            order = s.get(ReplanOrder, oid)
+            assert order.done_at is not None and order.plan_id is not None, order.result
+            by_service = s.get(Plan, order.plan_id)
+            return [plans.plan_summary(p)["stats"] for p in (first, by_service)]
+    finally:
+        db.dispose()
+
+
 def test_inline_and_service_replans_share_one_time_budget(night):
     """Every re-plan from now, inline or by the service, runs within the lower of
     planning.time_limit_s and planning.replan_time_limit_s (scheduler/planning/replan.py)."""
@@ -248,41 +269,14 @@ def test_inline_and_service_replans_share_one_time_budget(night):
     text = cfg.read_text(encoding="utf-8")
     assert "replan_time_limit_s = 4 " in text
     cfg.write_text(text.replace("replan_time_limit_s = 4 ", "replan_time_limit_s = 1.5 "), encoding="utf-8")
-    inline = run_cli("replan", "--reason", "inline budget", cwd=night, env={"NIGHTPLAN_CLOCK": CLOCK})
-    assert inline.returncode == 0, inline.stderr
-    assert "inline: plan version" in inline.stdout
-    db = open_db(str(night / "nightplan.sqlite"), create_file=False)
-    try:
-        oid = db.retrying(lambda s: plans.add_order(s, "served budget", "test").id)
-        served_once = run_cli("serve", "--once", "--clock", CLOCK, cwd=night, timeout=120)
-        assert served_once.returncode == 0, served_once.stdout + served_once.stderr
-        with db.session() as s:
-            first = s.scalar(select(Plan).where(Plan.reason == "inline budget"))
-            order = s.get(ReplanOrder, oid)
-            assert order.done_at is not None and order.plan_id is not None, order.result
-            by_service = s.get(Plan, order.plan_id)
-            limits = [plans.plan_summary(p)["stats"]["time_limit_s"] for p in (first, by_service)]
-    finally:
-        db.dispose()
+    limits = [x["time_limit_s"] for x in _inline_then_served(night, "budget")]
     assert limits == [1.5, 1.5]  # min(time_limit_s 2, replan_time_limit_s 1.5); inline used 2 before
 
 
 def test_a_configured_effort_bounds_every_replan_instead_of_the_clock(night):
     """planning.effort (set in the tests' configuration) replaces the time limits for re-plans,
     inline and by the service alike; the plan records the effort and the seed."""
-    inline = run_cli("replan", "--reason", "inline effort", cwd=night, env={"NIGHTPLAN_CLOCK": CLOCK})
-    assert inline.returncode == 0, inline.stderr
-    db = open_db(str(night / "nightplan.sqlite"), create_file=False)
-    try:
-        oid = db.retrying(lambda s: plans.add_order(s, "served effort", "test").id)
-        served_once = run_cli("serve", "--once", "--clock", CLOCK, cwd=night, timeout=120)
-        assert served_once.returncode == 0, served_once.stdout + served_once.stderr
-        with db.session() as s:
-            first = s.scalar(select(Plan).where(Plan.reason == "inline effort"))
-            by_service = s.get(Plan, s.get(ReplanOrder, oid).plan_id)
-            stats = [plans.plan_summary(p)["stats"] for p in (first, by_service)]
-    finally:
-        db.dispose()
+    stats = _inline_then_served(night, "effort")
     assert [(x["effort"], x["seed"], x["time_limit_s"]) for x in stats] == [(1, 0, None), (1, 0, None)]
 
 

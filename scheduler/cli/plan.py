@@ -84,17 +84,17 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, effort: int 
                reason: str, now_text: str | None) -> None:
     """Build a plan from the queue and the latest conditions, check it, store it as a new version."""
     t_start = time.perf_counter()  # planning starts here: the time limit and the reported time count from it
-    from scheduler.model.config import MAX_EFFORT
     from scheduler.planning.planner import Planner
+    from scheduler.solve.budget import check_effort, check_seed
 
     if time_limit is not None and not (0.1 <= time_limit <= 3600):
         raise InputError("time-limit", f"{time_limit:g} is out of range; allowed 0.1 to 3600 seconds")
     if effort is not None and time_limit is not None:
         raise InputError("effort", "give either --effort or --time-limit, not both")
-    if effort is not None and not (1 <= effort <= MAX_EFFORT):
-        raise InputError("effort", f"{effort} is out of range; allowed 1 to {MAX_EFFORT}")
-    if seed is not None and not (0 <= seed <= 2 ** 31 - 1):
-        raise InputError("seed", f"{seed} is out of range; allowed 0 to 2147483647")
+    if effort is not None:
+        check_effort(effort)
+    if seed is not None:
+        check_seed(seed)
     reason = check_text(reason, "reason", max_len=MAX_REASON)
     now = now_or(now_text, "now")
     config = c.config()
@@ -150,14 +150,23 @@ def plan_build(c: Ctx, night: str | None, time_limit: float | None, effort: int 
                             + (f" ({100 * sm['dark_fraction_used']:.1f} %)" if sm["dark_fraction_used"] is not None else "")),
         ("unscheduled", f"{sm['unscheduled']} of {sm['queue_size'] if sm['queue_size'] is not None else n_queue}"),
         ("planned from", p["planned_from"]),
-        ("search", f"effort {p['search']['effort']}, seed {p['search']['seed']}" if p["search"]["effort"]
-                   else f"time limit {p['search']['time_limit_s']:g} s, seed {p['search']['seed']}"
-                   if p["search"]["time_limit_s"] is not None else "-"),
+        ("search", _search_line(p["search"])),
         ("reason", p["reason"]),
     ]
     for k, v in rows:
         out.print(cell(f"  {k:<17} {v}"))
     out.print(f"  see: nightplan plan show{'' if p['active'] else ' --version ' + str(p['version'])}")
+
+
+def _search_line(search: dict) -> str:
+    """What bounded the search (the document's plan.search), for the build summary."""
+    if search["effort"] is not None:
+        bound = f"effort {search['effort']}"
+    elif search["time_limit_s"] is not None:
+        bound = f"time limit {search['time_limit_s']:g} s"
+    else:  # a plan stored before the search was recorded
+        return "-"
+    return f"{bound}, seed {search['seed']}"
 
 
 @plan.command("show")

@@ -69,6 +69,11 @@ def fewest_failing_step(reasons: np.ndarray, now_step: int) -> int:
     return now_step + int(np.argmin(n_fail))
 
 
+def failing_at(reasons: np.ndarray, step: int) -> list[str]:
+    """Names of the step constraints failing at ``step`` (empty for an empty row)."""
+    return names(int(reasons[step]) & STEP_BITS) if len(reasons) else []
+
+
 def unobservable(spec: RequestSpec, config: ObservatoryConfig, sky: SkyGrid, cond: ConditionsGrid,
                  feas: Feasibility, now_step: int, fmt_t: Callable[[float], str]) -> Unobservable:
     """The answer for request ``spec`` (row 0 of ``sky`` and ``feas``), from ``now_step`` on.
@@ -92,6 +97,6 @@ def unobservable(spec: RequestSpec, config: ObservatoryConfig, sky: SkyGrid, con
     return Unobservable(
         binding=list(b["constraints"]), wording=[BY_NAME[n].wording for n in b["constraints"]],
         alone_opens_starts=int(b["alone_opens_starts"]), details=[(n, txt) for n, txt, _ in found if txt],
-        closest_step=int(closest), closest_failing=names(int(row[closest]) & STEP_BITS if row.size else 0),
+        closest_step=int(closest), closest_failing=failing_at(row, closest),
         longest_ok_steps=int(longest),
     )

@@ -12,8 +12,8 @@ from typing import Any, Sequence
 import numpy as np
 
 from scheduler.conditions.grid import conditions_on_grid
-from scheduler.constraints.catalog import BY_NAME, STEP_BITS, names
-from scheduler.constraints.explain import binding, fewest_failing_step
+from scheduler.constraints.catalog import BY_NAME
+from scheduler.constraints.explain import binding, failing_at, fewest_failing_step
 from scheduler.constraints.feasibility import Feasibility, evaluate
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.request import RequestSpec
@@ -43,7 +43,7 @@ def request_windows(spec: RequestSpec, feas: Feasibility, row: int, night: Night
         out["binding_constraint"] = bound[0]
         out["binding_constraints"] = bound  # two when no single constraint alone would open a window
         closest = fewest_failing_step(reasons, 0)
-        out["closest"] = {"time": iso(utc(t[closest])), "failing": names(int(reasons[closest]) & STEP_BITS)}
+        out["closest"] = {"time": iso(utc(t[closest])), "failing": failing_at(reasons, closest)}
     return out
 
 

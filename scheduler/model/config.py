@@ -115,6 +115,7 @@ class ConditionDefaults:
 
 
 MAX_EFFORT = 1000  # the largest deterministic work budget (solve/budget.py)
+MAX_SEED = 2 ** 31 - 1  # seeds of the randomized searches (CP-SAT takes a 32-bit signed seed)
 
 
 @dataclass(frozen=True)
@@ -469,8 +470,8 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
         allow_overfill=pt.flag("allow_overfill", False),
         opportunity_step_min=_whole(pt, "opportunity_step_min", 1, 60, 10),
         min_forecast_share=pt.num("min_forecast_share", 0, 1, 0.5),
-        effort=_whole_or_none(pt, "effort", 1, MAX_EFFORT),
-        seed=_whole(pt, "seed", 0, 2 ** 31 - 1, 0),
+        effort=_whole(pt, "effort", 1, MAX_EFFORT, None),
+        seed=_whole(pt, "seed", 0, MAX_SEED, 0),
     )
 
     sv = _Table(root._take("service", {}, False), "service", SERVICE_KEYS)
@@ -480,15 +481,9 @@ def parse_config(data: dict[str, Any], path: str | None = None) -> ObservatoryCo
                              service, climatology)
 
 
-def _whole(t: _Table, k: str, lo: int, hi: int, default: int) -> int:
-    v = t.num(k, lo, hi, default)
-    if v != int(v):
-        raise ConfigError(t.key(k), f"must be a whole number from {lo} to {hi}")
-    return int(v)
-
-
-def _whole_or_none(t: _Table, k: str, lo: int, hi: int) -> int | None:
-    v = t.num(k, lo, hi, None, required=False)
+def _whole(t: _Table, k: str, lo: int, hi: int, default: int | None) -> int | None:
+    """A whole number from lo to hi; ``default`` None makes the key optional (absent: None)."""
+    v = t.num(k, lo, hi, default, required=default is not None)
     if v is None:
         return None
     if v != int(v):

@@ -32,7 +32,7 @@ from scheduler.model.timegrid import utc
 from scheduler.sky.ephemeris import SkyGrid, distinct_targets, sky_for
 from scheduler.sky.night import Night
 from scheduler.solve.bounds import LagrangianResult, lagrangian_bound, sequence_bound
-from scheduler.solve.budget import CpSatBudget, WorkBudget, check_effort
+from scheduler.solve.budget import CpSatBudget, WorkBudget, check_effort, check_seed
 from scheduler.solve.checker import check_plan, true_transition_s
 from scheduler.solve.cpsat import SolveOutcome, model_size, solve_problem
 from scheduler.solve.greedy import DispatchTables, dispatch_tables, greedy_plan
@@ -57,8 +57,9 @@ class BuildOptions:
     effort: instead of the clock, a deterministic work budget (an integer >= 1): every search,
       bound and CP-SAT does ``effort`` units of work (solve/budget.py) and nothing reads the
       clock, so the same inputs, effort and seed give the identical plan on any machine.
-      time_limit_s is then not used.
-    seed: seeds the randomized searches (and CP-SAT).
+      time_limit_s is then not used. Default: config.planning.effort, unless time_limit_s is
+      given (an explicit time limit takes the place of a configured effort).
+    seed: seeds the randomized searches (and CP-SAT); default config.planning.seed.
     gap_tolerance: stop once the proven relative gap is below this (default from the config).
     freeze_horizon_min: entries starting this soon after now keep their start (default from
       the config).
@@ -79,7 +80,7 @@ class BuildOptions:
     previous_entries: Sequence[PlanEntry] | None = None
     time_limit_s: float | None = None
     effort: int | None = None
-    seed: int = 0
+    seed: int | None = None
     gap_tolerance: float | None = None
     freeze_horizon_min: float | None = None
     num_workers: int | None = None
@@ -93,6 +94,8 @@ class BuildOptions:
     def __post_init__(self):
         if self.effort is not None:
             check_effort(self.effort)
+        if self.seed is not None:
+            check_seed(self.seed)
 
 
 @dataclass
@@ -106,6 +109,7 @@ class _Build:
     budget: WorkBudget
     gap_tolerance: float
     now_step: int
+    seed: int
     timings: dict = field(default_factory=lambda: dict.fromkeys(("sky", "feasibility", "value", "model", "solve", "check"), 0.0))
     cpsat_budget: CpSatBudget | None = None
     cpsat_decision: str = "not needed"
@@ -116,7 +120,9 @@ class _Build:
         limit = p.time_limit_s if options.time_limit_s is None else options.time_limit_s
         tol = p.gap_tolerance if options.gap_tolerance is None else options.gap_tolerance
         now_step = 0 if options.now is None else night.step_of(options.now)
-        return cls(config, night, options, WorkBudget(limit, options.effort, options.started), float(tol), now_step)
+        effort = options.effort if options.effort is not None or options.time_limit_s is not None else p.effort
+        seed = p.seed if options.seed is None else options.seed
+        return cls(config, night, options, WorkBudget(limit, effort, options.started), float(tol), now_step, seed)
 
     def say(self, msg: str) -> None:
         if self.options.progress:
@@ -381,7 +387,7 @@ def search_for_plans(run: _Build, prep: Prepared) -> tuple[PlanPool, LagrangianR
     pool = PlanPool(P, prep.greedy, "greedy")
     b = budget.randomized_dispatch()
     rnd, pool.randomized_runs = randomized_dispatch(P, runs=b.iterations, time_limit_s=b.time_limit_s,
-                                                    seed=run.options.seed, tables=prep.tables)
+                                                    seed=run.seed, tables=prep.tables)
     pool.consider("randomized dispatch", rnd)
     if prep.previous:
         # the previous plan seeds the search: its still-feasible part, with the dispatch filling
@@ -391,7 +397,7 @@ def search_for_plans(run: _Build, prep: Prepared) -> tuple[PlanPool, LagrangianR
     first = lagrangian_bound(P, pool.value, iterations=b.iterations, time_limit_s=b.time_limit_s)
     b = budget.ruin_and_recreate()
     rr, pool.ruin_recreate_iterations = ruin_and_recreate(
-        P, pool.plan, iterations=b.iterations, time_limit_s=b.time_limit_s, seed=run.options.seed,
+        P, pool.plan, iterations=b.iterations, time_limit_s=b.time_limit_s, seed=run.seed,
         stop_at=(1.0 - run.gap_tolerance) * first.bound, tables=prep.tables)
     pool.consider(pool.label + " + ruin-and-recreate", rr)
     return pool, first
@@ -445,7 +451,7 @@ def search_more(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> 
         return
     run.say("more ruin-and-recreate")
     rr, its = ruin_and_recreate(prep.problem, pool.plan, iterations=b.iterations, time_limit_s=b.time_limit_s,
-                                seed=run.options.seed + 1, stop_at=(1.0 - run.gap_tolerance) * bounds.upper,
+                                seed=run.seed + 1, stop_at=(1.0 - run.gap_tolerance) * bounds.upper,
                                 tables=prep.tables, threshold=0.01)
     pool.ruin_recreate_iterations += its
     label = pool.label if pool.label.endswith("ruin-and-recreate") else pool.label + " + ruin-and-recreate"
@@ -475,7 +481,7 @@ def optimise_with_cpsat(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bou
         prep.problem, time_limit_s=limits.time_limit_s, deterministic_time_s=limits.deterministic_time_s,
         gap_tolerance=run.gap_tolerance, hint=pool.plan, k_best=opts.k_best_arcs,
         upper_bound=max(bounds.upper, pool.value) if bounds is not None else None, num_workers=opts.num_workers,
-        seed=opts.seed, progress=opts.progress, model_timer=lambda s: model_s.__setitem__(0, s),
+        seed=run.seed, progress=opts.progress, model_timer=lambda s: model_s.__setitem__(0, s),
         objective_tier=objective_tier, floors=floors, deadline=limits.deadline)
     run.timings["model"] += model_s[0]
     return outcome
@@ -588,7 +594,7 @@ def _stats(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds, outcome:
         "entries": n_entries, "now_step": run.now_step,
         "time_limit_s": None if run.budget.deterministic else run.budget.time_limit_s,
         "solver_time_limit_s": cp.time_limit_s if cp else None, "gap_tolerance": run.gap_tolerance,
-        "effort": run.budget.effort, "seed": run.options.seed,
+        "effort": run.budget.effort, "seed": run.seed,
         "solver_deterministic_limit": cp.deterministic_time_s if cp else None,
         "solver_deterministic_time": outcome.deterministic_s if outcome else 0.0,
         "cpsat": run.cpsat_decision,

@@ -149,19 +149,15 @@ class Planner:
               use_previous: bool = True, opportunities: dict[int, int] | None = None,
               started: float | None = None, effort: int | None = None,
               seed: int | None = None) -> tuple[PlanResult, ConditionsGrid]:
-        """Build a plan for ``night``. The budget: ``effort`` (a deterministic work budget) if
-        given, else ``time_limit_s`` if given, else planning.effort when the configuration sets
-        one, else planning.time_limit_s. ``seed`` defaults to planning.seed."""
+        """Build a plan for ``night``; ``time_limit_s``, ``effort`` and ``seed`` as BuildOptions
+        takes them (None: from the configuration)."""
         from scheduler.planning.pipeline import BuildOptions, build_plan
 
-        p = self.config.planning
-        if effort is None and time_limit_s is None:
-            effort = p.effort
         cond = self.night_conditions(night, inputs.reports)
         result = build_plan(
             self.config, inputs.specs, inputs.weights, night, cond, sky=self.sky_cache,
             options=BuildOptions(now=now, previous_entries=inputs.previous if (use_previous and inputs.previous) else None,
-                                 time_limit_s=time_limit_s, effort=effort, seed=p.seed if seed is None else seed,
+                                 time_limit_s=time_limit_s, effort=effort, seed=seed,
                                  progress=progress, opportunities=opportunities,
                                  opportunity_cache=self.opportunity_cache, started=started),
         )

@@ -27,10 +27,11 @@ from scheduler.model.timegrid import iso
 from scheduler.planning.planner import BuiltPlan, Planner
 
 
-def replan_time_limit(config: ObservatoryConfig) -> float:
-    """Seconds a re-plan from now may take (the module docstring says why)."""
+def replan_time_limit(config: ObservatoryConfig) -> float | None:
+    """Seconds a re-plan from now may take (the module docstring says why); None when
+    planning.effort bounds every build instead of the clock."""
     p = config.planning
-    return min(p.time_limit_s, p.replan_time_limit_s)
+    return None if p.effort is not None else min(p.time_limit_s, p.replan_time_limit_s)
 
 
 def replan(planner: Planner, db: Database, *, now: datetime, reason: str,
@@ -41,10 +42,7 @@ def replan(planner: Planner, db: Database, *, now: datetime, reason: str,
     ``time_limit_s`` overrides :func:`replan_time_limit` (the service's constructor takes one,
     for tests and rehearsals).
     """
-    if time_limit_s is None and planner.config.planning.effort is not None:
-        limit = None  # the build takes planning.effort
-    else:
-        limit = replan_time_limit(planner.config) if time_limit_s is None else time_limit_s
+    limit = replan_time_limit(planner.config) if time_limit_s is None else time_limit_s
     return planner.build_and_store(db, night_date=planner.coming_night(now), reason=reason, now=now,
                                    time_limit_s=limit)
 

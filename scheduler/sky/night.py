@@ -14,8 +14,6 @@ import functools
 import hashlib
 import json
 import math
-import os
-import tempfile
 from dataclasses import dataclass
 from datetime import date, datetime, time, timedelta, timezone
 from pathlib import Path
@@ -25,7 +23,7 @@ import numpy as np
 
 from scheduler.model.config import Site
 from scheduler.model.errors import InputError
-from scheduler.sky.offline import configure_offline
+from scheduler.sky.offline import cache_dir, configure_offline, read_private, versions_key, write_private
 from scheduler.model.timegrid import step_of, utc
 
 SUNSET_ALT_DEG = -0.833
@@ -198,87 +196,56 @@ def _night_from_events(night_date: date, step_s: int, sunset: float, sunrise: fl
 #
 # Computing a night's Sun events needs astropy and its Earth-orientation table: about a second
 # for every command that shows a stored plan (`plan show`, `plan export`, `next`), which need
-# nothing else of astropy. The events of each night are kept as a small JSON file beside the
-# IERS cache (sky/offline.py: the same private directory, NIGHTPLAN_CACHE_DIR), keyed by the
-# site, the date, the grid step and the versions of nightplan, astropy and its IERS data, so an
-# upgrade computes them afresh. A file is written atomically and carries a SHA-256 of its
-# content; a file that is missing, damaged, not the current user's or writable by others is
-# ignored and the night computed again (a wrong sunset must never reach a plan).
+# nothing else of astropy. The events are kept as a small JSON payload in sky/offline.py's
+# private, checksummed files, keyed by the site, the date, the grid step and the versions there;
+# a file that cannot be trusted is not read and the night is computed again (a wrong sunset must
+# never reach a plan).
 
-_NIGHT_CACHE_FORMAT = "nightplan-night-1"
+_NIGHT_MAGIC = b"nightplan-night-1\n"
 
 
-def _night_cache_path(site: Site, night_date: date, step_s: int):
-    from scheduler.sky.offline import cache_dir
-
+def _night_cache_path(site: Site, night_date: date, step_s: int) -> Path | None:
     d = cache_dir()
     if d is None:
         return None
-    from importlib import metadata
-
-    from scheduler import __version__
-
-    versions = []
-    for dist in ("astropy", "astropy-iers-data"):
-        try:
-            versions.append(metadata.version(dist))
-        except metadata.PackageNotFoundError:
-            versions.append("-")
-    key = json.dumps([_NIGHT_CACHE_FORMAT, __version__, *versions, repr(site.latitude_deg), repr(site.longitude_deg),
-                      repr(site.elevation_m), site.timezone, night_date.isoformat(), int(step_s)])
+    key = json.dumps([versions_key(), repr(site.latitude_deg), repr(site.longitude_deg), repr(site.elevation_m),
+                      site.timezone, night_date.isoformat(), int(step_s)])
     return d / "nights" / f"{hashlib.sha256(key.encode()).hexdigest()[:32]}.json"
 
 
-def _read_night(path, night_date: date, step_s: int) -> Night | None:
+def _read_night(path: Path, night_date: date, step_s: int) -> Night | None:
+    payload = read_private(path, _NIGHT_MAGIC)
+    if payload is None:
+        return None
+
+    def num(x):
+        if x is None:
+            return None
+        if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
+            raise ValueError("not a time")
+        return float(x)
+
     try:
-        st = path.stat()
-        if hasattr(os, "getuid") and (st.st_uid != os.getuid() or st.st_mode & 0o022):
+        ev = json.loads(payload)
+        if ev["date"] != night_date.isoformat() or ev["step_s"] != step_s:
             return None
-        outer = json.loads(path.read_text(encoding="utf-8"))
-        body = outer["body"]
-        if hashlib.sha256(body.encode()).hexdigest() != outer["sha256"]:
-            return None
-        ev = json.loads(body)
-        if ev["format"] != _NIGHT_CACHE_FORMAT or ev["date"] != night_date.isoformat() or ev["step_s"] != step_s:
-            return None
-
-        def num(x):
-            if x is None:
-                return None
-            if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
-                raise ValueError("not a time")
-            return float(x)
-
         events = {k: (num(ev[k][0]), num(ev[k][1])) for k in _EVENT_NAMES}
         return _night_from_events(night_date, step_s, num(ev["sunset"]), num(ev["sunrise"]), events)
-    except (OSError, ValueError, KeyError, TypeError, IndexError):
+    except (ValueError, KeyError, TypeError, IndexError):
         return None
 
 
-def _write_night(path, night: Night) -> None:
-    """Atomic (temporary file + rename); a failure only costs the next command the computation."""
+def _write_night(path: Path, night: Night) -> None:
     def unix(x):
         return None if x is None else x.timestamp()
 
-    body = json.dumps({
-        "format": _NIGHT_CACHE_FORMAT, "date": night.date.isoformat(), "step_s": night.step_s,
+    write_private(path, _NIGHT_MAGIC, json.dumps({
+        "date": night.date.isoformat(), "step_s": night.step_s,
         "sunset": unix(night.sunset), "sunrise": unix(night.sunrise),
         "civil": [unix(night.civil_dusk), unix(night.civil_dawn)],
         "nautical": [unix(night.nautical_dusk), unix(night.nautical_dawn)],
         "astronomical": [unix(night.astronomical_dusk), unix(night.astronomical_dawn)],
-    })
-    try:
-        path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as f:
-                f.write(json.dumps({"sha256": hashlib.sha256(body.encode()).hexdigest(), "body": body}))
-            os.replace(tmp, path)
-        except BaseException:
-            Path(tmp).unlink(missing_ok=True)
-            raise
-    except OSError:
-        pass
+    }).encode())
 
 
 def kept_night(site: Site, night_date: date, step_s: int = 60) -> Night:

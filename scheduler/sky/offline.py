@@ -79,24 +79,25 @@ def iers_table_end_mjd() -> float:
     return float(iers.IERS_Auto.open()["MJD"][-1].value)
 
 
-# --------------------------------------------------------------------------- IERS table cache
+# --------------------------------------------------------------------------- files kept between processes
 #
-# Parsing the bundled finals2000A.all (and the IERS-B table it is combined with) costs 1.6-2.3 s
-# on every process that computes a sky position; the parsed table is kept on disk instead and
-# loads in a few hundredths of a second. The file is keyed by the versions of this package,
-# astropy, astropy-iers-data and Python, so an upgrade of any of them builds a new one. It is
-# written to a temporary file in the same directory and renamed into place (atomic: concurrent
-# processes each read either nothing or a whole file), and carries a SHA-256 of its payload: a
-# missing, truncated or damaged file is rebuilt. It is a pickle, so it is only read from a
-# directory of our own (mode 0700) and only when the file belongs to the current user and is
-# not writable by others. NIGHTPLAN_CACHE_DIR overrides the directory; NIGHTPLAN_CACHE_DIR=""
-# (empty) turns the cache off.
+# Two things are kept on disk between processes: the parsed IERS table (below; parsing the
+# bundled finals2000A.all and the IERS-B table costs 1.6-2.3 s in every process that computes a
+# sky position, loading the cache a few hundredths of a second) and each night's Sun events
+# (sky/night.py). Both live in one directory private to the user (mode 0700), keyed by the
+# versions of this package, astropy, astropy-iers-data and Python, so an upgrade of any of them
+# makes new files. A file is written to a temporary file beside it and renamed into place
+# (atomic: concurrent processes each read either nothing or a whole file) and carries a SHA-256
+# of its payload; a missing, truncated or damaged file, or one that does not belong to the
+# current user or is writable by others, is not read (the caller computes afresh). The IERS
+# table is a pickle, which is one more reason for the ownership rule. NIGHTPLAN_CACHE_DIR
+# overrides the directory; NIGHTPLAN_CACHE_DIR="" (empty) turns the cache off.
 
 _MAGIC = b"nightplan-iers-1\n"
 
 
 def cache_dir() -> Path | None:
-    """Where the parsed IERS table is kept (None: no cache)."""
+    """Where files are kept between processes (None: nothing is kept)."""
     env = os.environ.get("NIGHTPLAN_CACHE_DIR")
     if env is not None:
         return Path(env) if env.strip() else None
@@ -104,39 +105,77 @@ def cache_dir() -> Path | None:
     return Path(base) / "nightplan"
 
 
-def iers_cache_path() -> Path | None:
-    """The cache file for the versions installed now (None: no cache)."""
-    d = cache_dir()
-    if d is None:
-        return None
-    import astropy
+def versions_key() -> str:
+    """The versions a kept file depends on (read from the installed metadata: no astropy import)."""
+    from importlib import metadata
 
-    from scheduler import __version__
-    try:
-        import astropy_iers_data
-        data_version = getattr(astropy_iers_data, "__version__", "unknown")
-    except ImportError:  # older astropy bundles its tables itself
-        data_version = "bundled"
-    key = "|".join((__version__, astropy.__version__, data_version, sys.version.split()[0]))
-    return d / f"iers-{hashlib.sha256(key.encode()).hexdigest()[:16]}.pickle"
+    import scheduler
+
+    parts = [scheduler.__version__]
+    for dist in ("astropy", "astropy-iers-data"):
+        try:
+            parts.append(metadata.version(dist))
+        except metadata.PackageNotFoundError:  # older astropy bundles its tables itself
+            parts.append("-")
+    parts.append(sys.version.split()[0])
+    return "|".join(parts)
 
 
-def _read_cache(path: Path):
-    """The cached table, or None when the file is missing, not ours, or damaged."""
+def read_private(path: Path, magic: bytes) -> bytes | None:
+    """The payload of a file written by :func:`write_private`, or None (see above)."""
     try:
         st = path.stat()
     except FileNotFoundError:
         return None
     if hasattr(os, "getuid") and (st.st_uid != os.getuid() or st.st_mode & 0o022):
-        log.warning("IERS cache %s is not private to this user; ignored", path)
+        log.warning("cache file %s is not private to this user; ignored", path)
         return None
     try:
         raw = path.read_bytes()
-        if not raw.startswith(_MAGIC):
-            raise ValueError("not a nightplan IERS cache")
-        digest, payload = raw[len(_MAGIC):len(_MAGIC) + 64], raw[len(_MAGIC) + 65:]
-        if hashlib.sha256(payload).hexdigest().encode() != digest:
-            raise ValueError("checksum mismatch")
+    except OSError as e:
+        log.info("cache file %s unreadable (%s); computing afresh", path, e)
+        return None
+    digest, payload = raw[len(magic):len(magic) + 64], raw[len(magic) + 65:]
+    if not raw.startswith(magic) or hashlib.sha256(payload).hexdigest().encode() != digest:
+        log.info("cache file %s damaged; computing afresh", path)
+        return None
+    return payload
+
+
+def write_private(path: Path, magic: bytes, payload: bytes) -> None:
+    """Write atomically with the payload's checksum; a failure only costs the next process the work."""
+    try:
+        path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
+        try:
+            with os.fdopen(fd, "wb") as f:
+                f.write(magic + hashlib.sha256(payload).hexdigest().encode() + b"\n" + payload)
+                f.flush()
+                os.fsync(f.fileno())
+            os.replace(tmp, path)
+        except BaseException:
+            Path(tmp).unlink(missing_ok=True)
+            raise
+    except OSError as e:
+        log.info("cache file not written to %s (%s)", path, e)
+
+
+# --------------------------------------------------------------------------- IERS table cache
+
+def iers_cache_path() -> Path | None:
+    """The cache file for the versions installed now (None: no cache)."""
+    d = cache_dir()
+    if d is None:
+        return None
+    return d / f"iers-{hashlib.sha256(versions_key().encode()).hexdigest()[:16]}.pickle"
+
+
+def _read_cache(path: Path):
+    """The cached table, or None when the file is missing, not ours, or damaged."""
+    payload = read_private(path, _MAGIC)
+    if payload is None:
+        return None
+    try:
         from astropy.utils import iers
 
         table = pickle.loads(payload)
@@ -149,22 +188,7 @@ def _read_cache(path: Path):
 
 
 def _write_cache(path: Path, table) -> None:
-    """Write atomically (temporary file + rename); a failure only costs the next process a parse."""
-    try:
-        path.parent.mkdir(mode=0o700, parents=True, exist_ok=True)
-        payload = pickle.dumps(table, protocol=pickle.HIGHEST_PROTOCOL)
-        fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "wb") as f:
-                f.write(_MAGIC + hashlib.sha256(payload).hexdigest().encode() + b"\n" + payload)
-                f.flush()
-                os.fsync(f.fileno())
-            os.replace(tmp, path)
-        except BaseException:
-            Path(tmp).unlink(missing_ok=True)
-            raise
-    except OSError as e:
-        log.info("IERS cache not written to %s (%s)", path, e)
+    write_private(path, _MAGIC, pickle.dumps(table, protocol=pickle.HIGHEST_PROTOCOL))
 
 
 def _cached_iers_table():

@@ -24,7 +24,7 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 
-from scheduler.model.config import MAX_EFFORT
+from scheduler.model.config import MAX_EFFORT, MAX_SEED
 from scheduler.model.errors import InputError
 
 # Work per unit of effort. Measured on the 500-request benchmark queue (docs/solver.md).
@@ -68,6 +68,13 @@ def check_effort(effort) -> int:
     if isinstance(effort, bool) or not isinstance(effort, int) or not 1 <= effort <= MAX_EFFORT:
         raise InputError("effort", f"must be an integer from 1 to {MAX_EFFORT}, got {effort!r}")
     return effort
+
+
+def check_seed(seed) -> int:
+    """A seed of the randomized searches, validated: an integer from 0 to MAX_SEED."""
+    if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed <= MAX_SEED:
+        raise InputError("seed", f"must be an integer from 0 to {MAX_SEED}, got {seed!r}")
+    return seed
 
 
 class WorkBudget:
