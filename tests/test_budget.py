@@ -16,7 +16,8 @@ from scheduler.planning import pipeline
 from scheduler.planning.pipeline import BuildOptions, build_plan
 from scheduler.solve import bounds, budget
 from scheduler.solve.budget import StageClock, WorkBudget
-from scheduler.solve.objective import merit_buckets, value_coef
+from scheduler.solve.greedy import greedy_plan
+from scheduler.solve.objective import merit_buckets, plan_value, value_coef
 from scheduler.solve.transitions import pair_transition_steps
 
 from test_solver import CFG, assert_clean, effort, problem_for, random_scene
@@ -113,11 +114,11 @@ def _reference_programme(dp, val):
     return float(max(0.0, R[n_t].max()))
 
 
-@pytest.mark.parametrize("seed", [1, 2, 3])
-def test_blocked_sequence_dp_equals_the_step_by_step_programme(seed):
+@pytest.mark.parametrize("seed, sectors", [(1, 8), (2, 8), (3, 8), (1, 0)])
+def test_blocked_sequence_dp_equals_the_step_by_step_programme(seed, sectors):
     night, sky, cond, reqs, w = random_scene(seed, 9, 150)
     P, _ = problem_for(night, sky, cond, reqs, w)
-    dp = bounds._SequenceDP(P, 8)
+    dp = bounds._SequenceDP(P, sectors)
     assert dp.block >= 1
     rng = np.random.default_rng(seed)
     for _ in range(3):
@@ -125,6 +126,26 @@ def test_blocked_sequence_dp_equals_the_step_by_step_programme(seed):
         val = dp.C - mu[dp.E]
         fast, _ = dp.best_sequence(mu)
         assert fast == pytest.approx(_reference_programme(dp, val), rel=1e-12, abs=1e-6)
+
+
+def test_request_classes_are_a_tighter_relaxation_than_sector_classes(monkeypatch):
+    """Every request its own class: Lc is T itself, never below a class's smallest T, so the best
+    sequence at any prices is worth no more, and the bound that refines with it is no weaker."""
+    night, sky, cond, reqs, w = random_scene(4, 12, 150)
+    P, _ = problem_for(night, sky, cond, reqs, w)
+    coarse, fine = bounds._SequenceDP(P, 16), bounds._SequenceDP(P, 0)
+    assert fine.K > coarse.K
+    rng = np.random.default_rng(4)
+    for _ in range(4):
+        mu = rng.uniform(0, 0.5, coarse.n_exec) * float(coarse.C.max())
+        assert fine.best_sequence(mu)[0] <= coarse.best_sequence(mu)[0] + 1e-6
+    # the refined bound (9 class passes, then 3 with request classes) against the 9 class passes alone
+    lower = plan_value(P, greedy_plan(P))
+    refined = bounds.sequence_bound(P, lower, sectors=16, iterations=12, time_limit_s=None)
+    monkeypatch.setattr(bounds, "REQUEST_CLASSES_MAX", -1)
+    class_only = bounds.sequence_bound(P, lower, sectors=16, iterations=9, time_limit_s=None)
+    assert refined[1] == 12 and class_only[1] == 9
+    assert lower <= refined[0] <= class_only[0]
 
 
 def test_transition_matrix_is_the_same_whatever_the_chunk():

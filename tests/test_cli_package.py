@@ -95,3 +95,29 @@ def test_init_in_an_empty_folder_then_again(tmp_path):
     assert "(starter file for an invented site; edit it)" in first and "(created, schema " in first
     again = run_cli("init", cwd=tmp_path, check=True).stdout
     assert "observatory.toml (kept)" in again and "(up to date, schema " in again
+
+
+# Libraries a command that only reads or writes the queue has no use for; each costs 0.05-1 s
+# to import (numpy 0.1 s, rich's tables 0.06 s, astropy and OR-Tools far more).
+_HEAVY = ("numpy", "rich", "astropy", "ortools", "pandas", "matplotlib", "scheduler.sky.bodies")
+
+
+def _loaded(proc) -> set[str]:
+    """Modules a command imported, from Python's own import log (PYTHONPROFILEIMPORTTIME)."""
+    assert proc.returncode == 0, proc.stderr
+    return {line.rsplit("|", 1)[1].strip() for line in proc.stderr.splitlines() if line.startswith("import time:")}
+
+
+def test_queue_commands_load_only_what_they_use(workdir):
+    """`request list --json` and `status` answer without numpy, rich, astropy or OR-Tools: a fixed
+    target needs no moving-target code, and rich loads only when a table is drawn."""
+    run_cli("request", "add", "--program", "STAR-1", "--target", "Invented field 3", "--ra", "05:35:17.3",
+            "--dec", "-05:23:28", "--band", "K", "--exposure", "600", cwd=workdir, check=True)
+    log = {"PYTHONPROFILEIMPORTTIME": "1"}
+    for args in (("request", "list", "--json"), ("status",), ("--help",)):
+        loaded = _loaded(run_cli(*args, cwd=workdir, env=log))
+        assert "sqlalchemy" in loaded or args == ("--help",)  # the log is read, not empty
+        heavy = sorted(m for m in loaded if m.split(".")[0] in _HEAVY or m in _HEAVY)
+        assert not heavy, f"{' '.join(args)} imported {heavy[:5]}"
+    # a table on the terminal does load rich, and only then
+    assert "rich.table" in _loaded(run_cli("request", "list", cwd=workdir, env=log))

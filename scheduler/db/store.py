@@ -20,7 +20,6 @@ from scheduler.model.request import (
     ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus, validate_program,
 )
 from scheduler.model.timegrid import iso
-from scheduler.sky.bodies import parse_ephemeris_csv
 from scheduler.db.models import (
     ConditionsReport, ConditionsSample, Opportunity, Outcome, PlanEntry, Program, Request, utcnow,
 )
@@ -139,8 +138,15 @@ def add_requests(s: Session, specs: Iterable[RequestSpec]) -> list[int]:
     return [r.id for r in rows]
 
 
+def _ephemeris(text: str, source: str):
+    """A stored ephemeris table, parsed (sky.bodies, and numpy, load only when one exists)."""
+    from scheduler.sky.bodies import parse_ephemeris_csv
+
+    return parse_ephemeris_csv(text, source)
+
+
 def to_spec(row: Request) -> RequestSpec:
-    table = parse_ephemeris_csv(row.ephemeris_csv, f"request {row.id} ephemeris") if row.ephemeris_csv else None
+    table = _ephemeris(row.ephemeris_csv, f"request {row.id} ephemeris") if row.ephemeris_csv else None
     return RequestSpec(program=row.program.code, id=row.id, ephemeris=table,
                        **{f: getattr(row, f) for f in _SPEC_FIELDS})
 
@@ -151,7 +157,7 @@ def ephemeris_tables(s: Session, ids: Iterable[int]):
     if not ids:
         return {}
     q = select(Request.id, Request.ephemeris_csv).where(Request.id.in_(ids), Request.ephemeris_csv.is_not(None))
-    return {rid: parse_ephemeris_csv(text, f"request {rid} ephemeris") for rid, text in s.execute(q)}
+    return {rid: _ephemeris(text, f"request {rid} ephemeris") for rid, text in s.execute(q)}
 
 
 def _table_rows(text: str | None) -> int | None:

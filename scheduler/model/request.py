@@ -11,7 +11,7 @@ import re
 from dataclasses import dataclass, fields, replace
 from datetime import datetime
 from enum import StrEnum
-from typing import Any, Mapping
+from typing import TYPE_CHECKING, Any, Mapping
 
 from scheduler.model.config import ObservatoryConfig
 from scheduler.model.errors import InputError
@@ -20,7 +20,9 @@ from scheduler.model.untrusted import (
     check_duplicates, check_text, csv_table, load_json, parse_number, safe_name, shown, text_problem,
     type_name,
 )
-from scheduler.sky.bodies import EphemerisTable, check_body, parse_ephemeris_csv, track_radec
+
+if TYPE_CHECKING:  # sky.bodies (and numpy) load only for moving targets: `request list` and friends skip them
+    from scheduler.sky.bodies import EphemerisTable
 
 
 
@@ -140,7 +142,7 @@ class RequestSpec:
             v = getattr(self, f.name)
             if isinstance(v, datetime):
                 v = iso(v)
-            elif isinstance(v, EphemerisTable):
+            elif f.name == "ephemeris" and v is not None:
                 v = v.to_csv()
             out[f.name] = v
         return out
@@ -434,6 +436,8 @@ def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
         ref = not_before or now
         ref_unix = J2000_UNIX if ref is None else ref.timestamp()
     if body is not None or table is not None:
+        from scheduler.sky.bodies import track_radec
+
         r, d, _ = track_radec(table if table is not None else body, [ref_unix])
         ra, dec = float(r[0]) % 360.0, float(d[0])
 
@@ -448,15 +452,24 @@ def validate_request(raw: Mapping[str, Any], config: ObservatoryConfig,
     )
 
 
+_EPHEMERIS_NOT_READ = ("the file was not read; `request add --ephemeris FILE` and "
+                       "`request import` read it (a path relative to the imported file)")
+
+
 def _moving_target(raw: Mapping[str, Any], ra_raw: Any, dec_raw: Any) -> tuple[str | None, EphemerisTable | None]:
     """(body, table) from the raw fields; at most one of ra/dec, body, ephemeris may be given."""
     body_raw = _text(raw, "body", required=False)
     eph = raw.get(EPHEMERIS_KEY)
+    if eph is None and body_raw is None:
+        if raw.get("ephemeris_file") not in (None, ""):
+            raise InputError("ephemeris_file", _EPHEMERIS_NOT_READ)
+        return None, None  # a fixed ICRS target: the moving-target code (and numpy) is not loaded
+    from scheduler.sky.bodies import EphemerisTable, check_body, parse_ephemeris_csv
+
     if eph is not None and not isinstance(eph, EphemerisTable) and not str(eph).strip():
         eph = None
     if raw.get("ephemeris_file") not in (None, "") and eph is None:
-        raise InputError("ephemeris_file", "the file was not read; `request add --ephemeris FILE` and "
-                                           "`request import` read it (a path relative to the imported file)")
+        raise InputError("ephemeris_file", _EPHEMERIS_NOT_READ)
     given = [n for n, present in (("ra/dec", ra_raw not in (None, "") or dec_raw not in (None, "")),
                                   ("body", body_raw is not None), ("ephemeris_file", eph is not None)) if present]
     if len(given) > 1:

@@ -13,10 +13,10 @@ an operator sees that something odd is stored, and the line stays one line.
 from __future__ import annotations
 
 import unicodedata
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from rich.table import Table
-from rich.text import Text
+if TYPE_CHECKING:
+    from rich.text import Text
 
 # Unicode categories shown as escapes: controls (C0, DEL, C1), format characters (bidi
 # embeddings, overrides and isolates, zero-width space, BOM, ...), lone surrogates (which
@@ -49,19 +49,37 @@ def clean(value: Any) -> str:
 
 def cell(value: Any) -> Text:
     """User text for a rich table or console: escaped, and never read as markup."""
+    from rich.text import Text
+
     return value if isinstance(value, Text) else Text(clean(value))
 
 
-class SafeTable(Table):
-    """A rich Table whose string cells, title and caption are shown literally and escaped.
+def _safe_table_class() -> type:
+    from rich.table import Table
+    from rich.text import Text
 
-    Build it like ``rich.table.Table``; headers are the program's own words and stay as given.
-    """
+    class SafeTable(Table):
+        """A rich Table whose string cells, title and caption are shown literally and escaped.
 
-    def add_row(self, *renderables: Any, **kwargs: Any) -> None:
-        super().add_row(*(cell(r) if isinstance(r, str) else r for r in renderables), **kwargs)
+        Build it like ``rich.table.Table``; headers are the program's own words and stay as given.
+        """
 
-    def __setattr__(self, name: str, value: Any) -> None:
-        if name in ("title", "caption") and isinstance(value, str):  # also when given to __init__
-            value = Text(clean(value), style=f"table.{name}")  # rich's own style for a str title
-        super().__setattr__(name, value)
+        def add_row(self, *renderables: Any, **kwargs: Any) -> None:
+            super().add_row(*(cell(r) if isinstance(r, str) else r for r in renderables), **kwargs)
+
+        def __setattr__(self, name: str, value: Any) -> None:
+            if name in ("title", "caption") and isinstance(value, str):  # also when given to __init__
+                value = Text(clean(value), style=f"table.{name}")  # rich's own style for a str title
+            super().__setattr__(name, value)
+
+    SafeTable.__module__ = __name__
+    return SafeTable
+
+
+def __getattr__(name: str) -> Any:
+    """``SafeTable`` is made on first use: importing rich's table costs about 60 ms, which a
+    command that prints no table (``--json``, ``status``) should not pay."""
+    if name == "SafeTable":
+        globals()["SafeTable"] = table = _safe_table_class()
+        return table
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -164,10 +164,37 @@ def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300,
 
 # --------------------------------------------------------------------------- sequence bound
 
+# Requests in the model up to which the sequence bound, after its passes over classes, makes more
+# passes with every request its own class (the transitions then are the model's own T[i, j]).
+# One such pass costs about K^2 x (steps / block) operations: 0.5-0.6 s at 261 requests on the
+# 2-core machine, against 0.09 s with 126 classes; on the 500-request benchmark queue its first
+# pass from the class prices lowers the bound by 0.4 % (docs/solver.md, "Bound and gap").
+REQUEST_CLASSES_MAX = 400
+CLASS_PHASE_SHARE = 0.6  # of the sequence bound's time (wall clock) spent on the class passes
+
+
+def _requests_as_classes(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
+    """Every request with an execution its own class: Lc is the model's T between them (a
+    request with one execution cannot follow itself)."""
+    P = problem
+    used = np.unique([ex.req for ex in P.execs])
+    cls = np.zeros(len(P.requests), dtype=np.int64)
+    cls[used] = np.arange(used.size)
+    Lc = np.full((used.size, used.size), _FAR, dtype=np.int64)
+    for rows, block in _row_chunks(P):
+        mine = np.isin(rows, used)
+        if mine.any():
+            Lc[cls[rows[mine]]] = block[mine][:, used]
+    return cls, Lc
+
+
 def _classes(problem: Problem, sectors: int) -> tuple[np.ndarray, np.ndarray]:
     """Class of each request (instrument, band, azimuth sector of its mean position) and the
-    smallest transition bound between any two requests of two classes (grid steps)."""
+    smallest transition bound between any two requests of two classes (grid steps).
+    sectors=0: every request its own class (``_requests_as_classes``)."""
     P = problem
+    if sectors == 0:
+        return _requests_as_classes(P)
     n = len(P.requests)
     key: dict[tuple, int] = {}
     cls = np.empty(n, dtype=np.int64)
@@ -315,21 +342,46 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     bounds the model's optimum; the max is a dynamic programme over (time, last class). Subgradient
     steps on mu (Polyak, toward ``lower``). Stops early once (bound - lower) / bound <=
     ``stop_gap`` (the plan in hand is then proven good enough). Returns (bound, iterations).
+
+    When the model has at most REQUEST_CLASSES_MAX requests, the class passes take
+    CLASS_PHASE_SHARE of the time (or all but a quarter of the iterations) and the rest goes to
+    passes with every request its own class, from the best class prices with shorter steps:
+    the model's own T[i, j] then separates consecutive entries, a tighter relaxation (every
+    plan is still such a sequence) that is slower per pass. ``sectors=0`` makes every pass so.
     """
     if not problem.execs:
         return 0, 0
-    clock = StageClock(time_limit_s)
+    n_req = np.unique([ex.req for ex in problem.execs]).size
+    refine = sectors != 0 and n_req <= REQUEST_CLASSES_MAX
+    first_s = None if time_limit_s is None else (CLASS_PHASE_SHARE if refine else 1.0) * time_limit_s
+    first_its = max(1, iterations - iterations // 4) if refine else iterations
+    stage = StageClock(time_limit_s)
+    mu = np.zeros(len(problem.execs)) if mu0 is None else np.asarray(mu0, dtype=np.float64).copy()
     dp = _SequenceDP(problem, sectors)
+    best, mu, its, met = _subgradient(dp, lower, mu, first_its, StageClock(first_s), stop_gap, 1.0)
+    if refine and not met:
+        left = None if time_limit_s is None else time_limit_s * (1.0 - stage.spent())
+        # a pass costs about K^2: skip when even one would not fit in the time left
+        per_pass = None if left is None else stage.spent() * time_limit_s / its * (n_req / dp.K) ** 2
+        if left is None or per_pass <= left:
+            more = max(1, iterations // 4)
+            best2, _, its2, _ = _subgradient(_SequenceDP(problem, 0), lower, mu, more, StageClock(left), stop_gap, 0.25)
+            best, its = min(best, best2), its + its2
+    return int(math.floor(best + 1e-6)), its
+
+
+def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, clock: StageClock,
+                 stop_gap: float | None, theta: float) -> tuple[float, np.ndarray, int, bool]:
+    """Subgradient steps on the sequence relaxation's prices: (best bound, its prices,
+    iterations, whether the stop gap was proven)."""
     n_kept = int(dp.forced.sum())
-    mu = np.zeros(dp.n_exec) if mu0 is None else np.asarray(mu0, dtype=np.float64).copy()
-    best = math.inf
-    theta, stall = 1.0, 0
-    it = 0
+    best, best_mu = math.inf, mu
+    stall, it, met = 0, 0, False
     for it in range(1, iterations + 1):
         seq_val, count = dp.best_sequence(mu)
         bound = float(mu.sum()) + seq_val - dp.M * n_kept
         if bound < best - 1e-9:
-            best, stall = bound, 0
+            best, best_mu, stall = bound, mu, 0
         else:
             stall += 1
             if stall >= 5:
@@ -342,4 +394,4 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         if nrm == 0 or theta < 1e-3 or met or clock.out_of_time():
             break
         mu = np.maximum(0.0, mu - theta * max(best - lower, 1e-6) / nrm * g)
-    return int(math.floor(best + 1e-6)), it
+    return best, best_mu, it, met
