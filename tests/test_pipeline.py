@@ -14,6 +14,7 @@ import scheduler.planning.pipeline as pipeline
 from scheduler.model.errors import InputError
 from scheduler.planning.pipeline import BuildOptions, build_plan
 from scheduler.solve.cpsat import SolveOutcome
+from scheduler.solve.heuristics import RuinAndRecreate
 from scheduler.solve.objective import VALUE_SCALE
 from scheduler.solve.greedy import greedy_plan
 from scheduler.solve.objective import objective_of
@@ -272,13 +273,20 @@ def test_a_cp_sat_plan_that_fails_the_checker_is_never_returned(base, monkeypatc
     assert "failed the checker" in res.message
 
 
+class _NoMoves(RuinAndRecreate):
+    """Ruin-and-recreate that makes no move (its best stays the plan it was given)."""
+
+    def run(self, iterations, time_limit_s=None, stop_at=None) -> int:
+        return 0
+
+
 def test_last_resort_drops_the_entries_the_checker_names(base, monkeypatch):
     night, sky, cond, reqs, w, _ = base
     real_greedy = pipeline.greedy_plan
     monkeypatch.setattr(pipeline, "greedy_plan", lambda problem, **kw: _overlapping(problem, real_greedy(problem)))
     # the hint search finds nothing better, so the (bad) greedy plan is the floor
     monkeypatch.setattr(pipeline, "randomized_dispatch", lambda problem, **kw: ([], 0))
-    monkeypatch.setattr(pipeline, "ruin_and_recreate", lambda problem, plan, **kw: (list(plan), 0))
+    monkeypatch.setattr(pipeline, "RuinAndRecreate", _NoMoves)
     monkeypatch.setattr(pipeline, "insertion_plan", lambda *a, **kw: [])
     monkeypatch.setattr(pipeline, "solve_problem",
                         lambda problem, **kw: SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.0, 0, 0))
@@ -305,7 +313,12 @@ def generated():
     ra, dec, rows = pipeline.target_rows_for(reqs)
     sky = compute_sky(CFG.site, night, ra, dec)
     cond = conditions_on_grid(generate_forecast(night, 2), night.times_unix, CFG.defaults)
-    first = build_plan(CFG, reqs, w, night, cond, sky=sky, options=effort())
+    # The plan in force is a searched one, as the service's are. How much a re-plan keeps depends
+    # on how good that plan was: a re-plan's own search may find a plan whose gain pays for more
+    # than the bonuses (docs/solver.md, "Limits and doubts"). Measured with the search of the
+    # re-plans at effort 1: first plan at effort 1, 6 of 12 entries kept with unchanged conditions
+    # and none after the small change; effort 3, 9 of 11 and some; effort 5, 3 of 8; effort 8, 4 of 9.
+    first = build_plan(CFG, reqs, w, night, cond, sky=sky, options=BuildOptions(effort=3))
     assert_clean(first)
     cond2 = conditions_on_grid(generate_forecast(night, 2, shift=0.3), night.times_unix, CFG.defaults)
     now = datetime.fromtimestamp(float(night.times_unix[0]) + 3 * 3600 + 20, tz=timezone.utc)
@@ -394,7 +407,7 @@ def test_replan_floor_is_the_previous_plan_filled_around(generated, monkeypatch,
         first = build_plan(CFG, g["reqs"], g["w"], g["night"], g["cond"], sky=g["sky"],
                            options=BuildOptions(effort=e, seed=seed))
     monkeypatch.setattr(pipeline, "randomized_dispatch", lambda problem, **kw: (pipeline.greedy_plan(problem), 0))
-    monkeypatch.setattr(pipeline, "ruin_and_recreate", lambda problem, plan, **kw: (list(plan), 0))
+    monkeypatch.setattr(pipeline, "RuinAndRecreate", _NoMoves)
     monkeypatch.setattr(pipeline, "insertion_plan", lambda *a, **kw: [])
     monkeypatch.setattr(pipeline, "solve_problem",
                         lambda problem, **kw: SolveOutcome([], "UNKNOWN", 0.0, float("inf"), float("inf"), 0.0, 0, 0))

@@ -36,7 +36,7 @@ from scheduler.solve.budget import CpSatBudget, WorkBudget, check_effort, check_
 from scheduler.solve.checker import check_plan, true_transition_s
 from scheduler.solve.cpsat import SolveOutcome, model_size, solve_problem
 from scheduler.solve.greedy import DispatchTables, dispatch_tables, greedy_plan
-from scheduler.solve.heuristics import insertion_plan, randomized_dispatch, ruin_and_recreate
+from scheduler.solve.heuristics import RuinAndRecreate, insertion_plan, randomized_dispatch
 from scheduler.constraints.opportunities import SHARED_CACHE, OpportunityCache, count_opportunities
 from scheduler.solve.factors import ProgramState, TierSolve, lexicographic, tier_order
 from scheduler.solve.objective import VALUE_SCALE, objective_of, plan_value, value_factors
@@ -154,6 +154,7 @@ class PlanPool:
         self.plan, self.label, self.value = plan, label, plan_value(problem, plan)
         self.randomized_runs = 0
         self.ruin_recreate_iterations = 0
+        self.search: RuinAndRecreate | None = None  # the ruin-and-recreate search, resumed by search_more
         self.before_cpsat: int | None = None  # the pool's value when CP-SAT started (None: it did not run)
 
     def consider(self, label: str, plan: list[Placement]) -> None:
@@ -396,10 +397,10 @@ def search_for_plans(run: _Build, prep: Prepared) -> tuple[PlanPool, LagrangianR
     b = budget.lagrangian()
     first = lagrangian_bound(P, pool.value, iterations=b.iterations, time_limit_s=b.time_limit_s)
     b = budget.ruin_and_recreate()
-    rr, pool.ruin_recreate_iterations = ruin_and_recreate(
-        P, pool.plan, iterations=b.iterations, time_limit_s=b.time_limit_s, seed=run.seed,
-        stop_at=(1.0 - run.gap_tolerance) * first.bound, tables=prep.tables)
-    pool.consider(pool.label + " + ruin-and-recreate", rr)
+    pool.search = RuinAndRecreate(P, pool.plan, seed=run.seed, tables=prep.tables)
+    pool.ruin_recreate_iterations = pool.search.run(b.iterations, b.time_limit_s,
+                                                    stop_at=(1.0 - run.gap_tolerance) * first.bound)
+    pool.consider(pool.label + " + ruin-and-recreate", pool.search.best)
     return pool, first
 
 
@@ -444,18 +445,18 @@ def cpsat_pays(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> b
 
 
 def search_more(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> None:
-    """Stage 4b, when CP-SAT does not run: ruin-and-recreate again from the best plan with
-    the time (or effort) CP-SAT would have had, until within the gap tolerance of the bound."""
+    """Stage 4b, when CP-SAT does not run: the ruin-and-recreate search goes on where it stopped
+    (same trajectory; from the pool's plan if something else found better) with the time (or
+    effort) CP-SAT would have had, until within the gap tolerance of the bound."""
     b = run.budget.ruin_and_recreate_2()
-    if not prep.problem.execs or (b.time_limit_s is not None and b.time_limit_s <= 0.0):
+    if not prep.problem.execs or pool.search is None or (b.time_limit_s is not None and b.time_limit_s <= 0.0):
         return
     run.say("more ruin-and-recreate")
-    rr, its = ruin_and_recreate(prep.problem, pool.plan, iterations=b.iterations, time_limit_s=b.time_limit_s,
-                                seed=run.seed + 1, stop_at=(1.0 - run.gap_tolerance) * bounds.upper,
-                                tables=prep.tables, threshold=0.01)
-    pool.ruin_recreate_iterations += its
+    pool.search.adopt(pool.plan)
+    pool.ruin_recreate_iterations += pool.search.run(b.iterations, b.time_limit_s,
+                                                     stop_at=(1.0 - run.gap_tolerance) * bounds.upper)
     label = pool.label if pool.label.endswith("ruin-and-recreate") else pool.label + " + ruin-and-recreate"
-    pool.consider(label, rr)
+    pool.consider(label, pool.search.best)
 
 
 def optimise_with_cpsat(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds | None, *, share: float = 1.0,

@@ -165,14 +165,19 @@ def greedy_plan(problem: Problem, wait_exponent: float = 1.0, noise: float = 0.0
     tables = tables if tables is not None else dispatch_tables(problem)
     rng = np.random.default_rng(seed) if noise > 0 else None
     d = _Dispatch.start(problem, tables, keep)
+    shortest = int(tables.duration.min())
+    cand = _frontier(tables, d.free)  # changes only when something is placed
     while True:
         nb = d.next_block()
-        cand = _frontier(tables, d.free)
         if cand.size == 0 and nb is None:
             break
-        pick = _best_candidate(d, tables, cand, nb, wait_exponent, noise, rng) if cand.size else None
+        # a gap before the next kept entry shorter than any execution takes nothing (a refill
+        # around kept entries meets many such gaps); skipping it changes no choice and no draw
+        fits = nb is None or d.block_start[nb] - d.cur >= shortest
+        pick = _best_candidate(d, tables, cand, nb, wait_exponent, noise, rng) if cand.size and fits else None
         if pick is not None:
             d.place(*pick)
+            cand = _frontier(tables, d.free)
             continue
         if nb is None:
             break
