@@ -16,7 +16,7 @@ so effort=10 searches about as much as that build; work grows linearly with effo
 
 Whether CP-SAT runs at all is decided per build (``cpsat_can_pay``): from the size of its model
 and the time left (wall clock), or from the size alone (effort, so the decision is the same on
-any machine). When it does not run, its share goes to a second ruin-and-recreate phase.
+any machine). When it does not run, its share goes to the ruin-and-recreate search, resumed.
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ from scheduler.model.errors import InputError
 # Work per unit of effort. Measured on the 500-request benchmark queue (docs/solver.md).
 RANDOMIZED_RUNS_PER_EFFORT = 40  # perturbed dispatches
 RUIN_RECREATE_PER_EFFORT = 300  # ruin-and-recreate moves (first phase)
-RUIN_RECREATE_2_PER_EFFORT = 150  # second phase, only when CP-SAT does not run
+RUIN_RECREATE_2_PER_EFFORT = 150  # the same search resumed, only when CP-SAT does not run
 LAGRANGIAN_PER_EFFORT = 30  # subgradient steps of the time-indexed bound (each of its two passes)
 SEQUENCE_PER_EFFORT = 1  # subgradient steps of the sequence bound (one DP pass each)
 CPSAT_DETERMINISTIC_PER_EFFORT = 0.05  # CP-SAT deterministic time units
