@@ -27,7 +27,8 @@ from scheduler.sky.night import Night
 from scheduler.solve import bounds, cpsat
 from scheduler.solve.checker import check_plan
 from scheduler.solve.greedy import greedy_plan
-from scheduler.solve.objective import VALUE_SCALE, objective_of
+from scheduler.solve.heuristics import RuinAndRecreate
+from scheduler.solve.objective import VALUE_SCALE, objective_of, plan_value
 from scheduler.solve.problem import build_problem, check_model_feasible
 
 CFG = starter_config()
@@ -365,6 +366,72 @@ def test_randomized_dispatch_and_ruin_and_recreate_only_improve():
     assert not check_model_feasible(P, rr) and sum(objective_of(P, rr)) >= sum(objective_of(P, r))
     # same seed, same result (deterministic for a fixed number of runs)
     assert randomized_dispatch(P, runs=50, time_limit_s=None)[0] == r
+
+
+def _reference_dispatch(problem, tables, keep, wait_exponent, noise, seed):
+    """The dispatch loop without its shortcuts (no skipping of short gaps, the frontier computed
+    on every turn): what greedy_plan must give, choice for choice and draw for draw."""
+    from scheduler.solve import greedy as G
+
+    rng = np.random.default_rng(seed) if noise > 0 else None
+    d = G._Dispatch.start(problem, tables, keep)
+    while True:
+        nb = d.next_block()
+        cand = G._frontier(tables, d.free)
+        if cand.size == 0 and nb is None:
+            break
+        pick = G._best_candidate(d, tables, cand, nb, wait_exponent, noise, rng) if cand.size else None
+        if pick is not None:
+            d.place(*pick)
+            continue
+        if nb is None:
+            break
+        d.jump_past(nb)
+    d.placed.sort(key=lambda p: p.start)
+    return d.placed
+
+
+def test_dispatch_shortcuts_change_no_plan():
+    """Around kept entries (the refill of ruin-and-recreate), with and without noise, the dispatch
+    gives exactly the plan of the plain loop."""
+    from scheduler.solve.greedy import dispatch_tables
+
+    night, sky, cond, reqs, w = random_scene(6, 40, 150)
+    P, _ = problem_for(night, sky, cond, reqs, w)
+    tables = dispatch_tables(P)
+    base = greedy_plan(P, tables=tables)
+    assert len(base) >= 6
+    rng = np.random.default_rng(6)
+    skipped = 0
+    for k in range(40):
+        i, n = int(rng.integers(0, len(base))), int(rng.integers(1, 4))
+        keep = base[:i] + base[i + n:] if k % 4 else []
+        wexp, noise = float(rng.uniform(0.8, 1.2)), float(rng.uniform(0.0, 0.5)) if k % 3 else 0.0
+        got = greedy_plan(P, wait_exponent=wexp, noise=noise, seed=k, tables=tables, keep=keep)
+        assert got == _reference_dispatch(P, tables, keep, wexp, noise, k)
+        gaps = [b.start - a.start - P.execs[a.exec_index].duration for a, b in zip(keep, keep[1:])]
+        skipped += sum(0 <= g < int(tables.duration.min()) for g in gaps)
+    assert skipped > 0  # the shortcut was taken
+
+
+def test_ruin_and_recreate_resumed_is_one_search():
+    """Two calls of run() follow the trajectory of one call with as many moves; adopt takes a
+    better model-feasible plan and nothing else."""
+    night, sky, cond, reqs, w = random_scene(9, 30, 150)
+    P, _ = problem_for(night, sky, cond, reqs, w)
+    start = greedy_plan(P)
+    one = RuinAndRecreate(P, start, seed=3)
+    assert one.run(700) == 700
+    two = RuinAndRecreate(P, start, seed=3)
+    assert two.run(250) + two.run(450) == 700
+    assert (one.best, one.cur, one.moves) == (two.best, two.cur, two.moves)
+    assert one.best_v > plan_value(P, start)  # it found something, so the comparison means something
+    fresh = RuinAndRecreate(P, start, seed=3)
+    broken = one.best + [one.best[0]]  # the same execution twice: worth more, not a plan
+    fresh.adopt(broken)
+    assert fresh.best == sorted(start, key=lambda p: p.start)
+    fresh.adopt(one.best)
+    assert fresh.best == one.best and fresh.cur == one.best and fresh.best_v == one.best_v
 
 
 @pytest.mark.parametrize("seed", [1, pytest.param(2, marks=pytest.mark.slow), pytest.param(3, marks=pytest.mark.slow),

@@ -72,7 +72,7 @@ def _safe_table_class() -> type:
                 value = Text(clean(value), style=f"table.{name}")  # rich's own style for a str title
             super().__setattr__(name, value)
 
-    SafeTable.__module__ = __name__
+    SafeTable.__module__, SafeTable.__qualname__ = __name__, "SafeTable"
     return SafeTable
 
 

@@ -171,13 +171,19 @@ def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300,
 # pass from the class prices lowers the bound by 0.4 % (docs/solver.md, "Bound and gap").
 REQUEST_CLASSES_MAX = 400
 CLASS_PHASE_SHARE = 0.6  # of the sequence bound's time (wall clock) spent on the class passes
+PASS_COST_MARGIN = 1.5  # on the K^2 estimate of a request-class pass's time
+
+
+def _requests_in_model(problem: Problem) -> np.ndarray:
+    """The requests with at least one execution tonight (sorted)."""
+    return np.unique([ex.req for ex in problem.execs])
 
 
 def _requests_as_classes(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
     """Every request with an execution its own class: Lc is the model's T between them (a
     request with one execution cannot follow itself)."""
     P = problem
-    used = np.unique([ex.req for ex in P.execs])
+    used = _requests_in_model(P)
     cls = np.zeros(len(P.requests), dtype=np.int64)
     cls[used] = np.arange(used.size)
     Lc = np.full((used.size, used.size), _FAR, dtype=np.int64)
@@ -344,28 +350,32 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     ``stop_gap`` (the plan in hand is then proven good enough). Returns (bound, iterations).
 
     When the model has at most REQUEST_CLASSES_MAX requests, the class passes take
-    CLASS_PHASE_SHARE of the time (or all but a quarter of the iterations) and the rest goes to
+    CLASS_PHASE_SHARE of the time (or all but a quarter of the iterations; with fewer than four
+    there is no refinement) and the rest goes to
     passes with every request its own class, from the best class prices with shorter steps:
     the model's own T[i, j] then separates consecutive entries, a tighter relaxation (every
     plan is still such a sequence) that is slower per pass. ``sectors=0`` makes every pass so.
     """
     if not problem.execs:
         return 0, 0
-    n_req = np.unique([ex.req for ex in problem.execs]).size
-    refine = sectors != 0 and n_req <= REQUEST_CLASSES_MAX
+    n_req = _requests_in_model(problem).size
+    more = iterations // 4  # the request-class passes (none under 4 iterations)
+    refine = sectors != 0 and n_req <= REQUEST_CLASSES_MAX and more > 0 and (time_limit_s is None or time_limit_s > 0)
     first_s = None if time_limit_s is None else (CLASS_PHASE_SHARE if refine else 1.0) * time_limit_s
-    first_its = max(1, iterations - iterations // 4) if refine else iterations
     stage = StageClock(time_limit_s)
     mu = np.zeros(len(problem.execs)) if mu0 is None else np.asarray(mu0, dtype=np.float64).copy()
     dp = _SequenceDP(problem, sectors)
-    best, mu, its, met = _subgradient(dp, lower, mu, first_its, StageClock(first_s), stop_gap, 1.0)
+    best, mu, its, met = _subgradient(dp, lower, mu, iterations - more if refine else iterations,
+                                      StageClock(first_s), stop_gap, 1.0)
     if refine and not met:
+        class_pass_s = None if time_limit_s is None else stage.spent() * time_limit_s / its
+        fine = _SequenceDP(problem, 0)
         left = None if time_limit_s is None else time_limit_s * (1.0 - stage.spent())
-        # a pass costs about K^2: skip when even one would not fit in the time left
-        per_pass = None if left is None else stage.spent() * time_limit_s / its * (n_req / dp.K) ** 2
-        if left is None or per_pass <= left:
-            more = max(1, iterations // 4)
-            best2, _, its2, _ = _subgradient(_SequenceDP(problem, 0), lower, mu, more, StageClock(left), stop_gap, 0.25)
+        # a pass costs about K^2 (measured 6 times a 126-class pass at 261 requests, where the
+        # ratio of squares says 4.3): skip when even one would not fit in the time left
+        used = np.unique(dp.CL).size
+        if left is None or (left > 0 and PASS_COST_MARGIN * class_pass_s * (fine.K / used) ** 2 <= left):
+            best2, _, its2, _ = _subgradient(fine, lower, mu, more, StageClock(left), stop_gap, 0.25)
             best, its = min(best, best2), its + its2
     return int(math.floor(best + 1e-6)), its
 

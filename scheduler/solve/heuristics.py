@@ -77,9 +77,10 @@ class RuinAndRecreate:
         self.moves = 0
 
     def adopt(self, plan: Sequence[Placement]) -> None:
-        """Continue from ``plan`` when it is better than anything seen (a plan found elsewhere)."""
+        """Continue from ``plan`` when it is model-feasible and better than anything seen (a plan
+        found elsewhere)."""
         v = plan_value(self.problem, plan)
-        if v > self.best_v:
+        if v > self.best_v and not check_model_feasible(self.problem, plan):
             self.cur = self.best = sorted(plan, key=lambda p: p.start)
             self.cur_v = self.best_v = v
 
@@ -117,7 +118,8 @@ def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: i
                       max_drop: int = 5, stop_at: float | None = None,
                       tables: DispatchTables | None = None) -> tuple[list[Placement], int]:
     """One run of RuinAndRecreate from ``plan``: (best plan seen, moves done). With
-    ``time_limit_s=None`` it does exactly its iterations (same seed, same plan on any machine)."""
+    ``time_limit_s=None`` nothing reads the clock: same seed, same plan on any machine (it may
+    stop before its iterations at ``stop_at``, or with no entry left to drop)."""
     search = RuinAndRecreate(problem, plan, seed=seed, threshold=threshold, max_drop=max_drop, tables=tables)
     done = search.run(iterations, time_limit_s, stop_at)
     return search.best, done
