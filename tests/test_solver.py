@@ -354,15 +354,16 @@ def test_model_is_hinted_by_a_feasible_greedy_plan():
 
 
 def test_randomized_dispatch_and_ruin_and_recreate_only_improve():
-    from scheduler.solve.heuristics import randomized_dispatch, ruin_and_recreate
+    from scheduler.solve.heuristics import randomized_dispatch
     night, sky, cond, reqs, w = random_scene(41, 30, 300)
     P, _ = problem_for(night, sky, cond, reqs, w)
     g = greedy_plan(P)
     r, n = randomized_dispatch(P, runs=50, time_limit_s=None)
     assert n == 50
     assert not check_model_feasible(P, r) and sum(objective_of(P, r)) >= sum(objective_of(P, g))
-    rr, it = ruin_and_recreate(P, r, iterations=100, time_limit_s=None)
-    assert it == 100
+    search = RuinAndRecreate(P, r)
+    assert search.run(100) == 100
+    rr = search.best
     assert not check_model_feasible(P, rr) and sum(objective_of(P, rr)) >= sum(objective_of(P, r))
     # same seed, same result (deterministic for a fixed number of runs)
     assert randomized_dispatch(P, runs=50, time_limit_s=None)[0] == r

@@ -153,7 +153,6 @@ class PlanPool:
         self.problem = problem
         self.plan, self.label, self.value = plan, label, plan_value(problem, plan)
         self.randomized_runs = 0
-        self.ruin_recreate_iterations = 0
         self.search: RuinAndRecreate | None = None  # the ruin-and-recreate search, resumed by search_more
         self.before_cpsat: int | None = None  # the pool's value when CP-SAT started (None: it did not run)
 
@@ -161,6 +160,10 @@ class PlanPool:
         value = plan_value(self.problem, plan)
         if value > self.value and not check_model_feasible(self.problem, plan):
             self.plan, self.label, self.value = plan, label, value
+
+    @property
+    def ruin_recreate_iterations(self) -> int:
+        return self.search.moves if self.search is not None else 0
 
     def kept_what(self) -> str:
         return "greedy plan kept" if self.label == "greedy" else f"best heuristic plan kept ({self.label})"
@@ -309,7 +312,7 @@ def solve_by_tiers(run: _Build, prep: Prepared, tiers: list[int]) -> PlanResult:
     choice = Choice(plan, status, objective, bound, gap, used_greedy, message)
     pool, bounds = first
     fallback = PlanPool(P, prep.greedy, "greedy")  # the checker's fallback: the whole queue's dispatch
-    fallback.randomized_runs, fallback.ruin_recreate_iterations = pool.randomized_runs, pool.ruin_recreate_iterations
+    fallback.randomized_runs, fallback.search = pool.randomized_runs, pool.search  # for the statistics
     result = check_and_finalise(run, prep, fallback, bounds, outcome, choice, search_s)
     return replace(result, stats={**result.stats, "tiers": step_stats, "gap_tier": gap_tier})
 
@@ -398,8 +401,7 @@ def search_for_plans(run: _Build, prep: Prepared) -> tuple[PlanPool, LagrangianR
     first = lagrangian_bound(P, pool.value, iterations=b.iterations, time_limit_s=b.time_limit_s)
     b = budget.ruin_and_recreate()
     pool.search = RuinAndRecreate(P, pool.plan, seed=run.seed, tables=prep.tables)
-    pool.ruin_recreate_iterations = pool.search.run(b.iterations, b.time_limit_s,
-                                                    stop_at=(1.0 - run.gap_tolerance) * first.bound)
+    pool.search.run(b.iterations, b.time_limit_s, stop_at=(1.0 - run.gap_tolerance) * first.bound)
     pool.consider(pool.label + " + ruin-and-recreate", pool.search.best)
     return pool, first
 
@@ -453,8 +455,7 @@ def search_more(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> 
         return
     run.say("more ruin-and-recreate")
     pool.search.adopt(pool.plan)
-    pool.ruin_recreate_iterations += pool.search.run(b.iterations, b.time_limit_s,
-                                                     stop_at=(1.0 - run.gap_tolerance) * bounds.upper)
+    pool.search.run(b.iterations, b.time_limit_s, stop_at=(1.0 - run.gap_tolerance) * bounds.upper)
     label = pool.label if pool.label.endswith("ruin-and-recreate") else pool.label + " + ruin-and-recreate"
     pool.consider(label, pool.search.best)
 

@@ -242,9 +242,7 @@ def _write_night(path: Path, night: Night) -> None:
     write_private(path, _NIGHT_MAGIC, json.dumps({
         "date": night.date.isoformat(), "step_s": night.step_s,
         "sunset": unix(night.sunset), "sunrise": unix(night.sunrise),
-        "civil": [unix(night.civil_dusk), unix(night.civil_dawn)],
-        "nautical": [unix(night.nautical_dusk), unix(night.nautical_dawn)],
-        "astronomical": [unix(night.astronomical_dusk), unix(night.astronomical_dawn)],
+        **{k: [unix(getattr(night, f"{k}_dusk")), unix(getattr(night, f"{k}_dawn"))] for k in _EVENT_NAMES},
     }).encode())
 
 

@@ -9,6 +9,7 @@ well under that in altitude at the planning grid's one-minute resolution. See do
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import logging
 import os
@@ -105,8 +106,10 @@ def cache_dir() -> Path | None:
     return Path(base) / "nightplan"
 
 
+@functools.lru_cache(maxsize=1)
 def versions_key() -> str:
-    """The versions a kept file depends on (read from the installed metadata: no astropy import)."""
+    """The versions a kept file depends on (read from the installed metadata: no astropy import;
+    the IERS and night caches both ask, once per process)."""
     from importlib import metadata
 
     import scheduler

@@ -368,13 +368,15 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     best, mu, its, met = _subgradient(dp, lower, mu, iterations - more if refine else iterations,
                                       StageClock(first_s), stop_gap, 1.0)
     if refine and not met:
-        class_pass_s = None if time_limit_s is None else stage.spent() * time_limit_s / its
-        fine = _SequenceDP(problem, 0)
-        left = None if time_limit_s is None else time_limit_s * (1.0 - stage.spent())
         # a pass costs about K^2 (measured 6 times a 126-class pass at 261 requests, where the
-        # ratio of squares says 4.3): skip when even one would not fit in the time left
-        used = np.unique(dp.CL).size
-        if left is None or (left > 0 and PASS_COST_MARGIN * class_pass_s * (fine.K / used) ** 2 <= left):
+        # ratio of squares says 4.3; the margin also covers building its programme): skip when
+        # even one would not fit in the time left
+        fits = time_limit_s is None or (
+            PASS_COST_MARGIN * stage.spent() * time_limit_s / its * (n_req / np.unique(dp.CL).size) ** 2
+            <= time_limit_s * (1.0 - stage.spent()))
+        if fits:
+            fine = _SequenceDP(problem, 0)
+            left = None if time_limit_s is None else max(0.0, time_limit_s * (1.0 - stage.spent()))
             best2, _, its2, _ = _subgradient(fine, lower, mu, more, StageClock(left), stop_gap, 0.25)
             best, its = min(best, best2), its + its2
     return int(math.floor(best + 1e-6)), its

@@ -113,18 +113,6 @@ class RuinAndRecreate:
         return done
 
 
-def ruin_and_recreate(problem: Problem, plan: Sequence[Placement], iterations: int = 600,
-                      time_limit_s: float | None = 2.0, seed: int = 0, threshold: float = 0.02,
-                      max_drop: int = 5, stop_at: float | None = None,
-                      tables: DispatchTables | None = None) -> tuple[list[Placement], int]:
-    """One run of RuinAndRecreate from ``plan``: (best plan seen, moves done). With
-    ``time_limit_s=None`` nothing reads the clock: same seed, same plan on any machine (it may
-    stop before its iterations at ``stop_at``, or with no entry left to drop)."""
-    search = RuinAndRecreate(problem, plan, seed=seed, threshold=threshold, max_drop=max_drop, tables=tables)
-    done = search.run(iterations, time_limit_s, stop_at)
-    return search.best, done
-
-
 def insertion_plan(problem: Problem, order: Sequence[int], preferred: dict[int, int] | None = None,
                    tables: DispatchTables | None = None) -> list[Placement]:
     """Insert executions one by one, in ``order``, wherever they fit in the plan built so far.
