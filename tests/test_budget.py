@@ -5,7 +5,8 @@ every vectorised or chunked computation is compared with a plain reference writt
 from __future__ import annotations
 
 import time
-from dataclasses import fields
+from datetime import timedelta
+from dataclasses import fields, replace
 
 import numpy as np
 import pytest
@@ -17,10 +18,10 @@ from scheduler.planning.pipeline import BuildOptions, build_plan
 from scheduler.solve import bounds, budget
 from scheduler.solve.budget import StageClock, WorkBudget
 from scheduler.solve.greedy import greedy_plan
-from scheduler.solve.objective import merit_buckets, plan_value, value_coef
+from scheduler.solve.objective import VALUE_SCALE, merit_buckets, plan_value, value_coef
 from scheduler.solve.transitions import pair_transition_steps
 
-from test_solver import CFG, assert_clean, effort, problem_for, random_scene
+from test_solver import CFG, T0, assert_clean, effort, exact_solve, problem_for, random_scene
 
 
 # --------------------------------------------------------------------------- the budget
@@ -151,6 +152,61 @@ def test_request_classes_are_a_tighter_relaxation_than_sector_classes(monkeypatc
     monkeypatch.setattr(bounds, "REQUEST_CLASSES_MAX", 400)
     assert bounds.sequence_bound(P, lower, sectors=16, iterations=3, time_limit_s=None)[1] == 3
     assert bounds.sequence_bound(P, lower, sectors=16, iterations=12, time_limit_s=0.0)[1] == 1
+
+
+def _repeat_scene(seed: int):
+    """Six requests, four of them repeated 2-3 times with 40-70 minutes between starts and
+    10-20-minute exposures: a relaxation that ignores the spacing can stack the repeats."""
+    night, sky, cond, reqs, w = random_scene(seed, 6, 200)
+    rng = np.random.default_rng(seed)
+    reqs = [replace(r, exposure_s=60.0 * float(rng.integers(10, 21)), repeats=int(rng.integers(2, 4)),
+                    min_spacing_s=60.0 * float(rng.integers(40, 71))) if i < 4 else r
+            for i, r in enumerate(reqs)]
+    return problem_for(night, sky, cond, reqs, w, bucket_steps=1)[0]
+
+
+@pytest.mark.parametrize("seed", [5, pytest.param(6, marks=pytest.mark.slow)])
+def test_request_classes_keep_repeats_apart_and_stay_a_valid_bound(seed):
+    """A request's repeat cannot follow it closer than spacing - its longest execution (the
+    model's repeat rule, start to start >= max(duration, spacing)). The bound with that rule
+    stays at or above CP-SAT's proven optimum (a solver that enforces spacing on its own), and
+    is strictly tighter than the same programme with the model's bare T on the diagonal."""
+    P = _repeat_scene(seed)
+    assert sum(1 for x in P.execs if x.k > 0) >= 4
+    out = exact_solve(P, hint=greedy_plan(P), k_best=50)
+    assert out.status == "OPTIMAL"
+    opt = round(out.objective * VALUE_SCALE)
+    fine, bare = bounds._SequenceDP(P, 0), bounds._SequenceDP(P, 0)
+    used = np.unique([x.req for x in P.execs])
+    k = np.arange(used.size)
+    bare.Lc[k, k] = P.T[used, used]
+    assert (fine.Lc[k, k] > bare.Lc[k, k]).any()
+    rng = np.random.default_rng(seed)
+    for _ in range(4):  # never looser at any prices
+        mu = rng.uniform(0, 0.5, fine.n_exec) * float(fine.C.max())
+        assert fine.best_sequence(mu)[0] <= bare.best_sequence(mu)[0] + 1e-6
+    mu = np.zeros(fine.n_exec)
+    ruled = bounds._subgradient(fine, opt, mu, 80, StageClock(None), None, 1.0)[0]
+    loose = bounds._subgradient(bare, opt, mu, 80, StageClock(None), None, 1.0)[0]
+    assert opt <= ruled + 1e-6 < loose
+    assert bounds.sequence_bound(P, opt, sectors=0, iterations=80, time_limit_s=None)[0] >= opt
+
+
+def test_repeats_that_just_fit_their_window_stay_inside_the_bound():
+    """Three 10-minute repeats at least 25 minutes apart, in a window where they fit only at
+    that smallest spacing, back to back: the rule must allow exactly that gap (spacing -
+    duration), no more (the bound with spacing - duration + 1 falls below the optimum)."""
+    night, sky, cond, reqs, w = random_scene(7, 1, 200)
+    start = T0 + timedelta(minutes=60)
+    one = replace(reqs[0], exposure_s=600.0, repeats=3, min_spacing_s=1500.0)
+    d = problem_for(night, sky, cond, [one], w)[0].execs[0].duration  # exposure and overheads, 1-minute steps
+    one = replace(one, not_before=start, not_after=start + timedelta(minutes=2 * 25 + d + 1))
+    P = problem_for(night, sky, cond, [one], w, bucket_steps=1)[0]
+    assert len(P.execs) == 3 and int(np.ptp(P.execs[0].starts)) == 50  # one way to fit: 25 and 25 apart
+    out = exact_solve(P, hint=greedy_plan(P), k_best=50)
+    assert out.status == "OPTIMAL" and len(out.placements) == 3
+    opt = round(out.objective * VALUE_SCALE)
+    assert bounds.sequence_bound(P, opt, sectors=0, iterations=40, time_limit_s=None)[0] >= opt
 
 
 def test_transition_matrix_is_the_same_whatever_the_chunk():

@@ -166,12 +166,14 @@ def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300,
 
 # Requests in the model up to which the sequence bound, after its passes over classes, makes more
 # passes with every request its own class (the transitions then are the model's own T[i, j]).
-# One such pass costs about K^2 x (steps / block) operations: 0.5-0.6 s at 261 requests on the
-# 2-core machine, against 0.09 s with 126 classes; on the 500-request benchmark queue its first
-# pass from the class prices lowers the bound by 0.4 % (docs/solver.md, "Bound and gap").
-REQUEST_CLASSES_MAX = 400
-CLASS_PHASE_SHARE = 0.6  # of the sequence bound's time (wall clock) spent on the class passes
-PASS_COST_MARGIN = 1.5  # on the K^2 estimate of a request-class pass's time
+# One such pass reads K predecessors for each (start, class) pair a candidate has: 0.14-0.17 s
+# at 261-264 requests on the 2-core machine (0.06-0.07 s with 119-126 classes), 3 s at 1009
+# (0.14 s with 156 classes). With a request's repeats kept apart (_requests_as_classes) these
+# passes bring the 500-request benchmark's 10 s bound from 455.1 to 452 (docs/solver.md,
+# "Bound and gap"); at 2000 requests, from 598.3 to 590.4 in the 60 s build.
+REQUEST_CLASSES_MAX = 1200
+CLASS_PHASE_SHARE = 0.3  # of the sequence bound's time (wall clock) spent on the class passes
+PASS_COST_MARGIN = 1.5  # on the estimate of a request-class pass's time (_pass_work_ratio)
 
 
 def _requests_in_model(problem: Problem) -> np.ndarray:
@@ -181,7 +183,8 @@ def _requests_in_model(problem: Problem) -> np.ndarray:
 
 def _requests_as_classes(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
     """Every request with an execution its own class: Lc is the model's T between them (a
-    request with one execution cannot follow itself)."""
+    request with one execution cannot follow itself), and a request's repeat cannot follow
+    it closer than its spacing allows."""
     P = problem
     used = _requests_in_model(P)
     cls = np.zeros(len(P.requests), dtype=np.int64)
@@ -191,6 +194,17 @@ def _requests_as_classes(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
         mine = np.isin(rows, used)
         if mine.any():
             Lc[cls[rows[mine]]] = block[mine][:, used]
+    # Two entries of one request next to each other start at least max(duration of the first,
+    # spacing) apart (the model's repeat rule), so the gap between them is at least spacing -
+    # its longest execution. Without this the relaxation stacks a request's repeats back to
+    # back at its best merit: on the benchmark's 500-request queues the converged relaxation
+    # (column generation) falls from 455.15 to 451.34 (standard) and from 193.6 to about 186
+    # (dense) with it.
+    longest = np.zeros(len(P.requests), dtype=np.int64)
+    np.maximum.at(longest, np.array([ex.req for ex in P.execs], dtype=np.int64),
+                  np.array([ex.duration for ex in P.execs], dtype=np.int64))
+    k = np.arange(used.size)
+    Lc[k, k] = np.maximum(Lc[k, k], P.spacing_steps[used] - longest[used])
     return cls, Lc
 
 
@@ -282,7 +296,7 @@ class _SequenceDP:
         RT = np.zeros((n_t + 1, K), dtype=np.int64)
         bp = np.full((n_t + 1, K), -1, dtype=np.int64)
         bpk = np.full((n_t + 1, K), -1, dtype=np.int64)
-        k_idx = np.arange(K)[None, :, None]
+        k_idx = np.arange(K)[None, :]
         done = t0  # R[t] is final for t < done
 
         def complete_r(upto: int) -> None:
@@ -305,17 +319,18 @@ class _SequenceDP:
             lo, hi = self.by_start[s0], self.by_start[s1] if s1 <= n_t else len(self.S)
             if lo >= hi:
                 continue
-            # best predecessor for a start of class k2 at s: max_k R[s - Lc[k, k2], k], or none (0)
-            s = np.arange(s0, s1)[:, None, None]
-            tt = s - self.Lc[None, :, :]
-            got = np.where(tt >= t0, R[np.clip(tt, 0, n_t), k_idx], NEG)  # [B, K, K]
-            pk = np.argmax(got, axis=1)  # [B, K]
-            pv = np.take_along_axis(got, pk[:, None, :], axis=1)[:, 0, :]
-            first = pv < 0.0
-            pv, pk = np.where(first, 0.0, pv), np.where(first, -1, pk)
+            # best predecessor for a start of class k2 at s: max_k R[s - Lc[k, k2], k], or none
+            # (0); only for the (s, k2) pairs some candidate starts at
             idx = np.arange(lo, hi)
             rel, cl_all = self.S[idx] - s0, self.CL[idx]
-            cand = pv[rel, cl_all] + val[idx]
+            pairs, inv = np.unique(rel * K + cl_all, return_inverse=True)
+            tt = (s0 + pairs // K)[:, None] - self.Lc[:, pairs % K].T  # [pairs, K]
+            got = np.where(tt >= t0, R[np.clip(tt, 0, n_t), k_idx], NEG)
+            pk = np.argmax(got, axis=1)
+            pv = got[np.arange(pairs.size), pk]
+            first = pv < 0.0
+            pv, pk = np.where(first, 0.0, pv)[inv], np.where(first, -1, pk)[inv]
+            cand = pv + val[idx]
             # keep the best candidate per (end, class), then compare with F
             key = self.END[idx] * K + cl_all
             o = np.lexsort((cand, key))
@@ -327,7 +342,7 @@ class _SequenceDP:
             ends, cl, cv, w = ends[upd], cl[upd], cv[upd], w[upd]
             F[ends, cl] = cv
             bp[ends, cl] = idx[w]
-            bpk[ends, cl] = pk[rel[w], cl]
+            bpk[ends, cl] = pk[w]
         complete_r(n_t + 1)
         return R, RT, bp, bpk
 
@@ -368,11 +383,12 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     best, mu, its, met = _subgradient(dp, lower, mu, iterations - more if refine else iterations,
                                       StageClock(first_s), stop_gap, 1.0)
     if refine and not met:
-        # a pass costs about K^2 (measured 6 times a 126-class pass at 261 requests, where the
-        # ratio of squares says 4.3; the margin also covers building its programme): skip when
-        # even one would not fit in the time left
+        # a pass reads K predecessors for each (start, class) pair some candidate has, so its
+        # cost goes as pairs x K (measured 2.4-2.5 times a class pass at 500 requests, where
+        # this ratio says 3.3-3.8, and 22.6 times at 2000, where it says 24.4; the margin also
+        # covers building its programme): skip when even one would not fit in the time left
         fits = time_limit_s is None or (
-            PASS_COST_MARGIN * stage.spent() * time_limit_s / its * (n_req / np.unique(dp.CL).size) ** 2
+            PASS_COST_MARGIN * stage.spent() * time_limit_s / its * _pass_work_ratio(problem, dp)
             <= time_limit_s * (1.0 - stage.spent()))
         if fits:
             fine = _SequenceDP(problem, 0)
@@ -380,6 +396,15 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
             best2, _, its2, _ = _subgradient(fine, lower, mu, more, StageClock(left), stop_gap, 0.25)
             best, its = min(best, best2), its + its2
     return int(math.floor(best + 1e-6)), its
+
+
+def _pass_work_ratio(problem: Problem, dp: _SequenceDP) -> float:
+    """How much more a pass with every request its own class reads than a pass of ``dp``:
+    (start, class) pairs x classes, for both."""
+    def work(cls: np.ndarray) -> int:
+        return np.unique(dp.S * (int(cls.max()) + 1) + cls).size * np.unique(cls).size
+    req_of = np.array([ex.req for ex in problem.execs], dtype=np.int64)
+    return work(req_of[dp.E]) / work(dp.CL)
 
 
 def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, clock: StageClock,
