@@ -170,7 +170,9 @@ def lagrangian_bound(problem: Problem, lower: int, *, iterations: int = 300,
 # at 261-264 requests on the 2-core machine (0.06-0.07 s with 119-126 classes), 3 s at 1009
 # (0.14 s with 156 classes). With a request's repeats kept apart (_requests_as_classes) these
 # passes bring the 500-request benchmark's 10 s bound from 455.1 to 452 (docs/solver.md,
-# "Bound and gap"); at 2000 requests, from 598.3 to 590.4 in the 60 s build.
+# "Bound and gap"). At 2000 requests (1009 in the model) the 60 s build's bound stage, about
+# 4.6 s, mostly leaves no room for a 3 s pass; in one trial run it did, the bound went from 598.3
+# to 590.4.
 REQUEST_CLASSES_MAX = 1200
 CLASS_PHASE_SHARE = 0.3  # of the sequence bound's time (wall clock) spent on the class passes
 PASS_COST_MARGIN = 1.5  # on the estimate of a request-class pass's time (_pass_work_ratio)
@@ -369,7 +371,8 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     there is no refinement) and the rest goes to
     passes with every request its own class, from the best class prices with shorter steps:
     the model's own T[i, j] then separates consecutive entries, a tighter relaxation (every
-    plan is still such a sequence) that is slower per pass. ``sectors=0`` makes every pass so.
+    plan is still such a sequence) that is slower per pass; when not even one such pass would
+    fit in the time left, the class passes go on instead. ``sectors=0`` makes every pass so.
     """
     if not problem.execs:
         return 0, 0
@@ -390,11 +393,11 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         fits = time_limit_s is None or (
             PASS_COST_MARGIN * stage.spent() * time_limit_s / its * _pass_work_ratio(problem, dp)
             <= time_limit_s * (1.0 - stage.spent()))
-        if fits:
-            fine = _SequenceDP(problem, 0)
-            left = None if time_limit_s is None else max(0.0, time_limit_s * (1.0 - stage.spent()))
-            best2, _, its2, _ = _subgradient(fine, lower, mu, more, StageClock(left), stop_gap, 0.25)
-            best, its = min(best, best2), its + its2
+        # with no room for one, the class passes go on in the time left instead
+        left = None if time_limit_s is None else max(0.0, time_limit_s * (1.0 - stage.spent()))
+        best2, _, its2, _ = _subgradient(_SequenceDP(problem, 0) if fits else dp, lower, mu, more,
+                                         StageClock(left), stop_gap, 0.25)
+        best, its = min(best, best2), its + its2
     return int(math.floor(best + 1e-6)), its
 
 
