@@ -5,8 +5,8 @@ every vectorised or chunked computation is compared with a plain reference writt
 from __future__ import annotations
 
 import time
-from datetime import timedelta
 from dataclasses import fields, replace
+from datetime import timedelta
 
 import numpy as np
 import pytest
@@ -152,6 +152,15 @@ def test_request_classes_are_a_tighter_relaxation_than_sector_classes(monkeypatc
     monkeypatch.setattr(bounds, "REQUEST_CLASSES_MAX", 400)
     assert bounds.sequence_bound(P, lower, sectors=16, iterations=3, time_limit_s=None)[1] == 3
     assert bounds.sequence_bound(P, lower, sectors=16, iterations=12, time_limit_s=0.0)[1] == 1
+    # a request-class pass judged not to fit (a huge margin) is never built: the class passes
+    # use its iterations instead (a limit of 1000 s, so the iteration counts decide)
+    monkeypatch.setattr(bounds, "PASS_COST_MARGIN", 1e12)
+
+    def never(*_a):
+        raise AssertionError("request-class programme built")
+    monkeypatch.setattr(bounds, "_requests_as_classes", never)
+    b, its = bounds.sequence_bound(P, lower, sectors=16, iterations=12, time_limit_s=1000.0)
+    assert its == 12 and lower <= b <= class_only[0]
 
 
 def _repeat_scene(seed: int):
