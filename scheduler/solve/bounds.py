@@ -30,7 +30,7 @@ _CHUNK = 512  # rows of Problem.T handled at once (memory stays linear in the nu
 
 def _single_execution(problem: Problem) -> np.ndarray:
     """[n_req] True for a request with one execution tonight: it cannot follow itself."""
-    n_exec_of = np.bincount([ex.req for ex in problem.execs], minlength=len(problem.requests))
+    n_exec_of = np.bincount(problem.exec_requests(), minlength=len(problem.requests))
     return n_exec_of <= 1
 
 
@@ -84,7 +84,7 @@ class _TimeIndexed:
         col_min = _smallest_transition_into(P)
         self.E, self.S, self.C = _all_starts(P)
         tmin = np.array([0 if ex.in_progress else int(min(P.tmax[ex.req], col_min[ex.req])) for ex in P.execs])
-        dur = np.array([ex.duration for ex in P.execs])
+        dur = P.exec_durations()
         self.LO = np.clip(self.S - tmin[self.E], 0, n_t)
         self.HI = np.clip(self.S + dur[self.E], 0, n_t)
         self.forced = np.array([ex.fixed_start is not None for ex in P.execs])
@@ -180,7 +180,7 @@ PASS_COST_MARGIN = 1.5  # on the estimate of a request-class pass's time (_pass_
 
 def _requests_in_model(problem: Problem) -> np.ndarray:
     """The requests with at least one execution tonight (sorted)."""
-    return np.unique([ex.req for ex in problem.execs])
+    return np.unique(problem.exec_requests())
 
 
 def _requests_as_classes(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
@@ -203,8 +203,7 @@ def _requests_as_classes(problem: Problem) -> tuple[np.ndarray, np.ndarray]:
     # (column generation) falls from 455.15 to 451.34 (standard) and from 193.6 to about 186
     # (dense) with it.
     longest = np.zeros(len(P.requests), dtype=np.int64)
-    np.maximum.at(longest, np.array([ex.req for ex in P.execs], dtype=np.int64),
-                  np.array([ex.duration for ex in P.execs], dtype=np.int64))
+    np.maximum.at(longest, P.exec_requests(), P.exec_durations())
     k = np.arange(used.size)
     Lc[k, k] = np.maximum(Lc[k, k], P.spacing_steps[used] - longest[used])
     return cls, Lc
@@ -256,8 +255,8 @@ class _SequenceDP:
         C = C + np.where(self.forced[E], self.M, 0.0)
         order = np.argsort(S, kind="stable")
         self.E, self.S, self.C = E[order], S[order], C[order]
-        dur = np.array([ex.duration for ex in execs], dtype=np.int64)
-        ecls = cls_r[np.array([ex.req for ex in execs], dtype=np.int64)]
+        dur = P.exec_durations()
+        ecls = cls_r[P.exec_requests()]
         self.END, self.CL = self.S + dur[self.E], ecls[self.E]
         self.by_start = np.searchsorted(self.S, np.arange(self.n_t + 1), side="left")
         self.t0 = int(min(P.now_step, self.S.min()))  # an entry in progress started before now
@@ -406,8 +405,7 @@ def _pass_work_ratio(problem: Problem, dp: _SequenceDP) -> float:
     (start, class) pairs x classes, for both."""
     def work(cls: np.ndarray) -> int:
         return np.unique(dp.S * (int(cls.max()) + 1) + cls).size * np.unique(cls).size
-    req_of = np.array([ex.req for ex in problem.execs], dtype=np.int64)
-    return work(req_of[dp.E]) / work(dp.CL)
+    return work(problem.exec_requests()[dp.E]) / work(dp.CL)
 
 
 def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, clock: StageClock,

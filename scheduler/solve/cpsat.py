@@ -79,8 +79,8 @@ def candidate_arcs(problem: Problem, k_best: int, forced: Sequence[tuple[int, in
     n_e = len(execs)
     if n_e == 0:
         return []
-    req = np.array([ex.req for ex in execs])
-    dur = np.array([ex.duration for ex in execs])
+    req = P.exec_requests()
+    dur = P.exec_durations()
     first = np.array([ex.starts.min() if ex.fixed_start is None else ex.fixed_start for ex in execs])
     last = np.array([ex.starts.max() if ex.fixed_start is None else ex.fixed_start for ex in execs])
     density = P.base_value[req] / np.maximum(dur, 1)

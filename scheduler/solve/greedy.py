@@ -55,10 +55,10 @@ def dispatch_tables(problem: Problem) -> DispatchTables:
             nxt[e] = np.where(idx < st.size, st[np.minimum(idx, st.size - 1)], n_t)
             coef[e, st] = val
     execs = problem.execs
-    req = np.array([ex.req for ex in execs], dtype=np.int64)
+    req = problem.exec_requests()
     k = np.array([ex.k for ex in execs], dtype=np.int64)
     kept = tuple((e, int(ex.fixed_start)) for e, ex in enumerate(execs) if ex.fixed_start is not None)
-    return DispatchTables(nxt, coef, req, np.array([ex.duration for ex in execs], dtype=np.int64), k,
+    return DispatchTables(nxt, coef, req, problem.exec_durations(), k,
                           np.lexsort((k, req)), kept)
 
 

@@ -79,9 +79,16 @@ class Problem:
             return np.full(len(self.requests), DEFAULT_TIER, dtype=np.int64)
         return self.factors.tier
 
+    def exec_requests(self) -> np.ndarray:
+        """[n_exec] the request of each execution (index into ``requests``)."""
+        return np.array([ex.req for ex in self.execs], dtype=np.int64)
+
+    def exec_durations(self) -> np.ndarray:
+        """[n_exec] grid steps of each execution."""
+        return np.array([ex.duration for ex in self.execs], dtype=np.int64)
+
     def exec_tiers(self) -> np.ndarray:
-        return self.tier[np.array([ex.req for ex in self.execs], dtype=np.int64)] if self.execs \
-            else np.zeros(0, dtype=np.int64)
+        return self.tier[self.exec_requests()] if self.execs else np.zeros(0, dtype=np.int64)
 
     def exec_T(self, a: int, b: int) -> int:
         return int(self.T[self.execs[a].req, self.execs[b].req])
