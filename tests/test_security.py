@@ -29,6 +29,19 @@ def test_no_sql_is_built_from_strings():
     raw = re.compile(r"""(text|execute|exec_driver_sql)\(\s*(f["']|["'][^"']*["']\s*(%|\+|\.format))""")
     hits = [f"{p.name}:{i + 1}" for p, src in _sources() for i, line in enumerate(src.splitlines()) if raw.search(line)]
     assert hits == []
-    # and the only raw statements are the SQLite connection pragmas
+    # and the only raw statements are the SQLite connection pragmas, but for db/sqlite_direct.py
     stmts = [m.group(0) for _, src in _sources() for m in re.finditer(r"execute\(\"[^\"]*\"\)", src)]
     assert stmts and all(s.startswith('execute("PRAGMA ') for s in stmts)
+
+
+def test_the_direct_sqlite_statements_are_constants_with_bound_parameters():
+    """db/sqlite_direct.py (the quick commands without SQLAlchemy) runs only the statements of
+    its SQL table: literal text, values bound as parameters, never formatted in."""
+    from scheduler.db.sqlite_direct import SQL
+
+    src = (SRC / "db" / "sqlite_direct.py").read_text(encoding="utf-8")
+    calls = re.findall(r"\.execute\(([^,)]*)", src)
+    assert len(calls) >= 10 and all(re.fullmatch(r'SQL\[("[a-z_]+"|query)\]', c) for c in calls), calls
+    assert all(isinstance(q, str) and not re.search(r"[{}%]", q) for q in SQL.values())
+    code = src[src.index("class DirectDb"):]
+    assert all(f'"{key}"' in code for key in SQL)  # every statement is used

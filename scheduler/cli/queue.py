@@ -186,7 +186,6 @@ def request_add(c: Ctx, allow_past: bool, **opts: Any) -> None:
     with adaptive optics, the corrected core where the predicted Strehl ratio allows it).
     The target is --ra/--dec, or --body, or --ephemeris FILE.
     """
-    from scheduler.db import store
     from scheduler.model.request import EPHEMERIS_KEY, validate_request
     from scheduler.model.timegrid import utcnow
 
@@ -197,14 +196,21 @@ def request_add(c: Ctx, allow_past: bool, **opts: Any) -> None:
     if raw.get("ephemeris_file"):
         raw[EPHEMERIS_KEY] = read_ephemeris(raw["ephemeris_file"], raw["ephemeris_file"])
     config = c.config()
-    db = c.db()
     now = utcnow()
 
-    def work(s):
-        spec = validate_request(raw, config, store.program_codes(s), now=now, allow_past=allow_past)
-        return spec, store.add_requests(s, [spec])[0]
+    def specs(codes: set[str]) -> list:
+        return [validate_request(raw, config, codes, now=now, allow_past=allow_past)]
 
-    spec, rid = db.retrying(work)
+    used, added = c.direct(lambda d: d.add_requests(specs))
+    if not used:
+        from scheduler.db import store
+
+        def work(s):
+            found = specs(store.program_codes(s))
+            return found, store.add_requests(s, found)
+
+        added = c.db().retrying(work)
+    (spec,), (rid,) = added
     _visibility_warnings(config, [spec.with_(id=rid)])
     click.echo(rid)
 
@@ -285,10 +291,14 @@ def request_import(c: Ctx, file: str, allow_past: bool) -> None:
 @pass_ctx
 def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool) -> None:
     """List requests."""
-    from scheduler.db import store
+    from scheduler.db.documents import request_dict
 
-    with c.db().session() as s:
-        rows = [store.request_dict(r) for r in store.list_requests(s, status, program)]
+    used, rows = c.direct(lambda d: [request_dict(r) for r in d.requests(status, program)])
+    if not used:
+        from scheduler.db import store
+
+        with c.db().session() as s:
+            rows = [request_dict(r) for r in store.list_requests(s, status, program)]
     if as_json:
         echo_json(rows)
         return

@@ -199,10 +199,12 @@ def replan(c: Ctx, reason: str, wait: bool, timeout_s: float, db_url: str | None
 def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
     """Is the service alive (since when, pid, last heartbeat), the active plan, the last
     conditions report, pending re-plan orders."""
-    from scheduler.service.status import status_document
-
     _use_db(c, db_url)
-    data = status_document(c.db())
+    used, data = c.direct(lambda d: d.status())
+    if not used:
+        from scheduler.service.status import status_document
+
+        data = status_document(c.db())
     service, plan_d, rep_d = data["service"], data["plan"], data["conditions"]
     pending, last_d = data["pending_orders"], data["last_order"]
     if as_json:

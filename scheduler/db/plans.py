@@ -17,6 +17,7 @@ from scheduler.model import plan as contract
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso
+from scheduler.db.documents import order_dict  # noqa: F401  (re-exported)
 from scheduler.db.models import ConditionsReport, Plan, PlanEntry, Program, ReplanOrder, Request, utcnow
 
 
@@ -264,8 +265,3 @@ def finish_order(order: ReplanOrder, result: str, plan_id: int | None) -> None:
     order.done_at = utcnow()
     order.result = result[:2000]
     order.plan_id = plan_id
-
-
-def order_dict(o: ReplanOrder) -> dict[str, Any]:
-    return {"id": o.id, "reason": o.reason, "requested_by": o.requested_by, "requested_at": iso(o.requested_at),
-            "taken_at": iso(o.taken_at), "done_at": iso(o.done_at), "result": o.result, "plan_version": o.plan_id}

@@ -21,20 +21,10 @@ from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import ArgumentError, OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
+from scheduler.db.sqlite_direct import DEFAULT_DB_FILE, resolve_url  # noqa: F401  (re-exported)
 from scheduler.model.errors import InputError
 
-DEFAULT_DB_FILE = "nightplan.sqlite"
 T = TypeVar("T")
-
-
-def resolve_url(url: str | None) -> str:
-    """--db URL, else NIGHTPLAN_DB, else a SQLite file in the current folder."""
-    url = url or os.environ.get("NIGHTPLAN_DB") or ""
-    if not url:
-        return f"sqlite:///{DEFAULT_DB_FILE}"
-    if "://" not in url:  # a bare path means a SQLite file
-        return f"sqlite:///{url}"
-    return url
 
 
 def sqlite_path(url: str) -> Path | None:

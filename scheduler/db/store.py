@@ -19,19 +19,11 @@ from scheduler.model.program import DEFAULT_TIER, ProgramState
 from scheduler.model.request import (
     ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus, validate_program,
 )
-from scheduler.model.timegrid import iso
+from scheduler.db.documents import SPEC_FIELDS, program_dict, request_dict  # noqa: F401  (re-exported)
 from scheduler.db.models import (
     ConditionsReport, ConditionsSample, Opportunity, Outcome, PlanEntry, Program, Request, utcnow,
 )
 
-# request columns copied 1:1 between RequestSpec and the Request row
-_SPEC_FIELDS = (
-    "target", "ra_deg", "dec_deg", "band", "instrument", "exposure_s", "repeats", "min_spacing_s",
-    "resolution_arcsec", "max_seeing_arcsec", "max_pwv_mm", "max_airmass", "min_moon_sep_deg",
-    "max_moon_illum", "min_sky_mag", "max_cloud_mag", "not_before", "not_after", "period_epoch",
-    "period_days", "phase_min", "phase_max", "priority", "too", "status", "completed_repeats",
-    "partial_exposure_s", "guide_star_sep_arcsec", "body",
-)
 
 
 # --------------------------------------------------------------------------- programs
@@ -53,14 +45,6 @@ def add_program(s: Session, code: str, pi: str, hours: float | str = 0.0, weight
     s.add(prog)
     s.flush()
     return prog
-
-
-def program_dict(p: Program, used_hours: float | None = None) -> dict[str, Any]:
-    d = {"code": p.code, "pi": p.pi, "hours": p.hours_allocated, "weight": p.weight, "tier": p.tier,
-         "created_at": iso(p.created_at)}
-    if used_hours is not None:
-        d["hours_done"] = round(used_hours, 3)
-    return d
 
 
 def charged_hours_by_program(s: Session) -> dict[str, float]:
@@ -129,7 +113,7 @@ def add_requests(s: Session, specs: Iterable[RequestSpec]) -> list[int]:
         prog = programs.get(spec.program)
         if prog is None:
             raise InputError("program", f"unknown program {spec.program!r}")
-        row = Request(program_id=prog.id, **{f: getattr(spec, f) for f in _SPEC_FIELDS})
+        row = Request(program_id=prog.id, **{f: getattr(spec, f) for f in SPEC_FIELDS})
         row.ephemeris_csv = spec.ephemeris.to_csv() if spec.ephemeris is not None else None
         row.status = RequestStatus.QUEUED
         s.add(row)
@@ -148,7 +132,7 @@ def _ephemeris(text: str, source: str):
 def to_spec(row: Request) -> RequestSpec:
     table = _ephemeris(row.ephemeris_csv, f"request {row.id} ephemeris") if row.ephemeris_csv else None
     return RequestSpec(program=row.program.code, id=row.id, ephemeris=table,
-                       **{f: getattr(row, f) for f in _SPEC_FIELDS})
+                       **{f: getattr(row, f) for f in SPEC_FIELDS})
 
 
 def ephemeris_tables(s: Session, ids: Iterable[int]):
@@ -158,51 +142,6 @@ def ephemeris_tables(s: Session, ids: Iterable[int]):
         return {}
     q = select(Request.id, Request.ephemeris_csv).where(Request.id.in_(ids), Request.ephemeris_csv.is_not(None))
     return {rid: _ephemeris(text, f"request {rid} ephemeris") for rid, text in s.execute(q)}
-
-
-def _table_rows(text: str | None) -> int | None:
-    """Rows of a stored ephemeris table (its header is the first line), None without one."""
-    return None if not text else max(text.count("\n") - 1, 0)
-
-
-def request_dict(row: Request) -> dict[str, Any]:
-    """The JSON contract of `request list/show --json`: import column names for the limits."""
-    return {
-        "id": row.id,
-        "program": row.program.code,
-        "target": row.target,
-        "ra_deg": row.ra_deg,
-        "dec_deg": row.dec_deg,
-        "band": row.band,
-        "instrument": row.instrument,
-        "exposure_s": row.exposure_s,
-        "status": row.status,
-        "resolution_arcsec": row.resolution_arcsec,
-        "max_seeing_arcsec": row.max_seeing_arcsec,
-        "max_pwv_mm": row.max_pwv_mm,
-        "max_airmass": row.max_airmass,
-        "min_moon_sep_deg": row.min_moon_sep_deg,
-        "max_cloud_mag": row.max_cloud_mag,
-        "not_before": iso(row.not_before),
-        "not_after": iso(row.not_after),
-        "priority": row.priority,
-        "repeats": row.repeats,
-        "min_spacing_s": row.min_spacing_s,
-        "max_moon_illum": row.max_moon_illum,
-        "min_sky_mag": row.min_sky_mag,
-        "period_epoch": iso(row.period_epoch),
-        "period_days": row.period_days,
-        "phase_min": row.phase_min,
-        "phase_max": row.phase_max,
-        "too": row.too,
-        "completed_repeats": row.completed_repeats,
-        "partial_exposure_s": row.partial_exposure_s,
-        "guide_star_sep_arcsec": row.guide_star_sep_arcsec,
-        "body": row.body,
-        "ephemeris_rows": _table_rows(row.ephemeris_csv),
-        "created_at": iso(row.created_at),
-        "updated_at": iso(row.updated_at),
-    }
 
 
 def get_request(s: Session, request_id: int) -> Request:
