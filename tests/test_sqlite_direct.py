@@ -220,6 +220,45 @@ def test_a_request_added_directly_is_stored_as_the_models_store_it(workdir):
     assert [b.with_(id=None) for b in back] == [sp.with_(id=None, status=RequestStatus.QUEUED) for sp in specs]
 
 
+def test_validation_runs_outside_the_write_lock(workdir):
+    """Validating may take most of a second (a planet's ephemeris loads on first use); the write
+    lock is taken only for the insert, so meanwhile another writer (the service's heartbeat) is
+    not kept waiting."""
+    config = load_config(workdir / "observatory.toml")
+    path = workdir / "nightplan.sqlite"
+    probes = []
+
+    def validate(codes):
+        other = sqlite3.connect(path, timeout=0, isolation_level=None)  # no waiting: locked is an error
+        try:
+            other.execute("BEGIN IMMEDIATE")
+            other.execute("ROLLBACK")
+            probes.append("free")
+        finally:
+            other.close()
+        return _specs(config)[:1]
+
+    used, (_specs_added, ids) = run_direct(str(path), lambda d: d.add_requests(validate))
+    assert used and probes == ["free"] and ids == [1]
+
+
+def test_a_request_without_its_program_is_not_listed_either_way(workdir):
+    config = load_config(workdir / "observatory.toml")
+    path = str(workdir / "nightplan.sqlite")
+    db = open_db(path, create_file=False)
+    db.retrying(lambda s: store.add_requests(s, _specs(config)[:3]))
+    db.dispose()
+    with sqlite3.connect(path) as c:  # a damaged file: foreign keys were off when it was written
+        c.execute("PRAGMA foreign_keys=OFF")
+        c.execute("UPDATE request SET program_id = 99 WHERE id = 2")
+    db = open_db(path, create_file=False)
+    with db.session() as s:
+        orm = [request_dict(r) for r in store.list_requests(s)]
+    db.dispose()
+    used, direct = run_direct(path, lambda d: [request_dict(r) for r in d.requests()])
+    assert used and [r["id"] for r in direct] == [r["id"] for r in orm] == [1, 3]
+
+
 def test_the_insert_sets_every_column_of_the_model():
     import re
 

@@ -117,7 +117,7 @@ SQL = {
         ":phase_min, :phase_max, :priority, :too, :status, :completed_repeats, :partial_exposure_s, "
         ":guide_star_sep_arcsec, :body, :ephemeris_csv, :created_at, :updated_at)"),
     "begin": "BEGIN",
-    "begin_write": "BEGIN IMMEDIATE",  # the write lock first: the program list cannot change under the insert
+    "begin_write": "BEGIN IMMEDIATE",  # the write lock before the programs are read again for the insert
     "commit": "COMMIT",
     "rollback": "ROLLBACK",
 }
@@ -178,11 +178,15 @@ class DirectDb:
 
     def requests(self, status: str | None = None, program: str | None = None) -> list[SimpleNamespace]:
         """store.list_requests: by id, each with ``.program.code``."""
-        programs = {p.id: p for p in self.rows("program", "programs")}
-        rows = self.rows("request", "requests", (status or None, program or None))
+        self.conn.execute(SQL["begin"])  # one snapshot for both reads
+        try:
+            programs = {p.id: p for p in self.rows("program", "programs")}
+            rows = self.rows("request", "requests", (status or None, program or None))
+        finally:
+            self.conn.execute(SQL["rollback"])
         for r in rows:
-            r.program = programs[r.program_id]
-        return rows
+            r.program = programs.get(r.program_id)
+        return [r for r in rows if r.program is not None]  # as the join there: a row without its program is not listed
 
     def status(self) -> dict[str, Any]:
         """service/status.status_document, read in one transaction."""
@@ -202,17 +206,19 @@ class DirectDb:
     # ------------------------------------------------------------------ the one write
 
     def add_requests(self, make_specs: Callable[[set[str]], list]) -> tuple[list, list[int]]:
-        """store.add_requests, with the validation in the same write transaction:
-        ``make_specs(program codes)`` gives the RequestSpecs (it raises to refuse them; nothing
-        is written then)."""
+        """store.add_requests after validation: ``make_specs(program codes)`` gives the
+        RequestSpecs (it raises to refuse them; nothing is written then). The programs are read
+        again under the write lock, so a program gone meanwhile refuses the insert."""
         from scheduler.model.errors import InputError
         from scheduler.model.request import RequestStatus
         from scheduler.model.timegrid import utcnow
 
+        # Validation first, outside the write lock: it may take most of a second (a planet's
+        # ephemeris loads on first use), and a held lock would stall the service's heartbeat.
+        specs = make_specs({code for _pid, code in self.conn.execute(SQL["program_ids"])})
         self.conn.execute(SQL["begin_write"])
         try:
             program_ids = {code: pid for pid, code in self.conn.execute(SQL["program_ids"])}
-            specs = make_specs(set(program_ids))
             ids = []
             for spec in specs:
                 if spec.program not in program_ids:
