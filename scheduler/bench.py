@@ -9,8 +9,10 @@ end-to-end builds, each in a fresh process (its peak RSS is its own): total_s fr
 planning (sky included) to the checked plan, time_limit_s, overrun = total_s / time_limit_s - 1,
 gap, vs_greedy, cpsat_improved, peak_rss_mib and the load average when it started; the stage
 split; the plan's metrics. Also a 500-request re-plan after a conditions change (sky grid
-reused), the objective's spread over ``spread_runs`` builds of 500 standard requests, and a sky
-section. docs/benchmarks.md gets the medians, docs/benchmarks.json every run.
+reused), the objective's spread over ``spread_runs`` builds of 500 standard requests, a sky
+section, and the commands people type (`--help`, `request add`, `request list --json`,
+`status`) timed in new processes on a SQLite file holding 500 requests. docs/benchmarks.md gets
+the medians, docs/benchmarks.json every run.
 
 By default each build runs against its wall-clock limit (10 s up to 500 requests, 60 s above,
 4.8 s for the re-plan), as a user's build does. --effort N bounds every build by a
@@ -299,6 +301,51 @@ def run_sky_section(config, night, quick: bool) -> dict:
             "feasibility_requests": 500, "static_layer_s": static_s, "conditions_layers_s": cond_s}
 
 
+COMMAND_QUEUE = 500  # requests in the database the commands are timed on
+
+
+def run_commands_section(config, night, runs: int = 5) -> dict:
+    """The commands people type, timed as they run them: each a new process of this
+    environment's `nightplan` (else `python -m scheduler`), in a folder made by `nightplan init`
+    whose SQLite file holds the 500-request benchmark queue; median, fastest and slowest of
+    ``runs``."""
+    import subprocess
+    import sys
+    import tempfile
+
+    from scheduler.db import store
+    from scheduler.db.session import open_db
+
+    exe = Path(sys.executable).with_name("nightplan")
+    base = [str(exe)] if exe.is_file() else [sys.executable, "-m", "scheduler"]
+    reqs, weights = generate_queue(config, COMMAND_QUEUE, SEED, night)
+    load = _load()
+    out = {}
+    with tempfile.TemporaryDirectory(prefix="nightplan-bench-") as folder:
+        env = {k: v for k, v in os.environ.items() if k not in ("NIGHTPLAN_DB", "NIGHTPLAN_CONFIG")}
+        subprocess.run(base + ["init"], cwd=folder, env=env, check=True, capture_output=True)
+        db = open_db(str(Path(folder) / "nightplan.sqlite"), create_file=False)
+        db.retrying(lambda s: [store.add_program(s, code, "Invented PI", 100.0, w) for code, w in weights.items()])
+        db.retrying(lambda s: store.add_requests(s, reqs))
+        db.dispose()
+        commands = {
+            "--help": ["--help"],
+            "request add": ["request", "add", "--program", next(iter(weights)), "--target", "Invented bench field",
+                            "--ra", "83.8", "--dec", "-5.4", "--band", "K", "--exposure", "600"],
+            "request list --json": ["request", "list", "--json"],
+            "status": ["status"],
+        }
+        for name, args in commands.items():
+            times = []
+            for _ in range(runs):
+                t0 = time.perf_counter()
+                subprocess.run(base + args, cwd=folder, env=env, check=True, capture_output=True)
+                times.append(time.perf_counter() - t0)
+            out[name] = {"median_s": _median(times), "min_s": min(times), "max_s": max(times)}
+    return {"requests": COMMAND_QUEUE, "runs": runs, "via": " ".join(Path(b).name for b in base[:1]) + (
+        " -m scheduler" if len(base) > 1 else ""), "load_average": load, "commands": out}
+
+
 def run_opportunities_section(config, night) -> dict:
     """The remaining-opportunities count alone: 2000 requests over the lookahead (60 nights),
     an empty cache; then the next night with that cache (one new night per request)."""
@@ -393,6 +440,11 @@ def _targets(data: dict) -> list[tuple[bool, str]]:
         add(rp["total_s"] <= 5.0, f"re-plan of 500 requests in {rp['total_s']:.2f} s (target 5 s)")
         if rp.get("max_overrun") is not None:
             add(rp["max_overrun"] < 0.02, f"re-plan largest overrun {100 * rp['max_overrun']:+.1f} % (target < 2 %)")
+    cm = data.get("commands")
+    if cm:
+        for name, t in cm["commands"].items():
+            add(t["median_s"] < 0.5, f"`nightplan {name}` ({cm['requests']} requests) in {t['median_s']:.2f} s "
+                                     "(target 0.5 s)")
     sp = data.get("spread")
     if sp:
         add(sp["objective_spread"] < 0.005, f"objective spread over {sp['runs']} builds of standard 500: "
@@ -469,6 +521,7 @@ def write_docs(out: Path, data: dict) -> None:
                   f"- compute_sky, {sk['compute_sky_targets']} targets x {sk['compute_sky_times']} times: {sk['compute_sky_s']:.2f} s",
                   f"- feasibility static layer, {sk['feasibility_requests']} requests: {sk['static_layer_s']:.2f} s",
                   f"- feasibility conditions layers, {sk['feasibility_requests']} requests: {sk['conditions_layers_s']:.2f} s"]
+    cm = data.get("commands")
     op = data.get("opportunities")
     if op:
         lines += [f"- remaining opportunities, {op['requests']} requests x {op['nights']} nights on a "
@@ -478,6 +531,13 @@ def write_docs(out: Path, data: dict) -> None:
                   + ", ".join(f"{r['profile']} {r['requests']} requests {r.get('opportunities_s', 0.0):.2f} s"
                               for r in data["summary"])
                   + " (medians) to fill it, outside the build's budget."]
+    if cm:
+        load = cm.get("load_average")
+        lines += ["", f"Commands people type, each a new process (`{cm['via']}`) on a SQLite file holding "
+                      f"{cm['requests']} requests: median (fastest-slowest) of {cm['runs']} runs"
+                      + (f", load {load[0]:.1f} when they started" if load else "") + ":", ""]
+        lines += [f"- `nightplan {name}`: {t['median_s']:.2f} s ({t['min_s']:.2f}-{t['max_s']:.2f})"
+                  for name, t in cm["commands"].items()]
     base_rss = max((r["baseline_rss_mib"] for r in data["runs_all"]), default=0.0)
     lines += ["", "Peak RSS: each run is a fresh process; the figure is that process's peak resident set",
               f"(ru_maxrss), including about {base_rss:.0f} MiB of interpreter and libraries (astropy, OR-Tools) before any work.", ""]
@@ -590,6 +650,9 @@ def main(argv=None) -> int:
             print(f"spread over {len(objs)} builds of standard 500: {100 * data['spread']['objective_spread']:.2f} %")
     data["dark_hours"] = dark_steps * night.step_s / 3600
     data["sky"] = run_sky_section(config, night, a.quick)
+    data["commands"] = run_commands_section(config, night, 3 if a.quick else 5)
+    print("commands: " + ", ".join(f"{name} {t['median_s']:.2f} s" for name, t in data["commands"]["commands"].items()),
+          flush=True)
     data["opportunities"] = run_opportunities_section(config, night)
     print(f"opportunities: {data['opportunities']['first_s']:.1f} s for 2000 requests x "
           f"{data['opportunities']['nights']} nights, next night {data['opportunities']['next_night_s']:.2f} s", flush=True)

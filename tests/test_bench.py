@@ -59,9 +59,14 @@ def test_report_names_every_column_and_marks_missed_targets(tmp_path):
     rows = [_row(9.0, 26.0, False), _row(10.3, 26.2, True), _row(9.5, 26.1, False)]
     data = {"machine": "test", "night": "2026-12-05", "n_times": 615, "step_s": 60, "dark_hours": 8.4,
             "effort": None, "seed": 0, "runs": 3, "runs_all": rows, "summary": [bench.summarise(rows)],
-            "replans": []}
+            "replans": [],
+            "commands": {"requests": 500, "runs": 5, "via": "nightplan", "load_average": [0.5, 0.5, 0.5],
+                         "commands": {"status": {"median_s": 0.62, "min_s": 0.6, "max_s": 0.7},
+                                      "--help": {"median_s": 0.11, "min_s": 0.1, "max_s": 0.12}}}}
     bench.write_docs(tmp_path, data)
     md = (tmp_path / "benchmarks.md").read_text()
+    assert "MISSED: `nightplan status` (500 requests) in 0.62 s (target 0.5 s)" in md
+    assert "met: `nightplan --help` (500 requests) in 0.11 s" in md and "`nightplan status`: 0.62 s (0.60-0.70)" in md
     for col in ("total s", "overrun", "gap", "vs greedy", "CP-SAT better", "peak RSS MiB", "load"):
         assert col in md
     assert "MISSED: standard 500: largest overrun +3.0 %" in md  # 10.3 s on a 10 s limit
@@ -81,3 +86,7 @@ def test_benchmark_runs_end_to_end_under_an_effort(tmp_path):
     assert row["profile"] == "dense" and row["requests"] == 100 and row["violations"] == 0
     assert row["objective"] >= row["greedy_objective"] - 1e-9 and row["overrun"] is None
     assert "dense" in (tmp_path / "benchmarks.md").read_text()
+    # the commands, timed in new processes on a 500-request SQLite file (the times are not judged here)
+    cm = data["commands"]
+    assert cm["requests"] == 500 and set(cm["commands"]) == {"--help", "request add", "request list --json", "status"}
+    assert all(0 < t["min_s"] <= t["median_s"] <= t["max_s"] for t in cm["commands"].values())
