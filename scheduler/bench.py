@@ -342,8 +342,8 @@ def run_commands_section(config, night, runs: int = 5) -> dict:
                 subprocess.run(base + args, cwd=folder, env=env, check=True, capture_output=True)
                 times.append(time.perf_counter() - t0)
             out[name] = {"median_s": _median(times), "min_s": min(times), "max_s": max(times)}
-    return {"requests": COMMAND_QUEUE, "runs": runs, "via": " ".join(Path(b).name for b in base[:1]) + (
-        " -m scheduler" if len(base) > 1 else ""), "load_average": load, "commands": out}
+    return {"requests": COMMAND_QUEUE, "runs": runs, "via": "nightplan" if exe.is_file() else "python -m scheduler",
+            "load_average": load, "commands": out}
 
 
 def run_opportunities_section(config, night) -> dict:
@@ -521,7 +521,6 @@ def write_docs(out: Path, data: dict) -> None:
                   f"- compute_sky, {sk['compute_sky_targets']} targets x {sk['compute_sky_times']} times: {sk['compute_sky_s']:.2f} s",
                   f"- feasibility static layer, {sk['feasibility_requests']} requests: {sk['static_layer_s']:.2f} s",
                   f"- feasibility conditions layers, {sk['feasibility_requests']} requests: {sk['conditions_layers_s']:.2f} s"]
-    cm = data.get("commands")
     op = data.get("opportunities")
     if op:
         lines += [f"- remaining opportunities, {op['requests']} requests x {op['nights']} nights on a "
@@ -531,6 +530,7 @@ def write_docs(out: Path, data: dict) -> None:
                   + ", ".join(f"{r['profile']} {r['requests']} requests {r.get('opportunities_s', 0.0):.2f} s"
                               for r in data["summary"])
                   + " (medians) to fill it, outside the build's budget."]
+    cm = data.get("commands")
     if cm:
         load = cm.get("load_average")
         lines += ["", f"Commands people type, each a new process (`{cm['via']}`) on a SQLite file holding "

@@ -13,6 +13,7 @@ from alembic.runtime.migration import MigrationContext
 from sqlalchemy import inspect, text
 
 from scheduler.db import migrate, store
+from scheduler.db.documents import request_dict
 from scheduler.db.models import Base
 from scheduler.db.session import open_db
 
@@ -120,7 +121,7 @@ def test_listings_take_a_fixed_number_of_queries(tmp_path):
         rows = plans.plan_listing(s)
         n_plan_list = len(seen)
         seen.clear()
-        reqs = [store.request_dict(r) for r in store.list_requests(s)]
+        reqs = [request_dict(r) for r in store.list_requests(s)]
         n_request_list = len(seen)
         seen.clear()
         plan = plans.get_plan(s, 5)

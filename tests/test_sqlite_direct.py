@@ -271,6 +271,20 @@ def test_the_insert_sets_every_column_of_the_model():
     assert set(model) == {"program_id", *SPEC_FIELDS, "ephemeris_csv", "created_at", "updated_at"}
 
 
+def test_times_are_stored_as_naive_utc_both_ways():
+    """One rule (model/timegrid.stored_utc) for both paths: an aware time in any zone is stored as
+    naive UTC (ISO-8601 offsets: 05:04:05+02:00 is 03:04:05Z), a naive one is refused."""
+    from scheduler.db.models import UTCDateTime
+    from scheduler.db.sqlite_direct import _stored
+
+    east = datetime(2027, 1, 2, 5, 4, 5, 250000, tzinfo=timezone(timedelta(hours=2)))
+    assert _stored(east) == "2027-01-02 03:04:05.250000"
+    assert UTCDateTime().process_bind_param(east, None) == datetime(2027, 1, 2, 3, 4, 5, 250000)
+    for store_it in (_stored, lambda t: UTCDateTime().process_bind_param(t, None)):
+        with pytest.raises(ValueError, match="naive"):
+            store_it(datetime(2027, 1, 2, 3, 4, 5))
+
+
 def test_refused_input_writes_nothing(workdir):
     config = load_config(workdir / "observatory.toml")
 

@@ -35,13 +35,14 @@ class Ctx:
             self._config = load_config(self.config_path)
         return self._config
 
-    def direct(self, work):
-        """(True, ``work(d)``) when the database is a SQLite file that the standard library's sqlite3
-        can serve without SQLAlchemy (db/sqlite_direct.py; 0.3-0.5 s of import saved), else
-        (False, None) with nothing written: then use ``db()``."""
+    def either(self, direct, ordinary):
+        """``direct(d)`` when the database is a SQLite file that the standard library's sqlite3 can
+        serve without SQLAlchemy (db/sqlite_direct.py; 0.3-0.5 s of import saved), else
+        ``ordinary(self.db())`` (nothing was written by the first)."""
         from scheduler.db.sqlite_direct import run_direct
 
-        return run_direct(self.db_url, work)
+        used, got = run_direct(self.db_url, direct)
+        return got if used else ordinary(self.db())
 
     def db(self, *, must_exist: bool = True):
         if self._db is None:

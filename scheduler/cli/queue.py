@@ -201,16 +201,16 @@ def request_add(c: Ctx, allow_past: bool, **opts: Any) -> None:
     def specs(codes: set[str]) -> list:
         return [validate_request(raw, config, codes, now=now, allow_past=allow_past)]
 
-    used, added = c.direct(lambda d: d.add_requests(specs))
-    if not used:
+    def added(db):
         from scheduler.db import store
 
         def work(s):
             found = specs(store.program_codes(s))
             return found, store.add_requests(s, found)
 
-        added = c.db().retrying(work)
-    (spec,), (rid,) = added
+        return db.retrying(work)
+
+    (spec,), (rid,) = c.either(lambda d: d.add_requests(specs), added)
     _visibility_warnings(config, [spec.with_(id=rid)])
     click.echo(rid)
 
@@ -293,12 +293,13 @@ def request_list(c: Ctx, status: str | None, program: str | None, as_json: bool)
     """List requests."""
     from scheduler.db.documents import request_dict
 
-    used, rows = c.direct(lambda d: [request_dict(r) for r in d.requests(status, program)])
-    if not used:
+    def listed(db):
         from scheduler.db import store
 
-        with c.db().session() as s:
-            rows = [request_dict(r) for r in store.list_requests(s, status, program)]
+        with db.session() as s:
+            return [request_dict(r) for r in store.list_requests(s, status, program)]
+
+    rows = c.either(lambda d: [request_dict(r) for r in d.requests(status, program)], listed)
     if as_json:
         echo_json(rows)
         return
@@ -334,11 +335,12 @@ def _limits_text(r: dict[str, Any]) -> str:
 def request_show(c: Ctx, request_id: int, night: str | None, as_json: bool) -> None:
     """Show one request (and, with --night, when it can be observed), and its last stored season outlook."""
     from scheduler.db import store
+    from scheduler.db.documents import request_dict
     from scheduler.db.outlook import outlook_line, request_outlook
 
     with c.db().session() as s:
         row = store.get_request(s, request_id)
-        d = store.request_dict(row)
+        d = request_dict(row)
         spec = store.to_spec(row)
         report = store.latest_conditions(s)
         samples = list(report.samples) if report is not None else []

@@ -200,11 +200,9 @@ def status(c: Ctx, as_json: bool, db_url: str | None) -> None:
     """Is the service alive (since when, pid, last heartbeat), the active plan, the last
     conditions report, pending re-plan orders."""
     _use_db(c, db_url)
-    used, data = c.direct(lambda d: d.status())
-    if not used:
-        from scheduler.service.status import status_document
+    from scheduler.service.status import status_document
 
-        data = status_document(c.db())
+    data = c.either(lambda d: d.status(), status_document)
     service, plan_d, rep_d = data["service"], data["plan"], data["conditions"]
     pending, last_d = data["pending_orders"], data["last_order"]
     if as_json:

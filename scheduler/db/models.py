@@ -19,7 +19,7 @@ from sqlalchemy import (
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
 from scheduler.model.request import OutcomeResult, RequestStatus
-from scheduler.model.timegrid import utcnow  # noqa: F401  (models' default timestamps; re-exported for storage)
+from scheduler.model.timegrid import stored_utc, utcnow  # noqa: F401  (models' default timestamps; re-exported for storage)
 
 NAMING = {
     "ix": "ix_%(column_0_label)s",
@@ -37,11 +37,7 @@ class UTCDateTime(TypeDecorator):
     cache_ok = True
 
     def process_bind_param(self, value, dialect):
-        if value is None:
-            return None
-        if value.tzinfo is None:
-            raise ValueError("naive datetime given to a UTC column")
-        return value.astimezone(timezone.utc).replace(tzinfo=None)
+        return None if value is None else stored_utc(value)
 
     def process_result_value(self, value, dialect):
         if value is None:

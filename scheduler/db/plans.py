@@ -17,7 +17,6 @@ from scheduler.model import plan as contract
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso
-from scheduler.db.documents import order_dict  # noqa: F401  (re-exported)
 from scheduler.db.models import ConditionsReport, Plan, PlanEntry, Program, ReplanOrder, Request, utcnow
 
 

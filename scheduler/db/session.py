@@ -21,7 +21,7 @@ from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import ArgumentError, OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
-from scheduler.db.sqlite_direct import DEFAULT_DB_FILE, resolve_url  # noqa: F401  (re-exported)
+from scheduler.db.sqlite_direct import resolve_url
 from scheduler.model.errors import InputError
 
 T = TypeVar("T")

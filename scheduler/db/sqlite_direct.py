@@ -34,6 +34,7 @@ from typing import Any, Callable, Iterable, TypeVar
 from urllib.parse import quote
 
 from scheduler.db.documents import SPEC_FIELDS
+from scheduler.model.timegrid import stored_utc
 
 DEFAULT_DB_FILE = "nightplan.sqlite"
 SCHEMA_HEAD = "season_outlook"  # the newest migration's revision (db/migrations/versions/)
@@ -75,10 +76,8 @@ _READERS: dict[str, Callable[[Any], Any]] = {
 
 def _stored(value: Any) -> Any:
     """A Python value as SQLAlchemy stores it in SQLite."""
-    if isinstance(value, datetime):
-        if value.tzinfo is None:
-            raise ValueError("naive datetime given to a UTC column")
-        return value.astimezone(timezone.utc).strftime("%Y-%m-%d %H:%M:%S.%f")
+    if isinstance(value, datetime):  # SQLAlchemy's SQLite DATETIME text, to the microsecond
+        return stored_utc(value).strftime("%Y-%m-%d %H:%M:%S.%f")
     if isinstance(value, Enum):
         return value.value
     if isinstance(value, bool):

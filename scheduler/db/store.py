@@ -19,7 +19,7 @@ from scheduler.model.program import DEFAULT_TIER, ProgramState
 from scheduler.model.request import (
     ACTIVE_STATUSES, CLOSED_STATUSES, OutcomeResult, RequestSpec, RequestStatus, validate_program,
 )
-from scheduler.db.documents import SPEC_FIELDS, program_dict, request_dict  # noqa: F401  (re-exported)
+from scheduler.db.documents import SPEC_FIELDS, program_dict
 from scheduler.db.models import (
     ConditionsReport, ConditionsSample, Opportunity, Outcome, PlanEntry, Program, Request, utcnow,
 )

@@ -29,6 +29,14 @@ def as_utc(t: datetime) -> datetime:
     return t.replace(tzinfo=timezone.utc) if t.tzinfo is None else t.astimezone(timezone.utc)
 
 
+def stored_utc(t: datetime) -> datetime:
+    """The naive UTC datetime the database stores for an aware one; a naive one is refused (its
+    zone is unknown)."""
+    if t.tzinfo is None:
+        raise ValueError("naive datetime given to a UTC column")
+    return t.astimezone(timezone.utc).replace(tzinfo=None)
+
+
 def iso(t: datetime | None) -> str | None:
     """ISO-8601 UTC with a Z, to the second."""
     if t is None:
