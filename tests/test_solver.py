@@ -444,7 +444,8 @@ def test_sequence_bound_is_a_valid_bound(seed):
     P, _ = problem_for(night, sky, cond, reqs, w, bucket_steps=1)
     bf = brute_force(P)
     for sectors in (1, 4, 16, 0):  # 0: every request its own class (the model's own T between them)
-        b, its = bounds.sequence_bound(P, bf, sectors=sectors, iterations=80, time_limit_s=None)
+        sb = bounds.sequence_bound(P, bf, sectors=sectors, iterations=80, time_limit_s=None)
+        b, its = sb.bound, sb.iterations
         assert its > 0 and b >= bf
     trivial = sum(int(x.bucket_coef.max()) for x in P.execs)
     assert b <= trivial
@@ -462,7 +463,7 @@ def test_bounds_hold_with_kept_entries():
     out = exact_solve(P, hint=greedy_plan(P), k_best=50)
     assert out.status == "OPTIMAL"
     opt = round(out.objective * VALUE_SCALE)
-    assert bounds.sequence_bound(P, opt, sectors=16, iterations=60, time_limit_s=None)[0] >= opt
+    assert bounds.sequence_bound(P, opt, sectors=16, iterations=60, time_limit_s=None).bound >= opt
     assert bounds.lagrangian_bound(P, opt, time_limit_s=None).bound >= opt
 
 

@@ -36,7 +36,7 @@ from scheduler.solve.budget import CpSatBudget, WorkBudget, check_effort, check_
 from scheduler.solve.checker import check_plan, true_transition_s
 from scheduler.solve.cpsat import SolveOutcome, model_size, solve_problem
 from scheduler.solve.greedy import DispatchTables, dispatch_tables, greedy_plan
-from scheduler.solve.heuristics import RuinAndRecreate, insertion_plan, randomized_dispatch
+from scheduler.solve.heuristics import RuinAndRecreate, insertion_plan, plan_from_sequence, randomized_dispatch
 from scheduler.constraints.opportunities import SHARED_CACHE, OpportunityCache, count_opportunities
 from scheduler.solve.factors import ProgramState, TierSolve, lexicographic, tier_order
 from scheduler.solve.objective import VALUE_SCALE, objective_of, plan_value, value_factors
@@ -176,6 +176,8 @@ class Bounds:
     sequence_iterations: int
     upper: int  # the tightest valid bound (integer objective units)
     warning: str | None = None
+    columns: int = 0  # the sequence bound's column generation: columns and window cuts (0: not run)
+    cuts: int = 0
 
 
 @dataclass(frozen=True)
@@ -416,13 +418,20 @@ def bound_objective(run: _Build, prep: Prepared, pool: PlanPool, first: Lagrangi
     lag = second if second.bound < first.bound else first
     b = budget.sequence(cpsat_next=budget.cpsat_can_pay(model_size(P, run.options.k_best_arcs)))
     # the bound stops once it proves half the gap tolerance: the reported gap then has a margin
-    seq, seq_its = sequence_bound(P, pool.value, mu0=lag.reduced, sectors=16, iterations=b.iterations,
-                                  time_limit_s=b.time_limit_s, stop_gap=0.5 * run.gap_tolerance)
-    upper = min(lag.bound, seq)
+
+    def near_plan(pairs) -> int:
+        """A sequence of the column generation, made into a plan for the pool."""
+        pool.consider("column generation", plan_from_sequence(P, pairs, prep.tables))
+        return pool.value
+
+    seq = sequence_bound(P, pool.value, mu0=lag.reduced, sectors=16, iterations=b.iterations,
+                         time_limit_s=b.time_limit_s, stop_gap=0.5 * run.gap_tolerance,
+                         start_plan=[(p.exec_index, p.start) for p in pool.plan], on_sequence=near_plan)
+    upper = min(lag.bound, seq.bound)
     if upper < pool.value:
         warning = f"bound {upper / VALUE_SCALE:.3f} below plan {pool.value / VALUE_SCALE:.3f}; ignored"
-        return Bounds(lag, seq, seq_its, max(lag.bound, pool.value), warning)
-    return Bounds(lag, seq, seq_its, upper)
+        return Bounds(lag, seq.bound, seq.iterations, max(lag.bound, pool.value), warning, seq.columns, seq.cuts)
+    return Bounds(lag, seq.bound, seq.iterations, upper, None, seq.columns, seq.cuts)
 
 
 def cpsat_pays(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> bool:
@@ -590,6 +599,7 @@ def _stats(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds, outcome:
         "hint": pool.label, "hint_objective": pool.value / VALUE_SCALE, "lagrangian_bound": lag.bound / VALUE_SCALE,
         "sequence_bound": bounds.sequence / VALUE_SCALE if bounds.sequence_iterations else None,
         "sequence_bound_iterations": bounds.sequence_iterations,
+        "sequence_columns": bounds.columns, "sequence_cuts": bounds.cuts,
         **({"bound_warning": bounds.warning} if bounds.warning else {}),
         "lagrangian_iterations": lag.iterations, "hint_search_s": search_s, "randomized_runs": pool.randomized_runs,
         "ruin_recreate_iterations": pool.ruin_recreate_iterations, "greedy_entries": len(prep.greedy),

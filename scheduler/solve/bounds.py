@@ -267,20 +267,26 @@ class _SequenceDP:
 
     def best_sequence(self, mu: np.ndarray) -> tuple[float, np.ndarray]:
         """(value of the best sequence at prices mu, how often it uses each execution)."""
-        R, RT, bp, bpk = self._programme(self.C - mu[self.E])
+        seq_val, cands = self.sequence(self.C - mu[self.E])
+        return seq_val, np.bincount(self.E[cands], minlength=self.n_exec).astype(np.float64)
+
+    def sequence(self, val: np.ndarray) -> tuple[float, np.ndarray]:
+        """(value, candidate indices in order of start) of the best sequence when candidate c is
+        worth val[c]; the empty sequence (0) when nothing is worth more."""
+        R, RT, bp, bpk = self._programme(val)
         kbest = int(np.argmax(R[self.n_t]))
         seq_val = max(0.0, float(R[self.n_t, kbest]))
-        count = np.zeros(self.n_exec)
+        out: list[int] = []
         if seq_val > 0:  # walk the back-pointers
             t, k = int(RT[self.n_t, kbest]), kbest
             while t >= 0 and bp[t, k] >= 0:
                 c = int(bp[t, k])
-                count[self.E[c]] += 1
+                out.append(c)
                 pk = int(bpk[t, k])
                 if pk < 0:
                     break
                 t, k = int(RT[int(self.S[c]) - self.Lc[pk, k], pk]), pk
-        return seq_val, count
+        return seq_val, np.array(out[::-1], dtype=np.int64)
 
     def _programme(self, val: np.ndarray):
         """One pass over the grid. F[t, k]: best value of a sequence whose last entry ends at t
@@ -348,9 +354,17 @@ class _SequenceDP:
         return R, RT, bp, bpk
 
 
+@dataclass(frozen=True)
+class SequenceBound:
+    bound: int  # valid upper bound (integer objective units)
+    iterations: int  # passes of the dynamic programme
+    columns: int = 0  # columns of the column generation's master (0: it did not run)
+    cuts: int = 0  # its window cuts
+
+
 def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = None, sectors: int = 8,
                    iterations: int = 200, time_limit_s: float | None = 2.0,
-                   stop_gap: float | None = None) -> tuple[int, int]:
+                   stop_gap: float | None = None, start_plan=(), on_sequence=None) -> SequenceBound:
     """Upper bound that keeps the order of the night and the transitions between classes.
 
     Relaxation: a plan is a sequence in time of (execution, start) with no overlap and gaps of at
@@ -363,18 +377,20 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
 
     bounds the model's optimum; the max is a dynamic programme over (time, last class). Subgradient
     steps on mu (Polyak, toward ``lower``). Stops early once (bound - lower) / bound <=
-    ``stop_gap`` (the plan in hand is then proven good enough). Returns (bound, iterations).
+    ``stop_gap`` (the plan in hand is then proven good enough).
 
     When the model has at most REQUEST_CLASSES_MAX requests, the class passes take
     CLASS_PHASE_SHARE of the time (or all but a quarter of the iterations; with fewer than four
     there is no refinement) and the rest goes to
-    passes with every request its own class, from the best class prices with shorter steps:
-    the model's own T[i, j] then separates consecutive entries, a tighter relaxation (every
-    plan is still such a sequence) that is slower per pass; when not even one such pass would
-    fit in the time left, the class passes go on instead. ``sectors=0`` makes every pass so.
+    passes with every request its own class, from the best class prices: the model's own
+    T[i, j] then separates consecutive entries, a tighter relaxation (every plan is still such
+    a sequence) that is slower per pass; when not even one such pass would fit in the time left,
+    the class passes go on instead. ``sectors=0`` makes every pass so. Those passes set their
+    prices by column generation (``_column_generation``, from ``start_plan``, calling
+    ``on_sequence`` with each sequence), and by subgradient steps once it stalls.
     """
     if not problem.execs:
-        return 0, 0
+        return SequenceBound(0, 0)
     n_req = _requests_in_model(problem).size
     more = iterations // 4  # the request-class passes (none under 4 iterations)
     refine = sectors != 0 and n_req <= REQUEST_CLASSES_MAX and more > 0 and (time_limit_s is None or time_limit_s > 0)
@@ -384,20 +400,34 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     dp = _SequenceDP(problem, sectors)
     best, mu, its, met = _subgradient(dp, lower, mu, iterations - more if refine else iterations,
                                       StageClock(first_s), stop_gap, 1.0)
-    if refine and not met:
-        # a pass reads K predecessors for each (start, class) pair some candidate has, so its
-        # cost goes as pairs x K (measured 2.4-2.5 times a class pass at 500 requests, where
-        # this ratio says 3.3-3.8, and 22.6 times at 2000, where it says 24.4; the margin also
-        # covers building its programme): skip when even one would not fit in the time left
-        fits = time_limit_s is None or (
-            PASS_COST_MARGIN * stage.spent() * time_limit_s / its * _pass_work_ratio(problem, dp)
-            <= time_limit_s * (1.0 - stage.spent()))
+    if not refine or met:
+        return SequenceBound(int(math.floor(best + 1e-6)), its)
+    # a pass reads K predecessors for each (start, class) pair some candidate has, so its
+    # cost goes as pairs x K (measured 2.4-2.5 times a class pass at 500 requests, where
+    # this ratio says 3.3-3.8, and 22.6 times at 2000, where it says 24.4; the margin also
+    # covers building its programme): skip when even one would not fit in the time left
+    one_pass_s = None if time_limit_s is None else (
+        PASS_COST_MARGIN * stage.spent() * time_limit_s / its * _pass_work_ratio(problem, dp))
+
+    def left() -> float | None:
+        return None if time_limit_s is None else max(0.0, time_limit_s * (1.0 - stage.spent()))
+
+    if one_pass_s is not None and one_pass_s > left():
         # with no room for one, the class passes go on in the time left instead
-        left = None if time_limit_s is None else max(0.0, time_limit_s * (1.0 - stage.spent()))
-        best2, _, its2, _ = _subgradient(_SequenceDP(problem, 0) if fits else dp, lower, mu, more,
-                                         StageClock(left), stop_gap, 0.25)
+        best2, _, its2, _ = _subgradient(dp, lower, mu, more, StageClock(left()), stop_gap, 0.25)
+        return SequenceBound(int(math.floor(min(best, best2) + 1e-6)), its + its2)
+    fine = _SequenceDP(problem, 0)
+    # the passes expected to fit (the estimate without its margin: it is 1.3-1.5 times high)
+    passes = more if one_pass_s is None else min(more, int(left() * PASS_COST_MARGIN / max(one_pass_s, 1e-9)))
+    if passes < CG_MIN_PASSES:  # too few passes for the master to learn anything: subgradient steps
+        best2, _, its2, _ = _subgradient(fine, lower, mu, more, StageClock(left()), stop_gap, 0.25)
+        return SequenceBound(int(math.floor(min(best, best2) + 1e-6)), its + its2)
+    cg = _column_generation(problem, fine, lower, mu, more, StageClock(left()), stop_gap, start_plan, on_sequence)
+    best, its = min(best, cg.best), its + cg.passes
+    if not (cg.met or cg.converged) and cg.passes < more and (time_limit_s is None or left() > 0):
+        best2, _, its2, _ = _subgradient(fine, cg.lower, cg.mu, more - cg.passes, StageClock(left()), stop_gap, 0.25)
         best, its = min(best, best2), its + its2
-    return int(math.floor(best + 1e-6)), its
+    return SequenceBound(int(math.floor(best + 1e-6)), its, cg.columns, cg.cuts)
 
 
 def _pass_work_ratio(problem: Problem, dp: _SequenceDP) -> float:
@@ -433,3 +463,184 @@ def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, c
             break
         mu = np.maximum(0.0, mu - theta * max(best - lower, 1e-6) / nrm * g)
     return best, best_mu, it, met
+
+
+# --------------------------------------------------------------------------- column generation
+
+# The request-class phase of the sequence bound sets its prices by column generation when it can:
+# a linear master (GLOP) over the sequences found so far ("at most one sequence", "each execution
+# at most once", and "at most one start of a request in any spacing-long window" as cuts) gives
+# prices, the dynamic programme gives the best sequence at those prices (a new column) and a valid
+# bound. On the 500-request standard benchmark queue it reaches the converged relaxation
+# (450.02, cuts included) in about 35 passes, where the subgradient is at 451.6-452.3, and its
+# columns, made into plans (heuristics.plan_from_sequence), include the best plan known (448.20).
+# On the dense queue (60-150 entries a sequence) the master learns too slowly for a 10 s build:
+# after CG_STALL passes without progress, or where too few passes fit (CG_MIN_PASSES), the
+# subgradient takes the request-class passes as before.
+CG_BOX = 0.25  # the master's duals stay within center +- CG_BOX x (center + mean center)
+CG_STALL = 8  # passes without a better bound or a better master before the subgradient takes over
+CG_CUTS_PER_PASS = 30  # window cuts added to the master per pass, the most violated first
+CG_MIN_PASSES = 12  # fewer request-class passes than this (by the estimate): subgradient steps only
+
+
+@dataclass
+class _Columns:
+    """What column generation hands back: the best bound, its prices, passes, whether the stop
+    gap was proven, and counts for the build's stats."""
+
+    best: float
+    mu: np.ndarray
+    passes: int
+    met: bool
+    converged: bool  # the master met the bound: no prices can do better on this relaxation
+    lower: float  # the best plan value known at the end (raised by on_sequence)
+    columns: int
+    cuts: int
+
+
+def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.ndarray, iterations: int,
+                       clock: StageClock, stop_gap: float | None, start_plan=(), on_sequence=None) -> _Columns:
+    """Column generation over the sequences of ``dp`` (every request its own class), starting at
+    the prices ``mu``. The first pass runs the programme at ``mu`` itself; each later pass solves
+    the master (its duals kept within a box around the best prices so far, below), runs the
+    programme at its duals, adds the sequence as a column and separates window cuts. The bound
+    at any prices mu >= 0, lam >= 0 is
+
+        sum mu + sum lam + max over sequences (value - mu of its executions - lam of its windows)
+
+    (every plan is such a sequence, uses each execution at most once and each window at most
+    once), so every pass gives a valid bound whatever the master does. Stops at ``iterations``
+    passes, at the clock, when the stop gap is proven against ``lower``, when the master meets
+    the bound (converged) or after CG_STALL passes in which neither the bound nor the master
+    got better. ``on_sequence(pairs)`` is called with each new sequence's (execution, start)
+    pairs and returns the best plan value known (the sequences are near-plans); it raises
+    ``lower``. ``start_plan``: (execution, start) pairs of a plan, the master's first column."""
+    from ortools.linear_solver import pywraplp  # only the builds that get here pay the import
+
+    P = problem
+    n_kept = int(dp.forced.sum())
+    creq = P.exec_requests()[dp.E]  # request of each candidate
+    spacing = P.spacing_steps
+    n_exec_of = np.bincount(P.exec_requests(), minlength=len(P.requests))
+    windowed = (n_exec_of >= 2) & (spacing >= 2)
+
+    lp = pywraplp.Solver.CreateSolver("GLOP")
+    one = lp.Constraint(-lp.infinity(), 1.0)
+    once = [lp.Constraint(-lp.infinity(), 1.0) for _ in range(dp.n_exec)]
+    objective = lp.Objective()
+    objective.SetMaximization()
+    cols: list[np.ndarray] = []  # candidate indices of each column
+    xs: list = []
+    cuts: list[tuple[int, int, object]] = []  # (request, first step, row)
+
+    def in_window(col: np.ndarray, r: int, t: int) -> int:
+        return int(np.count_nonzero((creq[col] == r) & (dp.S[col] >= t) & (dp.S[col] < t + spacing[r])))
+
+    def add_column(col: np.ndarray) -> None:
+        x = lp.NumVar(0.0, lp.infinity(), "")
+        one.SetCoefficient(x, 1.0)
+        for e, k in zip(*np.unique(dp.E[col], return_counts=True)):
+            once[int(e)].SetCoefficient(x, float(k))
+        for r, t, row in cuts:
+            k = in_window(col, r, t)
+            if k:
+                row.SetCoefficient(x, float(k))
+        objective.SetCoefficient(x, float(dp.C[col].sum()))
+        cols.append(col)
+        xs.append(x)
+
+    def window_penalty(lam: np.ndarray) -> np.ndarray:
+        pen = np.zeros(dp.E.size)
+        for (r, t, _), v in zip(cuts, lam):
+            if v > 0:
+                lo, hi = dp.by_start[t], dp.by_start[min(t + int(spacing[r]), dp.n_t)]
+                pen[lo:hi] += np.where(creq[lo:hi] == r, v, 0.0)
+        return pen
+
+    def separate(x_val: list[float]) -> None:
+        """Window cuts the master's solution violates: more than one start of a request (in
+        total over the columns it uses) within one spacing."""
+        starts: dict[int, list[tuple[int, float]]] = {}
+        for x, col in zip(x_val, cols):
+            if x > 1e-9:
+                for c in col[windowed[creq[col]]]:
+                    starts.setdefault(int(creq[c]), []).append((int(dp.S[c]), x))
+        have = {(r, t) for r, t, _ in cuts}
+        found = []
+        for r, lst in starts.items():
+            s_arr = np.array([a for a, _ in lst])
+            w_arr = np.array([b for _, b in lst])
+            for t in np.unique(s_arr):
+                total = float(w_arr[(s_arr >= t) & (s_arr < t + spacing[r])].sum())
+                if total > 1.0 + 1e-6 and (r, int(t)) not in have:
+                    found.append((-total, r, int(t)))
+        for _, r, t in sorted(found)[:CG_CUTS_PER_PASS]:
+            row = lp.Constraint(-lp.infinity(), 1.0)
+            for x, col in zip(xs, cols):
+                k = in_window(col, r, t)
+                if k:
+                    row.SetCoefficient(x, float(k))
+            cuts.append((r, t, row))
+
+    # the plan in hand is the first column: the master has a real plan from the start
+    plan_cols = []
+    for e, s in start_plan:
+        lo, hi = dp.by_start[s], dp.by_start[min(s + 1, dp.n_t)]
+        hit = lo + np.flatnonzero(dp.E[lo:hi] == e)
+        plan_cols.extend(hit[:1].tolist())
+    if plan_cols:
+        add_column(np.array(plan_cols, dtype=np.int64))
+
+    # Box stabilisation: each "once" row gets a surplus (priced center + width) and a slack
+    # (priced center - width), so the master's duals stay within center +- width; the center
+    # moves to the duals whenever they give a better bound. Without it the first duals of a
+    # master with a handful of columns are extreme (the plan's executions priced high, the rest
+    # 0) and the bound at them is worse than where it started (587 against 455 on the standard
+    # benchmark queue), for ten passes and more.
+    surplus = [lp.NumVar(0.0, lp.infinity(), "") for _ in range(dp.n_exec)]
+    slack = [lp.NumVar(0.0, 1.0, "") for _ in range(dp.n_exec)]
+    for e in range(dp.n_exec):
+        once[e].SetCoefficient(surplus[e], -1.0)
+        once[e].SetCoefficient(slack[e], 1.0)
+
+    def set_box(center: np.ndarray) -> None:
+        width = CG_BOX * (center + float(center.mean()))
+        for e in range(dp.n_exec):
+            objective.SetCoefficient(surplus[e], -float(center[e] + width[e]))
+            objective.SetCoefficient(slack[e], float(max(0.0, center[e] - width[e])))
+
+    center = np.maximum(mu, 0.0)
+    set_box(center)
+    best, best_master = math.inf, -math.inf
+    stall, met, converged, passes = 0, False, False, 0
+    for passes in range(1, iterations + 1):
+        if passes == 1:  # the prices handed in, as they are
+            mu_p, lam_p, master, x_val = center, np.zeros(len(cuts)), -math.inf, []
+        else:
+            lp.Solve()
+            x_val = [x.solution_value() for x in xs]
+            # the plan the master holds, when it needs no surplus (else it is not a plan mix)
+            inside = max(v.solution_value() for v in surplus) <= 1e-7
+            master = float(sum(objective.GetCoefficient(x) * v for x, v in zip(xs, x_val))) - dp.M * n_kept \
+                if inside else -math.inf
+            mu_p = np.maximum(0.0, np.array([row.dual_value() for row in once]))
+            lam_p = np.maximum(0.0, np.array([row.dual_value() for _, _, row in cuts]))
+        seq_val, col = dp.sequence(dp.C - mu_p[dp.E] - window_penalty(lam_p))
+        bound = float(mu_p.sum() + lam_p.sum()) + seq_val - dp.M * n_kept
+        progress = master > best_master + 1e-4 * abs(best)
+        if bound < best - 1e-9:
+            best, center, progress = bound, mu_p, True
+            set_box(center)
+        best_master = max(best_master, master)
+        stall = 0 if progress else stall + 1
+        if col.size:
+            add_column(col)
+            if on_sequence is not None:
+                lower = max(lower, on_sequence(list(zip(dp.E[col].tolist(), dp.S[col].tolist()))))
+        met = stop_gap is not None and best - lower <= stop_gap * abs(best)
+        converged = best - master <= 1e-4 * abs(best)
+        if met or converged or stall >= CG_STALL or clock.out_of_time():
+            break
+        if cols and x_val:
+            separate(x_val)
+    return _Columns(best, center, passes, met, converged, lower, len(cols), len(cuts))

@@ -195,3 +195,50 @@ def _best_slot(P: Problem, seq: list[Placement], e: int, st: np.ndarray, want: i
         if best is None or int(coef[e, s]) > best[0]:
             best = (int(coef[e, s]), s)
     return None if best is None else best[1]
+
+
+def plan_from_sequence(problem: Problem, placements: Sequence[tuple[int, int]],
+                       tables: DispatchTables | None = None) -> list[Placement]:
+    """A model-feasible plan from a sequence of the sequence relaxation (bounds.py): its
+    (execution, start) pairs taken in order of start, each request's entries renumbered as its
+    executions 0, 1, ... (the relaxation may use one execution twice), an entry kept only where
+    it fits after the kept ones (a feasible start of that execution, the transition bound from
+    the entry before, the spacing from the request's previous entry), the dispatch filling the
+    rest. The relaxation's best sequences at good prices are often a plan but for one or two
+    entries; these plans are how the column generation feeds the search (docs/solver.md)."""
+    P = problem
+    tables = tables if tables is not None else dispatch_tables(P)
+    free_of: dict[int, list[int]] = {}  # each request's executions not held by the plan in force, in order
+    for e in tables.by_request:
+        if P.execs[int(e)].fixed_start is None:
+            free_of.setdefault(int(tables.req[e]), []).append(int(e))
+    fixed = [(e, s, True) for e, s in tables.kept]  # always there: the dispatch holds them too
+    walk = sorted(fixed + [(int(e), int(s), False) for e, s in placements if P.execs[int(e)].fixed_start is None],
+                  key=lambda q: q[1])
+    kept: list[Placement] = []
+    before: Placement | None = None  # the entry before the next one (kept or fixed)
+    taken: dict[int, int] = {}  # request -> executions used
+    last: dict[int, Placement] = {}
+    for e0, s, is_fixed in walk:
+        r = int(tables.req[e0])
+        if is_fixed:
+            before = last[r] = Placement(e0, s)
+            continue
+        k = taken.get(r, 0)
+        if k >= len(free_of.get(r, ())):
+            continue  # more entries than the request has executions
+        e = free_of[r][k]
+        if not 0 <= s < P.n_t or int(tables.next_start[e, s]) != s:
+            continue  # not a feasible start of that execution
+        if before is not None and s - (before.start + int(tables.duration[before.exec_index])) < P.exec_T(before.exec_index, e):
+            continue
+        if r in last and s - last[r].start < max(int(tables.duration[last[r].exec_index]), int(P.spacing_steps[r])):
+            continue
+        nxt = min(((fs, f) for f, fs in tables.kept if fs > s), default=None)  # the next held entry
+        if nxt is not None and s + int(tables.duration[e]) + P.exec_T(e, nxt[1]) > nxt[0]:
+            continue
+        p = Placement(e, s)
+        kept.append(p)
+        before = last[r] = p
+        taken[r] = k + 1
+    return greedy_plan(P, tables=tables, keep=kept)

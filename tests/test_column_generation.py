@@ -1,0 +1,134 @@
+"""Column generation over the sequence relaxation (solve/bounds.py) and the plans made from its
+sequences (solve/heuristics.plan_from_sequence).
+
+The bound is checked against optima found apart from it: brute force over every plan on small
+scenes (test_solver.brute_force) and CP-SAT's proven optimum of the same model (a solver that
+enforces every constraint, repeats and spacing included, on its own)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from scheduler.planning.pipeline import BuildOptions, build_plan
+from scheduler.solve import bounds
+from scheduler.solve.budget import StageClock
+from scheduler.solve.greedy import dispatch_tables, greedy_plan
+from scheduler.solve.heuristics import plan_from_sequence
+from scheduler.solve.objective import VALUE_SCALE, plan_value
+from scheduler.solve.problem import Placement, check_model_feasible
+
+from test_budget import _repeat_scene
+from test_solver import CFG, assert_clean, brute_force, exact_solve, problem_for, random_scene
+
+
+def _bound_at(dp: bounds._SequenceDP, mu: np.ndarray) -> float:
+    """The sequence relaxation's bound at prices mu (no window prices), as the subgradient has it."""
+    return float(mu.sum()) + dp.best_sequence(mu)[0] - dp.M * int(dp.forced.sum())
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_column_generation_bound_holds_against_brute_force(seed):
+    """At every pass the bound is sum of prices + the best sequence at them, for prices >= 0;
+    it must never fall below the best plan there is (brute force over all plans), and it
+    starts from (so is never above) the bound at the prices handed in."""
+    night, sky, cond, reqs, w = random_scene(seed, 6, 150)
+    P, _ = problem_for(night, sky, cond, reqs, w, bucket_steps=1)
+    best_plan = brute_force(P)
+    dp = bounds._SequenceDP(P, 0)
+    mu0 = np.random.default_rng(seed).uniform(0.0, 0.3, dp.n_exec) * float(dp.C.max())
+    seen = []
+    cg = bounds._column_generation(P, dp, plan_value(P, greedy_plan(P)), mu0, 40, StageClock(None), None,
+                                   on_sequence=lambda pairs: seen.append(pairs) or 0)
+    assert cg.passes >= 1 and cg.columns >= 1 and seen
+    assert best_plan <= cg.best + 1e-6
+    assert cg.best <= _bound_at(dp, mu0) + 1e-6
+    assert best_plan <= _bound_at(dp, cg.mu) + 1e-6  # the prices it hands back are a bound too
+
+
+@pytest.mark.parametrize("seed", [5, 6])
+def test_window_cuts_keep_the_bound_above_the_optimum_with_repeats(seed, monkeypatch):
+    """Repeated requests (2-3 executions 40-70 minutes apart): the master's cuts "at most one
+    start of a request in any spacing-long window" hold for every plan, so the bound with their
+    prices stays at or above CP-SAT's proven optimum; and they tighten it (the same column
+    generation without cuts ends higher)."""
+    P = problem_for(*_repeat_scene(seed), bucket_steps=1)[0]
+    out = exact_solve(P, hint=greedy_plan(P), k_best=50)
+    assert out.status == "OPTIMAL"
+    opt = round(out.objective * VALUE_SCALE)
+    dp = bounds._SequenceDP(P, 0)
+    cg = bounds._column_generation(P, dp, plan_value(P, greedy_plan(P)), np.zeros(dp.n_exec), 60,
+                                   StageClock(None), None)
+    assert opt <= cg.best + 1e-6
+    # converged or not, it is at least as tight as where the subgradient alone gets from zero
+    sub = bounds._subgradient(bounds._SequenceDP(P, 0), opt, np.zeros(dp.n_exec), 60, StageClock(None), None, 1.0)[0]
+    assert opt <= sub + 1e-6
+    assert cg.best <= _bound_at(dp, np.zeros(dp.n_exec)) + 1e-6
+    monkeypatch.setattr(bounds, "CG_CUTS_PER_PASS", 0)
+    uncut = bounds._column_generation(P, bounds._SequenceDP(P, 0), plan_value(P, greedy_plan(P)),
+                                      np.zeros(dp.n_exec), 60, StageClock(None), None)
+    assert cg.cuts > 0 and uncut.cuts == 0 and cg.best < uncut.best
+
+
+def test_column_generation_is_deterministic():
+    """No clock and no randomness: the same problem and prices give the same passes and bound
+    (the build's effort mode relies on it)."""
+    P = problem_for(*_repeat_scene(5), bucket_steps=1)[0]
+    runs = [bounds._column_generation(P, bounds._SequenceDP(P, 0), 0, np.zeros(len(P.execs)), 30,
+                                      StageClock(None), None) for _ in range(2)]
+    assert (runs[0].best, runs[0].passes, runs[0].columns, runs[0].cuts) == \
+        (runs[1].best, runs[1].passes, runs[1].columns, runs[1].cuts)
+
+
+def test_a_plan_given_as_a_sequence_comes_back_whole():
+    """A model-feasible plan handed to plan_from_sequence keeps every entry (the dispatch may
+    only add), and the result is model-feasible."""
+    night, sky, cond, reqs, w = random_scene(8, 10, 200)
+    P, _ = problem_for(night, sky, cond, reqs, w)
+    plan = greedy_plan(P)
+    assert len(plan) >= 3
+    got = plan_from_sequence(P, [(p.exec_index, p.start) for p in plan])
+    assert not check_model_feasible(P, got)
+    assert {(p.exec_index, p.start) for p in plan} <= {(p.exec_index, p.start) for p in got}
+    assert plan_value(P, got) >= plan_value(P, plan)
+
+
+def test_a_sequence_that_reuses_an_execution_becomes_a_plan():
+    """The relaxation may use one execution twice (it only prices "at most once"): the entries
+    are renumbered as the request's executions in order of start, an entry that does not fit
+    (too close to the previous one of its request, or not a feasible start) is left out, and
+    what comes back is always model-feasible."""
+    P = problem_for(*_repeat_scene(5), bucket_steps=1)[0]
+    tables = dispatch_tables(P)
+    first = next(e for e, x in enumerate(P.execs) if x.k == 0 and any(y.req == x.req and y.k == 1 for y in P.execs))
+    second = next(e for e, x in enumerate(P.execs) if x.req == P.execs[first].req and x.k == 1)
+    spacing = max(int(P.spacing_steps[P.execs[first].req]), P.execs[first].duration)
+    s0 = int(P.execs[first].starts[0])
+    # the second start: a feasible start of the second execution at least the spacing later
+    later = P.execs[second].starts[P.execs[second].starts >= s0 + spacing]
+    assert later.size
+    pairs = [(first, s0), (first, int(later[0]))]  # execution 0 used twice
+    got = plan_from_sequence(P, pairs, tables)
+    assert not check_model_feasible(P, got)
+    assert Placement(first, s0) in got and Placement(second, int(later[0])) in got
+    # too close: the second entry of the request is dropped (the dispatch may place it elsewhere)
+    near = plan_from_sequence(P, [(first, s0), (first, s0 + 1)], tables)
+    assert not check_model_feasible(P, near) and Placement(first, s0) in near
+    assert all(p.start != s0 + 1 for p in near if P.execs[p.exec_index].req == P.execs[first].req)
+    # a start that is not feasible for the execution it becomes is left out
+    bad = int(np.setdiff1d(np.arange(P.n_t), P.execs[first].starts)[0])
+    assert not check_model_feasible(P, plan_from_sequence(P, [(first, bad)], tables))
+
+
+def test_a_build_with_column_generation_is_checked_and_repeatable():
+    """Under an effort large enough for the column generation (a quarter of the sequence passes,
+    at least CG_MIN_PASSES), the build runs it, stays model- and checker-clean, its bound is
+    above its plan, and the same effort and seed give the same plan."""
+    night, sky, cond, reqs, w = _repeat_scene(6)
+    opts = BuildOptions(effort=4 * bounds.CG_MIN_PASSES, seed=3)
+    runs = [build_plan(CFG, reqs, w, night, cond, sky=sky, options=opts) for _ in range(2)]
+    res = runs[0]
+    assert_clean(res)
+    assert res.stats["sequence_columns"] > 0
+    assert res.bound >= res.objective - 1e-6
+    assert [(e.request_id, e.start) for e in res.entries] == [(e.request_id, e.start) for e in runs[1].entries]
