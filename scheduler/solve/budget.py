@@ -42,9 +42,20 @@ CPSAT_DETERMINISTIC_PER_EFFORT = 0.05  # CP-SAT deterministic time units
 # every one of 21 measured builds, at 100 requests it improves the searches' plan.
 CPSAT_SETUP_S_PER_LITERAL = 2.0e-4
 CPSAT_PAYS_FACTOR = 3.0  # time left >= this x the estimated fixed cost
-# Under an effort the decision cannot read the clock: CP-SAT runs on models up to this size
-# (the same size a 10 s build on 2 cores would give it).
-CPSAT_MAX_LITERALS_EFFORT = 6000
+# CP-SAT runs on models up to this size, under an effort (where the decision cannot read the
+# clock) and with a time limit alike. It improved the searches' plan on the 100-request
+# benchmark queue (about 2100 literals) and never at 500 (11,600) or above; when the searches
+# leave it 20-30 s at 2000 requests (47,600 literals) it still returns nothing better (585.24
+# against 589.68 when the search has that time).
+CPSAT_MAX_LITERALS = 6000
+
+# Shares of the time left when a stage starts. The sequence bound gets most of what the first
+# ruin-and-recreate phase leaves: its column generation also finds plans (on the standard
+# 500-request benchmark queue the best one known, 448.20, which 15,000 ruin-and-recreate moves
+# do not reach), and it needs about 20-40 passes of 0.15 s there (docs/solver.md).
+RUIN_RECREATE_SHARE = 0.30
+SEQUENCE_SHARE = 0.70
+SEQUENCE_SHARE_BEFORE_CPSAT = 0.15
 
 FINISH_SHARE = 0.02  # of the limit, kept back for the checker and storing the plan
 FINISH_MIN_S = 0.05
@@ -115,12 +126,12 @@ class WorkBudget:
         return self._stage(LAGRANGIAN_PER_EFFORT, 300, 0.04)
 
     def ruin_and_recreate(self) -> StageBudget:
-        return self._stage(RUIN_RECREATE_PER_EFFORT, 10**6, 0.45)
+        return self._stage(RUIN_RECREATE_PER_EFFORT, 10**6, RUIN_RECREATE_SHARE)
 
     def sequence(self, cpsat_next: bool = False) -> StageBudget:
-        """Half of what is left after the first searches (it stops sooner once the gap is
-        met), or 15 % when CP-SAT is to run next and needs the rest."""
-        return self._stage(SEQUENCE_PER_EFFORT, 400, 0.15 if cpsat_next else 0.5)
+        """SEQUENCE_SHARE of what is left after the first searches (it stops sooner once the gap
+        is met), or SEQUENCE_SHARE_BEFORE_CPSAT when CP-SAT is to run next and needs the rest."""
+        return self._stage(SEQUENCE_PER_EFFORT, 400, SEQUENCE_SHARE_BEFORE_CPSAT if cpsat_next else SEQUENCE_SHARE)
 
     def ruin_and_recreate_2(self) -> StageBudget:
         """Everything left, when CP-SAT does not run."""
@@ -129,8 +140,9 @@ class WorkBudget:
     def cpsat_can_pay(self, n_literals: int) -> bool:
         """Can CP-SAT improve on the searches in what is left? (see the constants above)"""
         if self.deterministic:
-            return n_literals <= CPSAT_MAX_LITERALS_EFFORT
-        return self.left() >= CPSAT_PAYS_FACTOR * CPSAT_SETUP_S_PER_LITERAL * n_literals + 0.5
+            return n_literals <= CPSAT_MAX_LITERALS
+        return n_literals <= CPSAT_MAX_LITERALS and \
+            self.left() >= CPSAT_PAYS_FACTOR * CPSAT_SETUP_S_PER_LITERAL * n_literals + 0.5
 
     def cpsat(self) -> CpSatBudget:
         if self.deterministic:
