@@ -132,3 +132,22 @@ def test_a_build_with_column_generation_is_checked_and_repeatable():
     assert res.stats["sequence_columns"] > 0
     assert res.bound >= res.objective - 1e-6
     assert [(e.request_id, e.start) for e in res.entries] == [(e.request_id, e.start) for e in runs[1].entries]
+
+
+def test_column_generation_runs_only_where_it_pays(monkeypatch):
+    """The request-class passes use column generation from CG_MIN_PASSES passes on and when the
+    plan in hand has at most CG_MAX_ENTRIES entries; otherwise subgradient steps, as before (the
+    bound is valid either way)."""
+    night, sky, cond, reqs, w = random_scene(4, 12, 150)
+    P, _ = problem_for(night, sky, cond, reqs, w)
+    plan = greedy_plan(P)
+    pairs = [(p.exec_index, p.start) for p in plan]
+    lower = plan_value(P, plan)
+    n = 4 * bounds.CG_MIN_PASSES  # a quarter of the passes with every request its own class
+    ran = bounds.sequence_bound(P, lower, sectors=16, iterations=n, time_limit_s=None, start_plan=pairs)
+    assert ran.columns > 0 and ran.bound >= lower
+    few = bounds.sequence_bound(P, lower, sectors=16, iterations=n - 4, time_limit_s=None, start_plan=pairs)
+    assert few.columns == 0 and few.iterations == n - 4
+    monkeypatch.setattr(bounds, "CG_MAX_ENTRIES", len(pairs) - 1)
+    long_night = bounds.sequence_bound(P, lower, sectors=16, iterations=n, time_limit_s=None, start_plan=pairs)
+    assert long_night.columns == 0 and long_night.iterations == n and long_night.bound >= lower

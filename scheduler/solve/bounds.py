@@ -387,7 +387,9 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     a sequence) that is slower per pass; when not even one such pass would fit in the time left,
     the class passes go on instead. ``sectors=0`` makes every pass so. Those passes set their
     prices by column generation (``_column_generation``, from ``start_plan``, calling
-    ``on_sequence`` with each sequence), and by subgradient steps once it stalls.
+    ``on_sequence`` with each sequence), and by subgradient steps once it stalls, or from the
+    start where fewer than CG_MIN_PASSES passes fit or ``start_plan`` has more than
+    CG_MAX_ENTRIES entries.
     """
     if not problem.execs:
         return SequenceBound(0, 0)
@@ -419,7 +421,9 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
     fine = _SequenceDP(problem, 0)
     # the passes expected to fit (the estimate without its margin: it is 1.3-1.5 times high)
     passes = more if one_pass_s is None else min(more, int(left() * PASS_COST_MARGIN / max(one_pass_s, 1e-9)))
-    if passes < CG_MIN_PASSES:  # too few passes for the master to learn anything: subgradient steps
+    if passes < CG_MIN_PASSES or len(start_plan) > CG_MAX_ENTRIES:
+        # too few passes for the master to learn anything, or a night of many short entries,
+        # where it learns too slowly: subgradient steps
         best2, _, its2, _ = _subgradient(fine, lower, mu, more, StageClock(left()), stop_gap, 0.25)
         return SequenceBound(int(math.floor(min(best, best2) + 1e-6)), its + its2)
     cg = _column_generation(problem, fine, lower, mu, more, StageClock(left()), stop_gap, start_plan, on_sequence)
@@ -474,13 +478,18 @@ def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, c
 # bound. On the 500-request standard benchmark queue it reaches the converged relaxation
 # (450.02, cuts included) in about 35 passes, where the subgradient is at 451.6-452.3, and its
 # columns, made into plans (heuristics.plan_from_sequence), include the best plan known (448.20).
-# On the dense queue (60-150 entries a sequence) the master learns too slowly for a 10 s build:
-# after CG_STALL passes without progress, or where too few passes fit (CG_MIN_PASSES), the
-# subgradient takes the request-class passes as before.
+# On the dense queue (60-150 entries a sequence) the master learns too slowly: there
+# (CG_MAX_ENTRIES), where too few passes fit (CG_MIN_PASSES) and after CG_STALL passes without
+# progress, the subgradient takes the request-class passes as before.
 CG_BOX = 0.25  # the master's duals stay within center +- CG_BOX x (center + mean center)
 CG_STALL = 8  # passes without a better bound or a better master before the subgradient takes over
 CG_CUTS_PER_PASS = 30  # window cuts added to the master per pass, the most violated first
 CG_MIN_PASSES = 12  # fewer request-class passes than this (by the estimate): subgradient steps only
+# A plan in hand with more entries than this: subgradient steps only. Measured from the same
+# class prices, 60 passes: standard 500 (17 entries) column generation 450.02 against the
+# subgradient's 451.6; dense 500 (59 entries) 191.74 against 186.78, the master learning slowly
+# from sequences of 60-150 entries.
+CG_MAX_ENTRIES = 40
 
 
 @dataclass
