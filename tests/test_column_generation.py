@@ -151,3 +151,17 @@ def test_column_generation_runs_only_where_it_pays(monkeypatch):
     monkeypatch.setattr(bounds, "CG_MAX_ENTRIES", len(pairs) - 1)
     long_night = bounds.sequence_bound(P, lower, sectors=16, iterations=n, time_limit_s=None, start_plan=pairs)
     assert long_night.columns == 0 and long_night.iterations == n and long_night.bound >= lower
+
+
+def test_with_a_clock_it_declines_after_one_pass_when_few_more_fit():
+    """With a wall-clock limit the first pass is timed: when fewer than min_passes more would
+    fit, it hands back after that pass (its bound kept) and says so; with room it goes on. The
+    limits are far from any real pass time (none, or 1000 s), so the machine's speed does not
+    decide the outcome."""
+    P = problem_for(*_repeat_scene(5), bucket_steps=1)[0]
+    mu = np.zeros(len(P.execs))
+    tight = bounds._column_generation(P, bounds._SequenceDP(P, 0), 0, mu, 30, StageClock(1e-9), None, min_passes=12)
+    assert tight.passes == 1 and tight.outcome.startswith("subgradient")
+    assert tight.best == pytest.approx(_bound_at(bounds._SequenceDP(P, 0), mu))
+    roomy = bounds._column_generation(P, bounds._SequenceDP(P, 0), 0, mu, 30, StageClock(1000.0), None, min_passes=12)
+    assert roomy.passes > 1 and roomy.outcome.startswith("column generation")

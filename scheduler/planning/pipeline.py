@@ -178,6 +178,7 @@ class Bounds:
     warning: str | None = None
     columns: int = 0  # the sequence bound's column generation: columns and window cuts (0: not run)
     cuts: int = 0
+    prices: str = ""  # how its request-class passes set their prices, and why
 
 
 @dataclass(frozen=True)
@@ -430,8 +431,9 @@ def bound_objective(run: _Build, prep: Prepared, pool: PlanPool, first: Lagrangi
     upper = min(lag.bound, seq.bound)
     if upper < pool.value:
         warning = f"bound {upper / VALUE_SCALE:.3f} below plan {pool.value / VALUE_SCALE:.3f}; ignored"
-        return Bounds(lag, seq.bound, seq.iterations, max(lag.bound, pool.value), warning, seq.columns, seq.cuts)
-    return Bounds(lag, seq.bound, seq.iterations, upper, None, seq.columns, seq.cuts)
+        return Bounds(lag, seq.bound, seq.iterations, max(lag.bound, pool.value), warning, seq.columns, seq.cuts,
+                      seq.prices)
+    return Bounds(lag, seq.bound, seq.iterations, upper, None, seq.columns, seq.cuts, seq.prices)
 
 
 def cpsat_pays(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds) -> bool:
@@ -599,7 +601,7 @@ def _stats(run: _Build, prep: Prepared, pool: PlanPool, bounds: Bounds, outcome:
         "hint": pool.label, "hint_objective": pool.value / VALUE_SCALE, "lagrangian_bound": lag.bound / VALUE_SCALE,
         "sequence_bound": bounds.sequence / VALUE_SCALE if bounds.sequence_iterations else None,
         "sequence_bound_iterations": bounds.sequence_iterations,
-        "sequence_columns": bounds.columns, "sequence_cuts": bounds.cuts,
+        "sequence_columns": bounds.columns, "sequence_cuts": bounds.cuts, "sequence_prices": bounds.prices,
         **({"bound_warning": bounds.warning} if bounds.warning else {}),
         "lagrangian_iterations": lag.iterations, "hint_search_s": search_s, "randomized_runs": pool.randomized_runs,
         "ruin_recreate_iterations": pool.ruin_recreate_iterations, "greedy_entries": len(prep.greedy),

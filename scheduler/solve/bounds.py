@@ -14,6 +14,7 @@ has the derivations; the tests compare both with brute force and CP-SAT optima.
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass
 
 import numpy as np
@@ -360,6 +361,7 @@ class SequenceBound:
     iterations: int  # passes of the dynamic programme
     columns: int = 0  # columns of the column generation's master (0: it did not run)
     cuts: int = 0  # its window cuts
+    prices: str = "subgradient"  # how the request-class passes set their prices, and why
 
 
 def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = None, sectors: int = 8,
@@ -419,19 +421,19 @@ def sequence_bound(problem: Problem, lower: int, *, mu0: np.ndarray | None = Non
         best2, _, its2, _ = _subgradient(dp, lower, mu, more, StageClock(left()), stop_gap, 0.25)
         return SequenceBound(int(math.floor(min(best, best2) + 1e-6)), its + its2)
     fine = _SequenceDP(problem, 0)
-    # the passes expected to fit (the estimate without its margin: it is 1.3-1.5 times high)
-    passes = more if one_pass_s is None else min(more, int(left() * PASS_COST_MARGIN / max(one_pass_s, 1e-9)))
-    if passes < CG_MIN_PASSES or len(start_plan) > CG_MAX_ENTRIES:
+    if (time_limit_s is None and more < CG_MIN_PASSES) or len(start_plan) > CG_MAX_ENTRIES:
         # too few passes for the master to learn anything, or a night of many short entries,
         # where it learns too slowly: subgradient steps
+        why = "few passes" if len(start_plan) <= CG_MAX_ENTRIES else f"{len(start_plan)} entries"
         best2, _, its2, _ = _subgradient(fine, lower, mu, more, StageClock(left()), stop_gap, 0.25)
-        return SequenceBound(int(math.floor(min(best, best2) + 1e-6)), its + its2)
-    cg = _column_generation(problem, fine, lower, mu, more, StageClock(left()), stop_gap, start_plan, on_sequence)
+        return SequenceBound(int(math.floor(min(best, best2) + 1e-6)), its + its2, prices=f"subgradient ({why})")
+    cg = _column_generation(problem, fine, lower, mu, more, StageClock(left()), stop_gap, start_plan, on_sequence,
+                            min_passes=CG_MIN_PASSES)
     best, its = min(best, cg.best), its + cg.passes
     if not (cg.met or cg.converged) and cg.passes < more and (time_limit_s is None or left() > 0):
         best2, _, its2, _ = _subgradient(fine, cg.lower, cg.mu, more - cg.passes, StageClock(left()), stop_gap, 0.25)
         best, its = min(best, best2), its + its2
-    return SequenceBound(int(math.floor(best + 1e-6)), its, cg.columns, cg.cuts)
+    return SequenceBound(int(math.floor(best + 1e-6)), its, cg.columns, cg.cuts, cg.outcome)
 
 
 def _pass_work_ratio(problem: Problem, dp: _SequenceDP) -> float:
@@ -484,7 +486,7 @@ def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, c
 CG_BOX = 0.25  # the master's duals stay within center +- CG_BOX x (center + mean center)
 CG_STALL = 8  # passes without a better bound or a better master before the subgradient takes over
 CG_CUTS_PER_PASS = 30  # window cuts added to the master per pass, the most violated first
-CG_MIN_PASSES = 12  # fewer request-class passes than this (by the estimate): subgradient steps only
+CG_MIN_PASSES = 12  # fewer request-class passes than this (timed by the first one): subgradient steps only
 # A plan in hand with more entries than this: subgradient steps only. Measured from the same
 # class prices, 60 passes: standard 500 (17 entries) column generation 450.02 against the
 # subgradient's 451.6; dense 500 (59 entries) 191.74 against 186.78, the master learning slowly
@@ -505,10 +507,12 @@ class _Columns:
     lower: float  # the best plan value known at the end (raised by on_sequence)
     columns: int
     cuts: int
+    outcome: str  # why it stopped, for the build's stats
 
 
 def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.ndarray, iterations: int,
-                       clock: StageClock, stop_gap: float | None, start_plan=(), on_sequence=None) -> _Columns:
+                       clock: StageClock, stop_gap: float | None, start_plan=(), on_sequence=None,
+                       min_passes: int = 0) -> _Columns:
     """Column generation over the sequences of ``dp`` (every request its own class), starting at
     the prices ``mu``. The first pass runs the programme at ``mu`` itself; each later pass solves
     the master (its duals kept within a box around the best prices so far, below), runs the
@@ -523,7 +527,9 @@ def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.n
     the bound (converged) or after CG_STALL passes in which neither the bound nor the master
     got better. ``on_sequence(pairs)`` is called with each new sequence's (execution, start)
     pairs and returns the best plan value known (the sequences are near-plans); it raises
-    ``lower``. ``start_plan``: (execution, start) pairs of a plan, the master's first column."""
+    ``lower``. ``start_plan``: (execution, start) pairs of a plan, the master's first column.
+    With a clock, it also stops after its first pass when fewer than ``min_passes`` more passes
+    of that pass's measured time fit in the clock's limit (the subgradient does better with few)."""
     from ortools.linear_solver import pywraplp  # only the builds that get here pay the import
 
     P = problem
@@ -622,6 +628,7 @@ def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.n
     set_box(center)
     best, best_master = math.inf, -math.inf
     stall, met, converged, passes = 0, False, False, 0
+    outcome = "column generation: all passes done"
     for passes in range(1, iterations + 1):
         if passes == 1:  # the prices handed in, as they are
             mu_p, lam_p, master, x_val = center, np.zeros(len(cuts)), -math.inf, []
@@ -648,8 +655,15 @@ def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.n
                 lower = max(lower, on_sequence(list(zip(dp.E[col].tolist(), dp.S[col].tolist()))))
         met = stop_gap is not None and best - lower <= stop_gap * abs(best)
         converged = best - master <= 1e-4 * abs(best)
+        if passes == 1 and clock.limit is not None:
+            first_s = max(time.perf_counter() - clock.t0, 1e-9)
+            if (clock.limit - first_s) / first_s < min_passes:
+                outcome = f"subgradient (about {int((clock.limit - first_s) / first_s)} passes fit)"
+                break
         if met or converged or stall >= CG_STALL or clock.out_of_time():
+            outcome = ("column generation: " + ("gap proven" if met else "converged" if converged
+                       else "stalled, then subgradient" if stall >= CG_STALL else "out of time"))
             break
         if cols and x_val:
             separate(x_val)
-    return _Columns(best, center, passes, met, converged, lower, len(cols), len(cuts))
+    return _Columns(best, center, passes, met, converged, lower, len(cols), len(cuts), outcome)
