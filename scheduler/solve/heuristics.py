@@ -213,6 +213,11 @@ def plan_from_sequence(problem: Problem, placements: Sequence[tuple[int, int]],
         if P.execs[int(e)].fixed_start is None:
             free_of.setdefault(int(tables.req[e]), []).append(int(e))
     fixed = [(e, s, True) for e, s in tables.kept]  # always there: the dispatch holds them too
+    # a request's free executions come after its held ones (repeats run in order, spaced)
+    after_held: dict[int, int] = {}
+    for e, s in tables.kept:
+        r = int(tables.req[e])
+        after_held[r] = max(after_held.get(r, s), s + max(int(tables.duration[e]), int(P.spacing_steps[r])))
     walk = sorted(fixed + [(int(e), int(s), False) for e, s in placements if P.execs[int(e)].fixed_start is None],
                   key=lambda q: q[1])
     kept: list[Placement] = []
@@ -225,7 +230,7 @@ def plan_from_sequence(problem: Problem, placements: Sequence[tuple[int, int]],
             before = last[r] = Placement(e0, s)
             continue
         k = taken.get(r, 0)
-        if k >= len(free_of.get(r, ())):
+        if s < after_held.get(r, s) or k >= len(free_of.get(r, ())):
             continue  # more entries than the request has executions
         e = free_of[r][k]
         if not 0 <= s < P.n_t or int(tables.next_start[e, s]) != s:
