@@ -24,7 +24,7 @@ from test_solver import CFG, assert_clean, brute_force, exact_solve, problem_for
 
 def _bound_at(dp: bounds._SequenceDP, mu: np.ndarray) -> float:
     """The sequence relaxation's bound at prices mu (no window prices), as the subgradient has it."""
-    return float(mu.sum()) + dp.best_sequence(mu)[0] - dp.M * int(dp.forced.sum())
+    return dp.bound_at(float(mu.sum()), dp.best_sequence(mu)[0])
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])

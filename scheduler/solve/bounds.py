@@ -14,7 +14,6 @@ has the derivations; the tests compare both with brute force and CP-SAT optima.
 from __future__ import annotations
 
 import math
-import time
 from dataclasses import dataclass
 
 import numpy as np
@@ -279,6 +278,16 @@ class _SequenceDP:
         self.Lmin = int(finite.min()) if finite.size else 0
         self.block = int(min(64, max(1, int(dur.min()) + self.Lmin)))
 
+    @property
+    def kept_bonus(self) -> float:
+        """What the kept entries' bonus adds to every sequence that holds them all."""
+        return self.M * int(self.forced.sum())
+
+    def bound_at(self, prices_total: float, seq_val: float) -> float:
+        """The relaxation's bound at prices summing to ``prices_total`` (executions and any
+        windows) whose best sequence is worth ``seq_val``: weak duality, kept bonus taken off."""
+        return prices_total + seq_val - self.kept_bonus
+
     def best_sequence(self, mu: np.ndarray) -> tuple[float, np.ndarray]:
         """(value of the best sequence at prices mu, how often it uses each execution)."""
         seq_val, cands = self.sequence(self.C - mu[self.E])
@@ -461,12 +470,11 @@ def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, c
                  stop_gap: float | None, theta: float) -> tuple[float, np.ndarray, int, bool]:
     """Subgradient steps on the sequence relaxation's prices: (best bound, its prices,
     iterations, whether the stop gap was proven)."""
-    n_kept = int(dp.forced.sum())
     best, best_mu = math.inf, mu
     stall, it, met = 0, 0, False
     for it in range(1, iterations + 1):
         seq_val, count = dp.best_sequence(mu)
-        bound = float(mu.sum()) + seq_val - dp.M * n_kept
+        bound = dp.bound_at(float(mu.sum()), seq_val)
         if bound < best - 1e-9:
             best, best_mu, stall = bound, mu, 0
         else:
@@ -496,7 +504,7 @@ def _subgradient(dp: _SequenceDP, lower: int, mu: np.ndarray, iterations: int, c
 # On the dense queue (60-150 entries a sequence) the master learns too slowly: there
 # (CG_MAX_ENTRIES), where too few passes fit (CG_MIN_PASSES) and after CG_STALL passes without
 # progress, the subgradient takes the request-class passes as before.
-CG_BOX = 0.25  # the master's duals stay within center +- CG_BOX x (center + mean center)
+CG_BOX = 0.25  # the master's duals stay within center +- CG_BOX x (center + mean center, with a floor)
 CG_STALL = 8  # passes without a better bound or a better master before the subgradient takes over
 CG_CUTS_PER_PASS = 30  # window cuts added to the master per pass, the most violated first
 CG_MIN_PASSES = 12  # fewer request-class passes than this (timed by the first one): subgradient steps only
@@ -546,7 +554,6 @@ def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.n
     from ortools.linear_solver import pywraplp  # only the builds that get here pay the import
 
     P = problem
-    n_kept = int(dp.forced.sum())
     creq = P.exec_requests()[dp.E]  # request of each candidate
     spacing = P.spacing_steps
     n_exec_of = np.bincount(P.exec_requests(), minlength=len(P.requests))
@@ -678,12 +685,12 @@ def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.n
             boxed = objective.Value()  # the master within its box: rises while the box stays
             # the plan the master holds, when it needs no surplus (else it is not a plan mix)
             inside = max(v.solution_value() for v in surplus) <= 1e-7
-            master = float(sum(objective.GetCoefficient(x) * v for x, v in zip(xs, x_val))) - dp.M * n_kept \
+            master = float(sum(objective.GetCoefficient(x) * v for x, v in zip(xs, x_val))) - dp.kept_bonus \
                 if inside else -math.inf
             mu_p = np.maximum(0.0, np.array([row.dual_value() for row in once]))
             lam_p = np.maximum(0.0, np.array([row.dual_value() for _, _, row in cuts]))
         seq_val, col = dp.sequence(dp.C - mu_p[dp.E] - window_penalty(lam_p))
-        bound = float(mu_p.sum() + lam_p.sum()) + seq_val - dp.M * n_kept
+        bound = dp.bound_at(float(mu_p.sum() + lam_p.sum()), seq_val)
         progress = master > best_master + 1e-4 * abs(best) or boxed > best_boxed + 1e-4 * abs(best)
         best_boxed = max(best_boxed, boxed)
         if bound < best - 1e-9:
@@ -699,9 +706,10 @@ def _column_generation(problem: Problem, dp: _SequenceDP, lower: float, mu: np.n
         met = stop_gap is not None and best - lower <= stop_gap * abs(best)
         converged = best - master <= 1e-4 * abs(best)
         if passes == 1 and clock.limit is not None:
-            first_s = max(time.perf_counter() - clock.t0, 1e-9)
-            if (clock.limit - first_s) / first_s < min_passes:
-                outcome = f"subgradient (about {int((clock.limit - first_s) / first_s)} passes fit)"
+            first_s = max(clock.elapsed(), 1e-9)
+            fit = int((clock.limit - first_s) / first_s)
+            if fit < min_passes:
+                outcome = f"subgradient (about {fit} passes fit)"
                 break
         if met or converged or stall >= CG_STALL or clock.out_of_time():
             outcome = ("column generation: " + ("gap proven" if met else "converged" if converged

@@ -170,8 +170,12 @@ class StageClock:
         step, self.last = now - self.last, now
         return now + step > self.t0 + self.limit
 
+    def elapsed(self) -> float:
+        """Seconds since the loop started."""
+        return time.perf_counter() - self.t0
+
     def spent(self) -> float:
         """Share of the limit used so far (0..1; 0 without a limit)."""
         if not self.limit:
             return 0.0
-        return min(1.0, (time.perf_counter() - self.t0) / self.limit)
+        return min(1.0, self.elapsed() / self.limit)
