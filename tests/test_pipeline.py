@@ -95,6 +95,27 @@ def test_entry_in_progress_is_dropped_when_the_dome_closes(base):
     assert reasons[cur.request_id] == "interrupted: closure"
 
 
+def test_entry_in_progress_that_began_before_the_grid_is_held_from_its_first_step(base):
+    """An observation started a few minutes before the grid's first step and still running at
+    the re-plan is kept, from step 0 to its end, and the plan passes the checker. (It used to be
+    dropped by the checker as "outside the night grid", and its negative step wrapped to the
+    end of the night in the sequence bound, which then fell below the plan.)"""
+    night, sky, cond, reqs, w, res = base
+    first = res.entries[0]
+    t0 = datetime.fromtimestamp(float(night.times_unix[0]), timezone.utc)
+    began = t0 - timedelta(minutes=4)
+    running = replace(first, start=began, end=began + (first.end - first.start), start_step=-1, end_step=-1)
+    now = t0 + timedelta(minutes=1)
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky,
+                      options=effort(now=now, previous_entries=[running] + list(res.entries[1:])))
+    assert_clean(res2)
+    assert "bound_warning" not in res2.stats
+    held = [e for e in res2.entries if e.start_step < res2.now_step]
+    end_step = first.end_step - 4 * 60 // int(night.step_s)
+    assert [(e.request_id, e.execution, e.start_step, e.end_step, e.fixed) for e in held] == [
+        (first.request_id, first.execution, 0, end_step, True)]
+
+
 def test_unscheduled_reasons():
     n_t = 120
     night = make_night(n_t)

@@ -661,7 +661,11 @@ def _sky_rows(sky, config: ObservatoryConfig, night: Night, requests: Sequence[R
 
 
 def entries_on_grid(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntry]:
-    """Previous entries with grid steps recomputed from their times (storage does not keep steps)."""
+    """Previous entries with grid steps recomputed from their times (storage does not keep steps).
+
+    An entry that began before the grid's first step and is still running is held from step 0:
+    the grid has no earlier step to start it on (a negative step would index the night from its
+    end), and only what is left of it matters to a re-plan."""
     t0, step = float(night.times_unix[0]), float(night.step_s)
     out = []
     for e in entries:
@@ -669,7 +673,7 @@ def entries_on_grid(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntr
         en = int(round((e.end.timestamp() - t0) / step))
         if en <= 0 or s >= night.n_times:
             continue
-        out.append(replace(e, start_step=s, end_step=min(en, night.n_times)))
+        out.append(replace(e, start_step=max(s, 0), end_step=min(en, night.n_times)))
     return out
 
 
