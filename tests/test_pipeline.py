@@ -449,3 +449,32 @@ def test_replan_floor_is_the_previous_plan_filled_around(generated, monkeypatch,
     if "previous plan" in res.message:
         assert len(kept) == len(still)
     assert res.objective >= res.greedy_objective - 1e-9
+
+
+def test_strict_tiers_keep_a_lower_tier_entry_in_progress_and_its_frozen_entries():
+    """With program tiers, a re-plan with nothing changed keeps every entry in progress and
+    every frozen entry whatever its tier: the top tier's step may not plan over a running
+    lower-tier observation. (The top tier's step used to hold only its own executions; a
+    review's repro lost 5 of 10 entries in progress this way.)"""
+    from scheduler.solve.factors import ProgramState
+
+    tiers = {"P1": ProgramState("P1", 1, 1.0), "P2": ProgramState("P2", 2, 2.0), "P3": ProgramState("P3", 3, 0.5)}
+    night, sky, cond, reqs, _ = random_scene(117, 12, 240)
+    res = build_plan(CFG, reqs, tiers, night, cond, sky=sky, options=effort())
+    assert_clean(res)
+    program = {r.id: r.program for r in reqs}
+    lower = [e for e in res.entries if tiers[program[e.request_id]].tier > 1]
+    assert len(lower) >= 3
+    for cur in lower:
+        now = _now_inside(night, cur)  # in progress
+        res2 = build_plan(CFG, reqs, tiers, night, cond, sky=sky,
+                          options=effort(now=now, previous_entries=list(res.entries)))
+        assert_clean(res2)
+        held = [(e.request_id, e.start_step, e.end_step) for e in res2.entries if e.start_step < res2.now_step]
+        assert held == [(cur.request_id, cur.start_step, cur.end_step)]
+        now = cur.start - timedelta(minutes=5)  # inside the 15-minute freeze horizon
+        res3 = build_plan(CFG, reqs, tiers, night, cond, sky=sky,
+                          options=effort(now=now, previous_entries=list(res.entries)))
+        assert_clean(res3)
+        same = [(e.start_step, e.fixed) for e in res3.entries if e.request_id == cur.request_id]
+        assert (cur.start_step, True) in same

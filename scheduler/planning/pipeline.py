@@ -257,6 +257,9 @@ def solve_by_tiers(run: _Build, prep: Prepared, tiers: list[int]) -> PlanResult:
     not proven optimal (factors.lexicographic)."""
     P = prep.problem
     et = P.exec_tiers()
+    # held executions (in progress, frozen) of every tier enter every step: they are on the
+    # telescope's timeline whatever their tier, so a higher tier may not be planned over them
+    held = np.array([ex.fixed_start is not None for ex in P.execs], dtype=bool)
     work = {t: int(np.count_nonzero(et == t)) for t in tiers}
     plan: list[Placement] = []
     floors: dict[int, int] = {}
@@ -269,7 +272,7 @@ def solve_by_tiers(run: _Build, prep: Prepared, tiers: list[int]) -> PlanResult:
     run.cpsat_decision = "ran (strict tiers: one CP-SAT step per tier, each a share of the time left)"
     for i, k in enumerate(tiers):
         t0 = time.perf_counter()
-        sel = np.flatnonzero(et <= k)
+        sel = np.flatnonzero((et <= k) | held)
         sub = replace(P, execs=[P.execs[j] for j in sel])
         index_in_sub = {int(j): n for n, j in enumerate(sel)}
         tables = dispatch_tables(sub)
