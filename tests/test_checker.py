@@ -112,21 +112,23 @@ def test_too_short_and_off_grid_entries_fail(scene):
     assert any("unknown request" in x for x in check(scene, [unknown]))
 
 
-def test_only_an_entry_in_progress_from_before_the_grid_may_be_short_at_step_0(scene):
-    """Held from step 0 and begun before now, a short entry is what is left of an observation
-    that started before the grid (pipeline.entries_on_grid); anything else that short fails."""
+def test_only_an_entry_in_progress_may_be_shorter_than_setup_plus_exposure(scene):
+    """An entry in progress (held, begun before now) was sized when it began: the request may
+    have been edited since, or it began before the grid's first step or ends after its last
+    (pipeline.entries_on_grid holds the grid's part). Anything else that short fails."""
     night, sky, cond, specs, rows, res = scene
-    e = move(res.entries[0], night, 0)
-    short = replace(e, end_step=5, end=e.start + timedelta(minutes=5))
+    e = move(res.entries[0], night, 10)
+    short = replace(e, end_step=15, end=e.start + timedelta(minutes=5))
     assert short.end_step - short.start_step < e.end_step - e.start_step
 
     def complaints(entry, now_step):
         return [x for x in check_plan([entry], specs, rows, sky, cond, CFG, now_step=now_step)
                 if "shorter than setup + exposure" in x]
 
-    assert complaints(replace(short, fixed=True), now_step=2) == []
-    assert complaints(replace(short, fixed=False), now_step=2) != []  # not held: it must be whole
-    assert complaints(replace(short, fixed=True), now_step=0) != []  # not begun yet
+    assert complaints(replace(short, fixed=True), now_step=12) == []
+    assert complaints(replace(short, fixed=False), now_step=12) != []  # not held: it must be whole
+    assert complaints(replace(short, fixed=True), now_step=10) != []  # frozen, not begun: whole too
+    assert complaints(replace(short, fixed=True), now_step=0) != []
 
 
 def test_closure_and_seeing_are_rechecked(scene):

@@ -478,3 +478,48 @@ def test_strict_tiers_keep_a_lower_tier_entry_in_progress_and_its_frozen_entries
         assert_clean(res3)
         same = [(e.start_step, e.fixed) for e in res3.entries if e.request_id == cur.request_id]
         assert (cur.start_step, True) in same
+
+
+def _held(res, rid):
+    return [(e.start_step, e.end_step, e.fixed) for e in res.entries if e.request_id == rid and e.start_step < res.now_step]
+
+
+def test_entry_in_progress_is_kept_after_its_request_is_edited(base):
+    """The exposure lengthened while the entry runs: it is held as it was sized when it began
+    (the checker used to drop it as shorter than the new setup + exposure)."""
+    night, sky, cond, reqs, w, res = base
+    cur = res.entries[2]
+    longer = [r.with_(exposure_s=r.exposure_s + 600) if r.id == cur.request_id else r for r in reqs]
+    res2 = build_plan(CFG, longer, w, night, cond, sky=sky,
+                      options=effort(now=cur.start + timedelta(minutes=5, seconds=20), previous_entries=list(res.entries)))
+    assert_clean(res2)
+    assert _held(res2, cur.request_id) == [(cur.start_step, cur.end_step, True)]
+
+
+def test_entry_in_progress_stored_off_the_grid_keeps_its_length(base):
+    """Stored half a step off the grid (another step, or moved by hand): it starts on the step it
+    falls in and keeps its whole length (rounding start and end each to the nearest step made
+    it a step short, and the checker dropped it)."""
+    night, sky, cond, reqs, w, res = base
+    cur = res.entries[1]
+    half = timedelta(seconds=night.step_s / 2)
+    moved = replace(cur, start=cur.start + half, end=cur.end + half, start_step=-1, end_step=-1)
+    prev = [moved if e is cur else e for e in res.entries]
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky,
+                      options=effort(now=_now_inside(night, cur), previous_entries=prev))
+    assert_clean(res2)
+    assert _held(res2, cur.request_id) == [(cur.start_step, cur.end_step, True)]
+
+
+def test_entry_in_progress_that_ends_after_the_grid_is_held_to_its_last_step(base):
+    night, sky, cond, reqs, w, res = base
+    last = res.entries[-1]
+    grid_end = datetime.fromtimestamp(float(night.times_unix[0]) + night.n_times * night.step_s, timezone.utc)
+    began = grid_end + timedelta(minutes=5) - (last.end - last.start)
+    over = replace(last, start=began, end=began + (last.end - last.start), start_step=-1, end_step=-1)
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky,
+                      options=effort(now=began + timedelta(minutes=3, seconds=10),
+                                     previous_entries=list(res.entries[:-1]) + [over]))
+    assert_clean(res2)
+    start = int((began.timestamp() - float(night.times_unix[0])) // night.step_s)
+    assert _held(res2, last.request_id) == [(start, night.n_times, True)]

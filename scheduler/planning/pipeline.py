@@ -668,12 +668,16 @@ def entries_on_grid(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntr
 
     An entry that began before the grid's first step and is still running is held from step 0:
     the grid has no earlier step to start it on (a negative step would index the night from its
-    end), and only what is left of it matters to a re-plan."""
+    end), and only what is left of it matters to a re-plan.
+
+    An entry off the grid (stored under another step, or moved by hand) starts on the step it
+    falls in and keeps its whole length in steps, rounded up: rounding its start and end to the
+    nearest step each could make it a step shorter than its exposure."""
     t0, step = float(night.times_unix[0]), float(night.step_s)
     out = []
     for e in entries:
-        s = int(round((e.start.timestamp() - t0) / step))
-        en = int(round((e.end.timestamp() - t0) / step))
+        s = int(math.floor((e.start.timestamp() - t0) / step + 1e-6))
+        en = s + int(math.ceil((e.end.timestamp() - e.start.timestamp()) / step - 1e-6))
         if en <= 0 or s >= night.n_times:
             continue
         out.append(replace(e, start_step=max(s, 0), end_step=min(en, night.n_times)))

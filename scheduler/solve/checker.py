@@ -224,10 +224,11 @@ def check_plan(entries: Sequence[PlanEntry], requests: Mapping[int, RequestSpec]
         inst = config.instrument_for(spec.band, spec.instrument)
         exposure = spec.next_exposure_s if e.execution == 0 else spec.exposure_s
         need = math.ceil((inst.setup_s + exposure) / step_s - 1e-9)
-        # an entry in progress that began before the grid's first step is held from step 0
-        # (pipeline.entries_on_grid): its earlier part is not on the grid to be counted
-        began_before_grid = e.fixed and e.start_step == 0 < now_step
-        if e.end_step - e.start_step < need and not began_before_grid:
+        # an entry in progress was sized when it began: the request or the instrument may have
+        # been edited since, and one that began before the grid's first step or ends after its
+        # last is held on the grid's part of it alone (pipeline.entries_on_grid)
+        in_progress = e.fixed and e.start_step < now_step
+        if e.end_step - e.start_step < need and not in_progress:
             v.append(Violation(f"{tag}: {e.end_step - e.start_step} steps is shorter than setup + exposure "
                                f"({need} steps)", e.request_id, e.execution))
         if e.start_step < now_step and not e.fixed:
