@@ -69,3 +69,29 @@ def test_observer_errors_are_one_line_and_write_nothing(workdir):
     assert {r["status"] for r in cli_json("request", "list", cwd=workdir)} == {"queued"}
     missing = run_cli("plan", "export", "--format", "json", "--version", "7", cwd=workdir)
     assert missing.returncode == 2 and "version 7 not found" in missing.stderr
+
+
+@pytest.mark.slow
+def test_an_outcome_ends_the_entry_in_progress(workdir):
+    """The observer stops an observation and records it: the re-plan from inside that entry no
+    longer holds it until its planned end (the telescope is free: it used to be held, and
+    counted among the executions owed); a done request is not planned again."""
+    from datetime import datetime, timedelta
+
+    make_queue(workdir)
+    build(workdir, "first")
+    first = _entries(workdir)
+    assert {FILL_A, FILL_C} <= set(first)
+    run_cli("record", str(FILL_C), "--result", "failed", "--note", "clouds, stopped", cwd=workdir, check=True)
+    run_cli("record", str(FILL_A), "--result", "done", "--note", "stopped early, enough signal", cwd=workdir,
+            check=True)
+    for rid in (FILL_C, FILL_A):
+        start = datetime.fromisoformat(first[rid]["start"].replace("Z", "+00:00"))
+        now = start + timedelta(minutes=4)
+        run_cli("plan", "build", "--night", NIGHT, "--now", now.isoformat().replace("+00:00", "Z"),
+                "--reason", "outcome recorded", cwd=workdir, check=True)
+        plan = cli_json("plan", "show", cwd=workdir)
+        mine = [e for e in plan["entries"] if e["request_id"] == rid]
+        assert all(datetime.fromisoformat(e["start"].replace("Z", "+00:00")) >= now for e in mine), mine
+        if rid == FILL_A:
+            assert mine == []

@@ -17,7 +17,7 @@ from scheduler.model import plan as contract
 from scheduler.model.errors import InputError, NotFoundError
 from scheduler.model.request import RequestSpec, RequestStatus
 from scheduler.model.timegrid import iso
-from scheduler.db.models import ConditionsReport, Plan, PlanEntry, Program, ReplanOrder, Request, utcnow
+from scheduler.db.models import ConditionsReport, Outcome, Plan, PlanEntry, Program, ReplanOrder, Request, utcnow
 
 
 def plan_diff(old: list[PlanEntry] | None, new: tuple[contract.PlanEntry, ...],
@@ -107,6 +107,17 @@ def entries_as_planned(plan: Plan | None) -> list[contract.PlanEntry]:
             surface_efficiency=e.surface_efficiency,
         ))
     return out
+
+
+def entries_without_outcome(s: Session, plan: Plan | None) -> list[contract.PlanEntry]:
+    """``entries_as_planned`` less the entries an outcome was recorded for: an outcome ends its
+    entry (the observation finished, stopped or failed), so a re-plan neither holds it as in
+    progress nor counts it among the executions still owed."""
+    if plan is None:
+        return []
+    ids = [e.id for e in plan.entries]
+    ended = set(s.scalars(select(Outcome.plan_entry_id).where(Outcome.plan_entry_id.in_(ids)))) if ids else set()
+    return [c for c, e in zip(entries_as_planned(plan), plan.entries) if e.id not in ended]
 
 
 def store_plan(s: Session, result: contract.PlanResult, *, night: date, reason: str, planned_from: datetime,

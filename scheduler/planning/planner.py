@@ -120,7 +120,7 @@ class Planner:
             weights = store.program_states(s)
             reports = reports_for_night(s, night)
             prev = plans.active_plan(s, night_date)
-            previous = plans.entries_as_planned(prev)
+            previous = plans.entries_without_outcome(s, prev)
             return PlanInputs(specs, weights, reports, previous, prev.id if prev else None)
 
     def opportunities(self, db: Database | None, night_date: date, specs: list[RequestSpec],
