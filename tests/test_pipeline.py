@@ -523,3 +523,22 @@ def test_entry_in_progress_that_ends_after_the_grid_is_held_to_its_last_step(bas
     assert_clean(res2)
     start = int((began.timestamp() - float(night.times_unix[0])) // night.step_s)
     assert _held(res2, last.request_id) == [(start, night.n_times, True)]
+
+
+def test_two_entries_in_progress_in_a_damaged_plan_leave_the_later_one_at_the_telescope(base):
+    """A stored plan (damaged, or edited by hand) with two overlapping entries both begun before
+    now: the one begun last is held, the earlier one ended when it began. (Both used to be held:
+    the model had no feasible plan, CP-SAT said INFEASIBLE and the bounds fell below the plan.)"""
+    night, sky, cond, reqs, w, res = base
+    a, b = res.entries[1], res.entries[2]
+    began = a.start + timedelta(minutes=2)
+    b_over = replace(b, start=began, end=began + (b.end - b.start), start_step=-1, end_step=-1)
+    prev = [e for e in res.entries if e is not b]
+    prev.insert(2, b_over)
+    res2 = build_plan(CFG, reqs, w, night, cond, sky=sky,
+                      options=effort(now=a.start + timedelta(minutes=5, seconds=10), previous_entries=prev))
+    assert_clean(res2)
+    assert "bound_warning" not in res2.stats
+    b_step = a.start_step + 2 * 60 // int(night.step_s)
+    held = [(e.request_id, e.start_step, e.fixed) for e in res2.entries if e.start_step < res2.now_step]
+    assert held == [(b.request_id, b_step, True)]

@@ -19,7 +19,7 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import dataclass, field, replace
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Callable, Mapping, Sequence
 
 import numpy as np
@@ -362,7 +362,7 @@ def prepare_problem(run: _Build, reqs: list[RequestSpec], program_weights, cond:
     t0 = time.perf_counter()
     run.say("model")
     step = int(night.step_s)
-    prev = entries_on_grid(opts.previous_entries, night) if opts.previous_entries else []
+    prev = one_in_progress(entries_on_grid(opts.previous_entries, night), run.now_step, step) if opts.previous_entries else []
     freeze_min = config.planning.freeze_horizon_min if opts.freeze_horizon_min is None else opts.freeze_horizon_min
     problem = build_problem(
         config, reqs, program_weights, feasibility, sky_grid.alt_deg[rows], sky_grid.az_deg[rows], step_s=step,
@@ -681,6 +681,24 @@ def entries_on_grid(entries: Sequence[PlanEntry], night: Night) -> list[PlanEntr
         if en <= 0 or s >= night.n_times:
             continue
         out.append(replace(e, start_step=max(s, 0), end_step=min(en, night.n_times)))
+    return out
+
+
+def one_in_progress(entries: Sequence[PlanEntry], now_step: int, step_s: int) -> list[PlanEntry]:
+    """At most one entry in progress: a telescope observes one thing at a time, so where a
+    damaged or hand-edited plan has several begun before now and running past it, the one begun
+    last is at the telescope and each earlier one ended when the next began (its end moves
+    there; if that is before now it is no longer in progress)."""
+    running = sorted((e for e in entries if e.start_step < now_step < e.end_step), key=lambda e: e.start_step)
+    if len(running) < 2:
+        return list(entries)
+    ends = {id(a): b.start_step for a, b in zip(running, running[1:])}
+    out = []
+    for e in entries:
+        if id(e) in ends:
+            new_end = max(ends[id(e)], e.start_step + 1)
+            e = replace(e, end_step=new_end, end=e.start + timedelta(seconds=(new_end - e.start_step) * step_s))
+        out.append(e)
     return out
 
 
