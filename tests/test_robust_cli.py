@@ -517,3 +517,19 @@ def test_a_csv_cell_holding_only_a_control_is_not_read_as_empty(workdir):
                                       '"exposure_s": 100, "too": "\\u0085"}]', encoding="utf-8")
     refused(run_cli("request", "import", "nel.json", cwd=workdir), "too")
     assert cli_json("request", "list", cwd=workdir) == []
+
+
+def test_a_replan_after_the_grids_last_step_has_nothing_left_to_cover():
+    """Between the grid's last step and sunrise nothing is left to plan, so no forecast is
+    missing (it used to warn that reports cover 0 % of the night "from" that time)."""
+    from datetime import date, datetime, timedelta, timezone
+
+    from scheduler.model.config import starter_config
+    from scheduler.planning.planner import Planner
+
+    planner = Planner(starter_config())
+    night = planner.night(date(2026, 12, 16))
+    after = datetime.fromtimestamp(float(night.times_unix[-1]) + night.step_s, timezone.utc) + timedelta(minutes=1)
+    assert planner.coverage(night, (), after) == (1.0, None)
+    share, warning = planner.coverage(night, (), night.start)  # before: the whole night, uncovered
+    assert share == 0.0 and "cover 0 %" in warning

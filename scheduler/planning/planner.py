@@ -107,6 +107,8 @@ class Planner:
         """(share of the night still to plan that some report covers, the warning when that is
         below planning.min_forecast_share)."""
         k = night.step_of(planned_from)
+        if k >= night.n_times:  # past the grid's last step: nothing is left to cover
+            return 1.0, None
         share = forecast_share(reports, night.times_unix[k:])
         label = str(night.date) if k == 0 else f"{night.date} from {planned_from.strftime('%H:%M')} UTC"
         return share, coverage_warning(share, self.config.planning.min_forecast_share, label)
